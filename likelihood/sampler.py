@@ -1,0 +1,870 @@
+"""Affine-invariant ensemble sampling with crash-safe HDF5 chains and an autocorrelation stop rule.
+
+The sampler is emcee's :class:`emcee.EnsembleSampler` (stretch move, Goodman & Weare 2010;
+Foreman-Mackey et al. 2013). This module adds what a long inference run needs:
+
+* **Never lose a chain.** Steps are appended to ``OUT_DIR/chain.h5`` in emcee's HDF5 backend
+  layout (group ``mcmc``: datasets ``chain``, ``log_prob``, ``accepted``; attributes
+  ``iteration``, ``random_state_*``), so ``emcee.backends.HDFBackend(path, read_only=True)``
+  reads it. Steps are buffered in memory and flushed every ``flush_every`` steps or
+  ``flush_seconds`` seconds, whichever comes first. A flush writes the new rows, forces them to
+  disk, and only then advances the ``iteration`` counter, so a process killed at any moment
+  leaves a file whose first ``iteration`` steps are complete; at most the unflushed buffer is
+  lost. SIGINT and SIGTERM received during a run are deferred to the end of the current step:
+  the buffer is flushed, then the signal is delivered as usual (KeyboardInterrupt, or the
+  previous SIGTERM action).
+* **Resume.** ``resume=True`` continues from the last stored step with the stored random state,
+  so an interrupted-and-resumed run reproduces the uninterrupted run with the same seed
+  exactly. A chain made with a different config hash is never appended to.
+* **Convergence.** Every ``check_every`` steps the integrated autocorrelation time tau of each
+  parameter is estimated over the whole stored chain (``emcee.autocorr.integrated_time`` with
+  ``tol=0``). The run stops when ``n_steps > tau_factor * max(tau)`` and the largest relative
+  change of tau since the previous check is below ``tau_rtol``. This is the rule of the emcee
+  documentation ("Saving & monitoring progress" tutorial; Foreman-Mackey et al. 2013, Sec. 3),
+  common practice, not a guarantee: tau estimated from a chain that has not yet explored a
+  multi-modal or strongly curved posterior is itself underestimated.
+* **Burn-in and thinning** of the returned samples: ``burn_in = int(2 max tau)`` and
+  ``thin = max(1, int(min tau / 2))``, the choice of the same emcee tutorial (common practice).
+
+Public API: :class:`SamplerSettings`, :func:`run_sampler`, :func:`load_chain`,
+:class:`SamplerResult`, :class:`ConvergenceWarning`, :data:`CHAIN_FILENAME`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+import os
+import signal
+import tempfile
+import threading
+import time
+import warnings
+from dataclasses import dataclass, field
+from typing import Any
+
+import emcee
+import h5py
+import numpy as np
+
+from .errors import ConfigError, ErgofitError
+
+__all__ = [
+    "CHAIN_FILENAME",
+    "ConvergenceWarning",
+    "SamplerResult",
+    "SamplerSettings",
+    "load_chain",
+    "run_sampler",
+]
+
+#: Name of the chain file inside a run's output folder.
+CHAIN_FILENAME = "chain.h5"
+
+_GROUP = "mcmc"  # emcee's HDFBackend default group name
+_FORMAT_VERSION = 1
+_MAX_BALL_ROUNDS = 100
+
+
+class ConvergenceWarning(UserWarning):
+    """The autocorrelation stop rule was not met before ``max_steps``."""
+
+
+# --------------------------------------------------------------------------------------------
+# Settings and result
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass
+class SamplerSettings:
+    """Settings of one sampling run.
+
+    n_walkers: number of walkers (even, at least 2 x the number of sampled parameters).
+    max_steps: total number of ensemble steps of the run (a resumed run counts the stored ones).
+    check_every: steps between two autocorrelation-time checks.
+    tau_factor: stop when ``n_steps > tau_factor * max(tau)`` ...
+    tau_rtol: ... and ``max |delta tau / tau| < tau_rtol`` since the previous check.
+    seed: seed of the initial ball and of emcee's random state; ``None`` draws one from the OS
+        (it is stored in the chain file, so the run can still be repeated).
+    progress: show a tqdm progress bar with the current tau estimate and acceptance fraction.
+    flush_every, flush_seconds: write buffered steps to disk after this many steps or seconds.
+    ball: the initial walkers are drawn from N(start, (ball * start_scale)^2), redrawing those
+        outside the prior.
+    """
+
+    n_walkers: int = 32
+    max_steps: int = 20000
+    check_every: int = 200
+    tau_factor: float = 50.0
+    tau_rtol: float = 0.01
+    seed: int | None = 0
+    progress: bool = True
+    flush_every: int = 50
+    flush_seconds: float = 10.0
+    ball: float = 1.0
+
+    def __post_init__(self) -> None:
+        def _int(name: str, minimum: int) -> None:
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
+                raise ConfigError(
+                    f"sampler setting '{name}' = {value!r}: expected an integer >= {minimum}"
+                )
+            setattr(self, name, int(value))
+
+        def _pos(name: str) -> None:
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, (int, float, np.number)) or not (
+                math.isfinite(float(value)) and float(value) > 0
+            ):
+                raise ConfigError(
+                    f"sampler setting '{name}' = {value!r}: expected a finite number > 0"
+                )
+            setattr(self, name, float(value))
+
+        _int("n_walkers", 4)
+        if self.n_walkers % 2:
+            raise ConfigError(
+                f"sampler setting 'n_walkers' = {self.n_walkers}: expected an even number"
+            )
+        _int("max_steps", 1)
+        _int("check_every", 1)
+        _int("flush_every", 1)
+        for name in ("tau_factor", "tau_rtol", "flush_seconds", "ball"):
+            _pos(name)
+        if self.seed is not None:
+            if isinstance(self.seed, bool) or not isinstance(self.seed, (int, np.integer)) or (
+                self.seed < 0
+            ):
+                raise ConfigError(
+                    f"sampler setting 'seed' = {self.seed!r}: expected a non-negative integer or null"
+                )
+            self.seed = int(self.seed)
+        if not isinstance(self.progress, bool):
+            raise ConfigError(f"sampler setting 'progress' = {self.progress!r}: expected true or false")
+
+    @classmethod
+    def from_dict(cls, values: dict | None, where: str = "sampler") -> SamplerSettings:
+        """Build settings from a config mapping; unknown keys raise a one-line ConfigError."""
+        if values is None:
+            return cls()
+        if not isinstance(values, dict):
+            raise ConfigError(f"config key '{where}': expected a mapping of sampler settings")
+        known = {f.name for f in dataclasses.fields(cls)}
+        unknown = sorted(set(values) - known)
+        if unknown:
+            raise ConfigError(
+                f"config key '{where}.{unknown[0]}' is not a sampler setting; "
+                f"expected one of: {', '.join(sorted(known))}"
+            )
+        return cls(**values)
+
+    def to_dict(self) -> dict:
+        return dataclasses.asdict(self)
+
+
+@dataclass
+class SamplerResult:
+    """Outcome of a run, read back from its chain file.
+
+    samples: (n_samples, n_dim) burnt-in, thinned, flattened samples (emcee's
+        ``get_chain(discard=burn_in, thin=thin, flat=True)`` ordering).
+    log_prob: (n_samples,) log posterior of those samples.
+    n_steps: stored ensemble steps; tau: (n_dim,) integrated autocorrelation time in steps,
+        estimated over the whole stored chain; acceptance_fraction: mean over walkers.
+    best_fit / best_log_prob: the highest-posterior sample of the whole stored chain.
+    status: "converged", "max_steps" (finished, stop rule not met) or "running" (interrupted).
+    notes: human-readable warnings about this result.
+    """
+
+    samples: np.ndarray
+    log_prob: np.ndarray
+    parameter_names: list[str]
+    labels: list[str]
+    prior_bounds: np.ndarray
+    n_steps: int
+    n_walkers: int
+    tau: np.ndarray
+    acceptance_fraction: float
+    converged: bool
+    burn_in: int
+    thin: int
+    chain_path: str
+    config_hash: str
+    best_fit: np.ndarray
+    best_log_prob: float
+    status: str
+    seed: str
+    settings: dict = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def n_dim(self) -> int:
+        return len(self.parameter_names)
+
+
+# --------------------------------------------------------------------------------------------
+# Likelihood interface checks and log-probability wrappers
+# --------------------------------------------------------------------------------------------
+
+
+def _check_likelihood(lik: Any) -> tuple[list[str], list[str], np.ndarray, np.ndarray, np.ndarray]:
+    for attr in ("parameter_names", "labels", "prior_bounds", "start", "start_scale", "log_prob",
+                 "config_hash"):
+        if not hasattr(lik, attr):
+            raise ErgofitError(f"likelihood object has no attribute '{attr}' needed by the sampler")
+    names = [str(n) for n in lik.parameter_names]
+    n_dim = len(names)
+    if n_dim == 0:
+        raise ErgofitError("likelihood has no sampled parameters (parameter_names is empty)")
+    if len(set(names)) != n_dim:
+        raise ErgofitError(f"likelihood parameter_names {names} contain duplicates")
+    labels = [str(s) for s in lik.labels]
+    if len(labels) != n_dim:
+        raise ErgofitError(
+            f"likelihood labels has {len(labels)} entries, expected {n_dim} (one per parameter)"
+        )
+    bounds = np.asarray(lik.prior_bounds, dtype=float)
+    if bounds.shape != (n_dim, 2) or np.isnan(bounds).any() or np.any(bounds[:, 0] >= bounds[:, 1]):
+        raise ErgofitError(
+            f"likelihood prior_bounds: expected an ({n_dim}, 2) array with lower < upper, "
+            f"got {np.array2string(bounds, separator=', ')}"
+        )
+    start = np.asarray(lik.start, dtype=float)
+    scale = np.asarray(lik.start_scale, dtype=float)
+    for attr, arr in (("start", start), ("start_scale", scale)):
+        if arr.shape != (n_dim,) or not np.all(np.isfinite(arr)):
+            raise ErgofitError(f"likelihood {attr}: expected {n_dim} finite numbers, got {arr}")
+    if np.any(scale <= 0):
+        bad = names[int(np.argmax(scale <= 0))]
+        raise ErgofitError(f"likelihood start_scale for '{bad}' must be > 0")
+    outside = (start <= bounds[:, 0]) | (start >= bounds[:, 1])
+    if outside.any():
+        i = int(np.argmax(outside))
+        raise ErgofitError(
+            f"start value {start[i]:g} of '{names[i]}' is outside its prior "
+            f"[{bounds[i, 0]:g}, {bounds[i, 1]:g}]"
+        )
+    if not isinstance(lik.config_hash, str) or not lik.config_hash:
+        raise ErgofitError("likelihood config_hash: expected a non-empty string")
+    return names, labels, bounds, start, scale
+
+
+def _checked_log_prob(lik: Any, theta: np.ndarray) -> np.ndarray:
+    lp = np.asarray(lik.log_prob(theta), dtype=float)
+    if lp.shape != (theta.shape[0],):
+        raise ErgofitError(
+            f"likelihood log_prob returned shape {lp.shape} for {theta.shape[0]} walkers; "
+            f"expected ({theta.shape[0]},)"
+        )
+    bad = np.isnan(lp) | (lp == np.inf)
+    if bad.any():
+        i = int(np.argmax(bad))
+        raise ErgofitError(
+            f"likelihood log_prob is {lp[i]} at theta = {np.array2string(theta[i], separator=', ')}; "
+            "expected a finite number or -inf outside the prior"
+        )
+    return lp
+
+
+class _VectorisedLogProb:
+    """log posterior for all walkers at once (emcee ``vectorize=True``)."""
+
+    def __init__(self, lik: Any):
+        self.lik = lik
+
+    def __call__(self, theta: np.ndarray) -> np.ndarray:
+        return _checked_log_prob(self.lik, np.atleast_2d(theta))
+
+
+class _PerWalkerLogProb:
+    """log posterior of one walker, for ``pool.map`` (picklable when the likelihood is)."""
+
+    def __init__(self, lik: Any):
+        self.lik = lik
+
+    def __call__(self, theta: np.ndarray) -> float:
+        return float(_checked_log_prob(self.lik, np.asarray(theta, dtype=float)[None, :])[0])
+
+
+# --------------------------------------------------------------------------------------------
+# Chain file: emcee HDF5 layout plus ergofit metadata
+# --------------------------------------------------------------------------------------------
+
+
+def _chain_error(path: str, reason: str) -> ErgofitError:
+    reason = " ".join(str(reason).split())
+    return ErgofitError(
+        f"cannot read chain file {path}: {reason}; remove it or choose a new output folder"
+    )
+
+
+def _decode(value: Any) -> Any:
+    if isinstance(value, bytes):
+        return value.decode()
+    if isinstance(value, np.ndarray) and value.dtype.kind in "OSU":
+        return [v.decode() if isinstance(v, bytes) else str(v) for v in value.tolist()]
+    return value
+
+
+@dataclass
+class _Stored:
+    """Everything a resume or a load needs from a chain file."""
+
+    iteration: int
+    n_walkers: int
+    n_dim: int
+    names: list[str]
+    labels: list[str]
+    bounds: np.ndarray
+    config_hash: str
+    status: str
+    seed: str
+    settings: dict
+    initial_coords: np.ndarray
+    initial_log_prob: np.ndarray
+    chain: np.ndarray  # (iteration, n_walkers, n_dim)
+    log_prob: np.ndarray  # (iteration, n_walkers)
+    random_state: tuple | None  # emcee RandomState state after step `iteration`, if consistent
+
+
+def _read_chain(path: str, with_arrays: bool = True) -> _Stored:
+    try:
+        with h5py.File(path, "r") as f:
+            a = f.attrs
+            if "ergofit_format" not in a or _GROUP not in f:
+                raise _chain_error(path, "not an ergofit chain (missing ergofit attributes)")
+            g = f[_GROUP]
+            iteration = int(g.attrs["iteration"])
+            n_walkers, n_dim = int(g.attrs["nwalkers"]), int(g.attrs["ndim"])
+            names = _decode(a["parameter_names"])
+            stored = _Stored(
+                iteration=iteration,
+                n_walkers=n_walkers,
+                n_dim=n_dim,
+                names=list(names),
+                labels=list(_decode(a["labels"])),
+                bounds=np.asarray(a["prior_bounds"], dtype=float).reshape(n_dim, 2),
+                config_hash=str(_decode(a["config_hash"])),
+                status=str(_decode(a["status"])),
+                seed=str(_decode(a["seed"])),
+                settings=json.loads(_decode(a["settings"])),
+                initial_coords=np.array(f["initial_coords"], dtype=float),
+                initial_log_prob=np.array(f["initial_log_prob"], dtype=float),
+                chain=np.empty((0, n_walkers, n_dim)),
+                log_prob=np.empty((0, n_walkers)),
+                random_state=None,
+            )
+            if g["chain"].shape[0] < iteration or g["log_prob"].shape[0] < iteration:
+                raise _chain_error(path, f"datasets shorter than iteration {iteration}")
+            if with_arrays and iteration > 0:
+                stored.chain = np.array(g["chain"][:iteration], dtype=float)
+                stored.log_prob = np.array(g["log_prob"][:iteration], dtype=float)
+            if int(g.attrs.get("ergofit_rng_iteration", -1)) == iteration:
+                items = sorted((k, v) for k, v in g.attrs.items() if k.startswith("random_state_"))
+                if len(items) == 5:
+                    v = [item[1] for item in items]
+                    stored.random_state = (
+                        str(_decode(v[0])), np.asarray(v[1], dtype=np.uint32), int(v[2]),
+                        int(v[3]), float(v[4]),
+                    )
+    except ErgofitError:
+        raise
+    except (OSError, KeyError, ValueError, TypeError, json.JSONDecodeError) as exc:
+        raise _chain_error(path, f"corrupt or not an ergofit chain ({exc})") from None
+    if len(stored.names) != n_dim or stored.initial_coords.shape != (n_walkers, n_dim):
+        raise _chain_error(path, "inconsistent shapes in the chain file")
+    return stored
+
+
+def _create_chain_file(path: str, names, labels, bounds, config_hash: str, settings: dict,
+                       seed: str, coords: np.ndarray, log_prob: np.ndarray,
+                       random_state: tuple) -> None:
+    """Write a new, empty chain file atomically (temp file + rename)."""
+    n_walkers, n_dim = coords.shape
+    directory = os.path.dirname(os.path.abspath(path))
+    fd, tmp = tempfile.mkstemp(prefix=".chain-", suffix=".h5.tmp", dir=directory)
+    os.close(fd)
+    try:
+        with h5py.File(tmp, "w") as f:
+            f.attrs["ergofit_format"] = _FORMAT_VERSION
+            f.attrs["config_hash"] = config_hash
+            f.attrs["parameter_names"] = np.array(names, dtype=h5py.string_dtype())
+            f.attrs["labels"] = np.array(labels, dtype=h5py.string_dtype())
+            f.attrs["prior_bounds"] = np.asarray(bounds, dtype=float)
+            f.attrs["settings"] = json.dumps(settings)
+            f.attrs["seed"] = seed
+            f.attrs["status"] = "running"
+            f.create_dataset("initial_coords", data=coords)
+            f.create_dataset("initial_log_prob", data=log_prob)
+            g = f.create_group(_GROUP)
+            g.attrs["version"] = emcee.__version__
+            g.attrs["nwalkers"] = n_walkers
+            g.attrs["ndim"] = n_dim
+            g.attrs["has_blobs"] = False
+            g.attrs["iteration"] = 0
+            rows = int(max(1, min(256, 2**18 // (8 * n_walkers * n_dim))))
+            g.create_dataset("accepted", data=np.zeros(n_walkers))
+            g.create_dataset("chain", (0, n_walkers, n_dim), maxshape=(None, n_walkers, n_dim),
+                             dtype=float, chunks=(rows, n_walkers, n_dim))
+            g.create_dataset("log_prob", (0, n_walkers), maxshape=(None, n_walkers),
+                             dtype=float, chunks=(rows, n_walkers))
+            _write_random_state(g, random_state, 0)
+        _fsync(tmp)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+        raise
+
+
+def _write_random_state(g: h5py.Group, random_state: tuple, iteration: int) -> None:
+    for i, v in enumerate(random_state):
+        key = f"random_state_{i}"
+        if key in g.attrs:
+            g.attrs.modify(key, v)
+        else:
+            g.attrs[key] = v
+    if "ergofit_rng_iteration" in g.attrs:
+        g.attrs.modify("ergofit_rng_iteration", np.int64(iteration))
+    else:
+        g.attrs["ergofit_rng_iteration"] = np.int64(iteration)
+
+
+def _fsync(path: str) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _set_root_attrs(path: str, **attrs: Any) -> None:
+    with h5py.File(path, "a") as f:
+        for key, value in attrs.items():
+            f.attrs[key] = value
+    _fsync(path)
+
+
+class _ChainWriter:
+    """Buffers steps and appends them to the chain file in crash-safe order."""
+
+    def __init__(self, path: str, iteration: int, accepted: np.ndarray, settings: SamplerSettings):
+        self.path = path
+        self.iteration = iteration  # steps on disk
+        self.accepted = accepted.astype(float)  # per-walker accepted counts, incl. buffer
+        self.flush_every = settings.flush_every
+        self.flush_seconds = settings.flush_seconds
+        self.coords: list[np.ndarray] = []
+        self.log_prob: list[np.ndarray] = []
+        self.random_state: tuple | None = None
+        self.last_flush = time.monotonic()
+
+    def add(self, coords, log_prob, accepted, random_state) -> None:
+        self.coords.append(np.array(coords, dtype=float))
+        self.log_prob.append(np.array(log_prob, dtype=float))
+        self.accepted += accepted
+        self.random_state = random_state
+
+    def due(self) -> bool:
+        return len(self.coords) >= self.flush_every or (
+            self.coords and time.monotonic() - self.last_flush >= self.flush_seconds
+        )
+
+    def ensure_capacity(self, n_total: int) -> None:
+        with h5py.File(self.path, "a") as f:
+            g = f[_GROUP]
+            for name in ("chain", "log_prob"):
+                if g[name].shape[0] < n_total:
+                    g[name].resize(n_total, axis=0)
+        _fsync(self.path)
+
+    def flush(self) -> None:
+        """Write the buffer: rows first (forced to disk), the iteration counter last."""
+        if not self.coords:
+            return
+        m = len(self.coords)
+        start, stop = self.iteration, self.iteration + m
+        with h5py.File(self.path, "a") as f:
+            g = f[_GROUP]
+            for name in ("chain", "log_prob"):
+                if g[name].shape[0] < stop:
+                    g[name].resize(stop, axis=0)
+            g["chain"][start:stop] = np.stack(self.coords)
+            g["log_prob"][start:stop] = np.stack(self.log_prob)
+            g["accepted"][:] = self.accepted
+            f.flush()
+            _write_random_state(g, self.random_state, stop)
+            g.attrs.modify("iteration", np.int64(stop))
+        _fsync(self.path)
+        self.iteration = stop
+        self.coords.clear()
+        self.log_prob.clear()
+        self.last_flush = time.monotonic()
+
+
+# --------------------------------------------------------------------------------------------
+# Signals: defer SIGINT/SIGTERM to the end of the current step
+# --------------------------------------------------------------------------------------------
+
+
+class _DeferredSignals:
+    """Record SIGINT/SIGTERM during a run; deliver them after the chain is flushed.
+
+    Only active in the main thread (Python allows signal handlers nowhere else). A second
+    SIGINT while one is pending raises KeyboardInterrupt at once.
+    """
+
+    _SIGNALS = tuple(s for s in (getattr(signal, "SIGINT", None), getattr(signal, "SIGTERM", None))
+                     if s is not None)
+
+    def __init__(self) -> None:
+        self.received: int | None = None
+        self._old: dict[int, Any] = {}
+
+    def _handler(self, signum, frame) -> None:
+        if self.received is not None and signum == signal.SIGINT:
+            raise KeyboardInterrupt
+        self.received = signum
+
+    def __enter__(self) -> _DeferredSignals:
+        if threading.current_thread() is threading.main_thread():
+            for s in self._SIGNALS:
+                self._old[s] = signal.getsignal(s)
+                signal.signal(s, self._handler)
+        return self
+
+    def restore(self) -> None:
+        for s, old in self._old.items():
+            signal.signal(s, old if old is not None else signal.SIG_DFL)
+        self._old = {}
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        self.restore()
+        if self.received is not None and exc_type is None:
+            if self.received == signal.SIGINT:
+                raise KeyboardInterrupt
+            signal.raise_signal(self.received)
+
+
+# --------------------------------------------------------------------------------------------
+# Convergence helpers
+# --------------------------------------------------------------------------------------------
+
+
+def _tau(chain: np.ndarray) -> np.ndarray:
+    """Integrated autocorrelation time per parameter (emcee, tol=0) of an (n, walkers, dim) chain."""
+    if chain.shape[0] < 2:
+        return np.full(chain.shape[2], np.nan)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.asarray(emcee.autocorr.integrated_time(chain, tol=0), dtype=float)
+
+
+def _stop_rule(n_steps: int, tau: np.ndarray, tau_prev: np.ndarray | None,
+               settings: SamplerSettings) -> bool:
+    if tau_prev is None or not np.all(np.isfinite(tau)) or not np.all(np.isfinite(tau_prev)):
+        return False
+    long_enough = n_steps > settings.tau_factor * float(np.max(tau))
+    stable = float(np.max(np.abs(tau_prev - tau) / tau)) < settings.tau_rtol
+    return bool(long_enough and stable)
+
+
+def _burn_thin(n_steps: int, tau: np.ndarray) -> tuple[int, int, list[str]]:
+    notes = []
+    if np.all(np.isfinite(tau)):
+        burn_in = int(2 * np.max(tau))
+        thin = max(1, int(0.5 * np.min(tau)))
+    else:
+        burn_in, thin = n_steps // 2, 1
+        notes.append("autocorrelation time unavailable; burn-in set to half the chain")
+    if burn_in >= n_steps:
+        notes.append(
+            f"burn-in 2*max(tau) = {burn_in} is not shorter than the chain ({n_steps} steps); "
+            "kept the second half of the chain: the chain is far too short"
+        )
+        burn_in = n_steps // 2
+    if n_steps - burn_in < thin:
+        thin = 1
+    return burn_in, thin, notes
+
+
+def _acceptance(initial: np.ndarray, chain: np.ndarray) -> np.ndarray:
+    """Per-walker accepted counts: a stretch-move step is accepted iff the walker moved."""
+    if chain.shape[0] == 0:
+        return np.zeros(initial.shape[0])
+    previous = np.concatenate([initial[None], chain[:-1]], axis=0)
+    return np.any(chain != previous, axis=2).sum(axis=0).astype(float)
+
+
+def _result_from(stored: _Stored, path: str, notes: list[str] | None = None) -> SamplerResult:
+    notes = list(notes or [])
+    n = stored.iteration
+    if n == 0:
+        raise ErgofitError(
+            f"chain file {path} has no stored steps yet; continue the run with resume "
+            "(--resume) or remove the file"
+        )
+    tau = _tau(stored.chain)
+    burn_in, thin, burn_notes = _burn_thin(n, tau)
+    notes += burn_notes
+    kept = stored.chain[burn_in + thin - 1::thin]
+    kept_lp = stored.log_prob[burn_in + thin - 1::thin]
+    samples = kept.reshape(-1, stored.n_dim)
+    log_prob = kept_lp.reshape(-1)
+    flat_lp = stored.log_prob.reshape(-1)
+    i_best = int(np.argmax(flat_lp))
+    best = stored.chain.reshape(-1, stored.n_dim)[i_best]
+    accepted = _acceptance(stored.initial_coords, stored.chain)
+    converged = stored.status == "converged"
+    if stored.status == "running":
+        notes.append(f"run was interrupted after {n} steps; continue it with resume (--resume)")
+    elif not converged:
+        tau_text = f"{np.max(tau):.1f}" if np.all(np.isfinite(tau)) else "undefined"
+        notes.append(
+            f"not converged: the stop rule n_steps > {stored.settings.get('tau_factor')} max(tau) "
+            f"was not met in {n} steps (max tau = {tau_text}); resume with a larger max_steps"
+        )
+    return SamplerResult(
+        samples=samples, log_prob=log_prob, parameter_names=stored.names, labels=stored.labels,
+        prior_bounds=stored.bounds, n_steps=n, n_walkers=stored.n_walkers, tau=tau,
+        acceptance_fraction=float(np.mean(accepted) / n), converged=converged, burn_in=burn_in,
+        thin=thin, chain_path=path, config_hash=stored.config_hash, best_fit=best.copy(),
+        best_log_prob=float(flat_lp[i_best]), status=stored.status, seed=stored.seed,
+        settings=stored.settings, notes=notes,
+    )
+
+
+def _chain_path(out_dir: str | os.PathLike) -> str:
+    out_dir = os.fspath(out_dir)
+    if out_dir.endswith(".h5") and not os.path.isdir(out_dir):
+        return out_dir
+    return os.path.join(out_dir, CHAIN_FILENAME)
+
+
+def load_chain(out_dir: str | os.PathLike) -> SamplerResult:
+    """Read the chain of a finished or interrupted run (``OUT_DIR/chain.h5``, or a ``.h5`` path).
+
+    Burn-in, thinning and tau are recomputed from the stored chain (see the module docstring).
+    Raises ErgofitError (one line, naming the file) when the file is missing, unreadable, not an
+    ergofit chain, or has no stored step.
+    """
+    path = _chain_path(out_dir)
+    if not os.path.isfile(path):
+        raise ErgofitError(f"no chain file {path}; run the sampler first")
+    return _result_from(_read_chain(path), path)
+
+
+# --------------------------------------------------------------------------------------------
+# The run
+# --------------------------------------------------------------------------------------------
+
+
+def _initial_ball(lik: Any, start, scale, bounds, names, settings: SamplerSettings,
+                  rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    n_walkers, n_dim = settings.n_walkers, len(start)
+    coords = np.empty((n_walkers, n_dim))
+    log_prob = np.full(n_walkers, -np.inf)
+    todo = np.ones(n_walkers, dtype=bool)
+    for _ in range(_MAX_BALL_ROUNDS):
+        k = int(todo.sum())
+        coords[todo] = start + settings.ball * scale * rng.standard_normal((k, n_dim))
+        inside = np.all((coords > bounds[:, 0]) & (coords < bounds[:, 1]), axis=1)
+        check = todo & inside
+        if check.any():
+            log_prob[check] = _checked_log_prob(lik, coords[check])
+        todo = ~(inside & np.isfinite(log_prob))
+        if not todo.any():
+            return coords, log_prob
+    raise ErgofitError(
+        f"could not place {int(todo.sum())} of {n_walkers} walkers inside the prior (finite "
+        f"log_prob) in {_MAX_BALL_ROUNDS} draws around start; reduce start_scale or move start "
+        f"of {names} away from the prior edges"
+    )
+
+
+def _emcee_state_from_seed(rng: np.random.Generator) -> tuple:
+    return np.random.RandomState(int(rng.integers(2**32 - 1))).get_state()
+
+
+def run_sampler(lik: Any, settings: SamplerSettings | None, out_dir: str | os.PathLike,
+                resume: bool = False, pool: Any = None) -> SamplerResult:
+    """Sample the posterior of ``lik`` with emcee and store the chain in ``out_dir/chain.h5``.
+
+    lik: object with parameter_names, labels, prior_bounds, start, start_scale, config_hash and
+        a vectorised ``log_prob(theta[n_walkers, n_dim]) -> (n_walkers,)`` (-inf outside prior).
+    settings: :class:`SamplerSettings` (``None``: defaults).
+    resume: continue the chain stored in ``out_dir`` (made with the same config hash). Without
+        it, an existing chain is never touched: the call refuses.
+    pool: object with a ``map`` method (multiprocessing pool, MPI pool); the log posterior is then
+        evaluated walker by walker through ``pool.map`` (the likelihood must be picklable).
+
+    Returns the :class:`SamplerResult` read back from the file. Emits :class:`ConvergenceWarning`
+    when ``max_steps`` is reached before the stop rule is met.
+    """
+    settings = SamplerSettings() if settings is None else settings
+    if not isinstance(settings, SamplerSettings):
+        raise ErgofitError(f"settings: expected SamplerSettings, got {type(settings).__name__}")
+    names, labels, bounds, start, scale = _check_likelihood(lik)
+    n_dim = len(names)
+    if settings.n_walkers < 2 * n_dim:
+        raise ConfigError(
+            f"sampler setting 'n_walkers' = {settings.n_walkers}: expected at least "
+            f"2 x {n_dim} parameters = {2 * n_dim}"
+        )
+    out_dir = os.fspath(out_dir)
+    if os.path.exists(out_dir) and not os.path.isdir(out_dir):
+        raise ErgofitError(f"output folder {out_dir} exists and is not a folder")
+    os.makedirs(out_dir, exist_ok=True)
+    path = os.path.join(out_dir, CHAIN_FILENAME)
+    notes: list[str] = []
+
+    if os.path.exists(path) and not resume:
+        raise ErgofitError(
+            f"chain file {path} exists already; continue it with resume (--resume) or choose a new "
+            "output folder"
+        )
+
+    if os.path.exists(path):
+        stored = _read_chain(path)
+        if stored.config_hash != lik.config_hash:
+            raise ErgofitError(
+                f"chain file {path} was made with config hash {stored.config_hash}, this config has "
+                f"{lik.config_hash}; start a new run in a new output folder or remove the chain file"
+            )
+        if stored.names != names:
+            raise ErgofitError(
+                f"chain file {path} samples {stored.names}, the likelihood samples {names}; start a "
+                "new run in a new output folder"
+            )
+        if stored.n_walkers != settings.n_walkers:
+            raise ConfigError(
+                f"sampler setting 'n_walkers' = {settings.n_walkers} differs from the "
+                f"{stored.n_walkers} walkers of {path}; resume with n_walkers: {stored.n_walkers}"
+            )
+        n0 = stored.iteration
+        seed = stored.seed
+        if n0 == 0:
+            coords, log_prob = stored.initial_coords, stored.initial_log_prob
+        else:
+            coords, log_prob = stored.chain[-1], stored.log_prob[-1]
+        random_state = stored.random_state
+        if random_state is None:
+            ss = np.random.SeedSequence([int(seed), n0])
+            random_state = _emcee_state_from_seed(np.random.default_rng(ss))
+            notes.append("stored random state did not match the last step; continued with a "
+                         "fresh one derived from the seed (the chain stays valid but differs from "
+                         "an uninterrupted run)")
+        # Rebuild the convergence bookkeeping of the uninterrupted run.
+        c = (n0 // settings.check_every) * settings.check_every
+        tau_prev = _tau(stored.chain[:c]) if c > 0 else None
+        already = False
+        if c == n0 and c > settings.check_every and stored.status != "converged":
+            already = _stop_rule(n0, tau_prev, _tau(stored.chain[:c - settings.check_every]),
+                                 settings)
+        if stored.status == "converged" or already:
+            if already:
+                _set_root_attrs(path, status="converged")
+            return _result_from(_read_chain(path), path, notes + ["run had converged already"])
+        accepted = _acceptance(stored.initial_coords, stored.chain)
+        store_settings = dict(stored.settings, **{k: v for k, v in settings.to_dict().items()
+                                                  if k not in ("seed", "n_walkers")})
+        _set_root_attrs(path, settings=json.dumps(store_settings), status="running")
+    else:
+        ss = np.random.SeedSequence(settings.seed)
+        seed = str(ss.entropy)
+        rng = np.random.default_rng(ss)
+        coords, log_prob = _initial_ball(lik, start, scale, bounds, names, settings, rng)
+        random_state = _emcee_state_from_seed(rng)
+        store_settings = settings.to_dict()
+        _create_chain_file(path, names, labels, bounds, lik.config_hash, store_settings, seed,
+                           coords, log_prob, random_state)
+        n0, tau_prev, accepted = 0, None, np.zeros(settings.n_walkers)
+
+    if n0 >= settings.max_steps:
+        _set_root_attrs(path, status="max_steps")
+        result = _result_from(_read_chain(path), path, notes)
+        warnings.warn(f"{path}: " + result.notes[-1], ConvergenceWarning, stacklevel=2)
+        return result
+
+    converged = _sample(lik, settings, path, pool, coords, log_prob, random_state, n0, tau_prev,
+                        accepted, first=(n0 == 0 and not resume) or n0 == 0)
+    result = _result_from(_read_chain(path), path, notes)
+    if not converged:
+        warnings.warn(f"{path}: " + result.notes[-1], ConvergenceWarning, stacklevel=2)
+    return result
+
+
+def _sample(lik, settings: SamplerSettings, path: str, pool, coords, log_prob, random_state,
+            n0: int, tau_prev, accepted, first: bool) -> bool:
+    """Run emcee from (coords, log_prob, random_state) at step n0; return True if converged."""
+    n_walkers, n_dim = coords.shape
+    if pool is None:
+        sampler = emcee.EnsembleSampler(n_walkers, n_dim, _VectorisedLogProb(lik), vectorize=True)
+    else:
+        if not hasattr(pool, "map"):
+            raise ErgofitError(f"pool: expected an object with a map method, got {type(pool).__name__}")
+        sampler = emcee.EnsembleSampler(n_walkers, n_dim, _PerWalkerLogProb(lik), pool=pool)
+    state = emcee.State(np.array(coords), log_prob=np.array(log_prob), random_state=random_state)
+    writer = _ChainWriter(path, n0, accepted, settings)
+    writer.ensure_capacity(settings.max_steps)
+    bar = _progress_bar(settings, n0)
+    converged = False
+    finished = False
+    it = n0
+    previous = np.array(coords)
+    tau_text = "-"
+    try:
+        with _DeferredSignals() as signals:
+            try:
+                try:
+                    steps = sampler.sample(state, iterations=settings.max_steps - n0, store=False,
+                                           skip_initial_state_check=not first)
+                    for state in steps:
+                        it += 1
+                        moved = np.any(state.coords != previous, axis=1)
+                        previous = np.array(state.coords)
+                        writer.add(state.coords, state.log_prob, moved, state.random_state)
+                        check = it % settings.check_every == 0
+                        if check or writer.due() or it == settings.max_steps:
+                            writer.flush()
+                        if check:
+                            tau = _tau(_read_chain(path).chain)
+                            converged = _stop_rule(it, tau, tau_prev, settings)
+                            tau_prev = tau
+                            tau_text = f"{np.max(tau):.1f}"
+                        if bar is not None:
+                            bar.update(1)
+                            if check or it % 20 == 0:
+                                bar.set_postfix_str(
+                                    f"tau={tau_text} acc={np.mean(writer.accepted) / it:.2f}",
+                                    refresh=False)
+                        if converged or signals.received is not None:
+                            break
+                    finished = True
+                except ValueError as exc:
+                    if isinstance(exc, ErgofitError):
+                        raise
+                    if "condition number" in str(exc):
+                        raise ErgofitError(
+                            "initial walkers are not linearly independent; increase start_scale "
+                            "or the sampler setting 'ball'") from None
+                    raise
+            finally:
+                writer.flush()
+                if finished and signals.received is None:
+                    _set_root_attrs(path, status="converged" if converged else "max_steps")
+                signals.restore()
+    finally:
+        if bar is not None:
+            bar.close()
+    return converged
+
+
+def _progress_bar(settings: SamplerSettings, n0: int):
+    if not settings.progress:
+        return None
+    from tqdm.auto import tqdm
+
+    return tqdm(total=settings.max_steps, initial=n0, unit="step", desc="sampling",
+                dynamic_ncols=True)
