@@ -102,7 +102,7 @@ def tophat_window(x):
     """Fourier transform of a normalised spherical top hat, W(x) = 3 (sin x - x cos x) / x^3.
 
     Uses the series 1 - x^2/10 + x^4/280 - x^6/15120 for x < 0.1 to avoid cancellation.
-    W(0) = 1 (e.g. Peebles 1980, The Large-Scale Structure of the Universe, section 26).
+    W(0) = 1 (standard top-hat filter, common practice).
     """
     x = np.asarray(x, dtype=float)
     small = x < 0.1
@@ -537,8 +537,9 @@ class Cosmology:
     def growth_factor(self, z, norm="today"):
         """Linear growth factor D(z) of the growing mode (scale independent, no radiation).
 
-        Exact solution of the growth equation for flat wCDM with constant w
-        (Silveira & Waga 1994, PRD 50, 4890; Percival 2005, A&A 443, 819, eq. 15):
+        Exact solution of the growth equation for flat wCDM with constant w (Percival 2005,
+        A&A 443, 819; cited from memory, and checked in the tests against a numerical solution
+        of the growth ODE and against the Heath integral):
             D_md(a) = a 2F1(-1/(3w), (w-1)/(2w); 1 - 5/(6w); -a^{-3w} Omega_de0/Omega_m0),
         normalised as D_md -> a deep in matter domination. For w = -1 it equals the Heath (1977)
         integral (5/2) Omega_m0 E(a) int_0^a da'/(a' E)^3.
@@ -605,7 +606,8 @@ class Cosmology:
         With Delta^2_R(k) = A_s (k/k_pivot)^(n_s-1) and, in the comoving gauge,
         delta_m(k, z) = (2/5) k^2 T(k) D_md(z) R(k) / (Omega_m0 H0^2/c^2) (Poisson equation with
         the matter-era potential Phi = (3/5) R T(k) D_md/a; Dodelson 2003, Modern Cosmology,
-        ch. 7; Eisenstein & Hu 1999, ApJ 511, 5, eq. A1 in delta_H form):
+        ch. 7; the same relation in delta_H form in Eisenstein & Hu 1999, ApJ 511, 5; both
+        cited from memory, and the formula re-derived here):
             P(k, z) = (2 pi^2 / k^3) (4/25) A_s (k/k_pivot)^(n_s-1) (k c/H0)^4 T^2 D_md^2 / Omega_m0^2.
         k_pivot is in 1/Mpc and converted to h/Mpc as k_pivot / h.
         """
@@ -631,7 +633,7 @@ class Cosmology:
     def sigma_R(self, R, z=0.0):
         """rms linear density contrast in a top-hat sphere of radius R (Mpc/h) at redshift z:
         sigma^2(R) = int dlnk Delta^2(k) W^2(kR), W(x) = 3 (sin x - x cos x)/x^3
-        (Peebles 1980, section 26), Delta^2 = k^3 P / (2 pi^2).
+        (standard definition, common practice), Delta^2 = k^3 P / (2 pi^2).
 
         Fixed 577-point composite Simpson quadrature in x = kR (see ``_sigma_quadrature``);
         relative error < 2e-5 on sigma for 0.5 <= R <= 1000 Mpc/h (tested against scipy quad).

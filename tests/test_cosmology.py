@@ -56,8 +56,8 @@ def test_background_against_astropy(w):
 
 
 def test_einstein_de_sitter_limits():
-    # Source: Einstein-de Sitter closed forms (e.g. Peebles 1993, Principles of Physical
-    # Cosmology, sec. 13): chi = 2 c/H0 (1 - 1/sqrt(1+z)), D = a, f = 1, calH'/calH^2 = -1/2.
+    # Source: Einstein-de Sitter closed forms (textbook, common practice):
+    # chi = 2 c/H0 (1 - 1/sqrt(1+z)), D = a, f = 1, calH'/calH^2 = -1/2 (calH = 2/eta).
     c = Cosmology(h=0.5, omega_b=0.02, omega_cdm=0.23, n_s=1.0, A_s=2e-9, m_nu=0.0)
     assert c.Omega_m0 == pytest.approx(1.0, abs=1e-14)
     np.testing.assert_allclose(c.comoving_distance(Z),
@@ -70,7 +70,8 @@ def test_einstein_de_sitter_limits():
 def test_radiation_neglect_cost_in_docstring():
     # The module docstring states that neglecting radiation makes H low by 5.7e-4 at z=3 for
     # planck2018. Check with Omega_r h^2 = 2.4728e-5 (1 + 0.2271*3.046) (photons at 2.7255 K
-    # plus massless neutrinos; Komatsu et al. 2011, ApJS 192, 18, eq. 7 -- from memory).
+    # plus massless neutrinos with rho_nu/rho_gamma = 0.2271 N_eff; common practice, values
+    # from memory).
     import likelihood.cosmology as mod
     c = Cosmology.from_preset("planck2018")
     omega_r = 2.4728e-5 * (1 + 0.2271 * 3.046) / c.h**2
@@ -103,9 +104,10 @@ def test_growth_against_heath_integral():
 
 @pytest.mark.parametrize("w,omega_cdm", [(-0.9, 0.12), (-1.3, 0.12), (-0.6, 0.05)])
 def test_growth_against_ode(w, omega_cdm):
-    # Source: linear growth equation (e.g. Linder & Jenkins 2003, MNRAS 346, 573, eq. 9 in
-    # ln a form): D'' + (2 + dlnH/dlna) D' = (3/2) Omega_m(a) D, solved with scipy solve_ivp
-    # from a = 1e-5 with the matter-era growing mode D = a, D' = a.
+    # Source: linear growth equation of pressureless matter in a smooth dark-energy background
+    # (e.g. Linder & Jenkins 2003, MNRAS 346, 573; from memory), in ln a form:
+    # D'' + (2 + dlnH/dlna) D' = (3/2) Omega_m(a) D, solved with scipy solve_ivp from a = 1e-5
+    # with the matter-era growing mode D = a, D' = a.
     c = _cosmo(w, omega_cdm=omega_cdm)
 
     def rhs(lna, y):
@@ -133,8 +135,10 @@ def test_growth_rate_linder_gamma(w, gamma):
 
 def test_matter_era_normalisation():
     # D_md -> a deep in matter domination (definition; radiation neglected in the background, so
-    # it holds exactly as a -> 0). Leading correction for Lambda: D/a = 1 - (2/11) (Omega_L/Omega_m)
-    # a^3 (series of the growth ODE; e.g. Peebles 1980, sec. 13) -> 3e-6 at z = 50.
+    # it holds exactly as a -> 0). Leading correction for Lambda, derived here: with
+    # y = (Omega_L/Omega_m) a^3, Omega_m(a) = 1 - y, dlnH/dlna = -3/2 + (3/2) y; inserting
+    # D = a (1 + eps y) in D'' + (2 + dlnH/dlna) D' = (3/2) Omega_m(a) D gives
+    # 18 eps + 3/2 = (3/2) eps - 3/2, eps = -2/11 -> D/a - 1 = -3e-6 at z = 50.
     c = Cosmology.from_preset("planck2018")
     a = 1 / 51
     ratio = c.growth_factor(50.0, norm="matter") / a
@@ -163,8 +167,8 @@ def test_eh98_against_colossus(params):
 
 
 def test_transfer_limits_and_wiggles():
-    # T -> 1 as k -> 0 (EH98 sec. 2); the no-wiggle form follows the average of the wiggly one
-    # through the BAO range to a few per cent (EH98 sec. 4.2, Fig. 6 -- from memory).
+    # T -> 1 as k -> 0 (EH98 normalisation); the no-wiggle form is built to follow the mean of
+    # the wiggly one through the BAO range (EH98 sec. 4.2; the few-% level is from memory).
     c = Cosmology.from_preset("planck2018")
     assert c.transfer(1e-7) == pytest.approx(1.0, abs=1e-8)
     k = np.linspace(0.02, 0.4, 2000)
@@ -210,7 +214,7 @@ def test_sigma8_planck():
 
 @pytest.mark.parametrize("R", [0.5, 8.0, 100.0, pytest.param(1000.0, marks=pytest.mark.slow)])
 def test_sigma_R_against_quad(R):
-    # sigma^2(R) = int dlnk k^3 P(k)/(2 pi^2) W^2(kR) (Peebles 1980 sec. 26), by scipy quad.
+    # sigma^2(R) = int dlnk k^3 P(k)/(2 pi^2) W^2(kR) (standard definition), by scipy quad.
     c = Cosmology.from_preset("planck2018")
 
     def integrand(lnk):
