@@ -132,7 +132,7 @@ def test_pieces_add_up(cosmo):
 # Kaiser, Legendre algebra
 # ----------------------------------------------------------------------------------------------
 def test_kaiser_multipoles(cosmo):
-    """Kaiser (1987) / Hamilton (1992, ApJL 385, L5, eq. 2.4-ish, from memory):
+    """Kaiser (1987, MNRAS 227, 1); Hamilton (1992, ApJ 385, L5); closed forms from memory:
     P0 = (b^2 + 2bf/3 + f^2/5) P, P2 = (4bf/3 + 4f^2/7) P, P4 = 8 f^2 P / 35."""
     z, b = 0.7, 1.8
     k = np.geomspace(0.01, 0.2, 7)
@@ -223,8 +223,6 @@ def test_fnl_k2_slope(cosmo):
     k = np.array([1e-5, 2e-5])
     a = fnl_alpha(cosmo, k, 1.0)
     assert math.log(a[1] / a[0]) / math.log(2.0) == pytest.approx(-2.0, abs=1e-5)
-    # order of magnitude of the classic statement "Delta_b ~ 1e-4 f_NL (b-1)... at k = 0.01 h/Mpc"
-    # is not used; the amplitude is checked in test_fnl_bias_dalal_amplitude.
 
 
 # ----------------------------------------------------------------------------------------------
