@@ -37,9 +37,9 @@ import json
 import math
 import os
 import signal
-import tempfile
 import threading
 import time
+import uuid
 import warnings
 from dataclasses import dataclass, field
 from typing import Any
@@ -383,11 +383,11 @@ def _create_chain_file(path: str, names, labels, bounds, config_hash: str, setti
                        random_state: tuple) -> None:
     """Write a new, empty chain file atomically (temp file + rename)."""
     n_walkers, n_dim = coords.shape
-    directory = os.path.dirname(os.path.abspath(path))
-    fd, tmp = tempfile.mkstemp(prefix=".chain-", suffix=".h5.tmp", dir=directory)
-    os.close(fd)
+    directory, name = os.path.split(os.path.abspath(path))
+    # a fresh unique name (not mkstemp, whose 0600 mode would stick to the chain file)
+    tmp = os.path.join(directory, f".{name}.{os.getpid()}.{uuid.uuid4().hex[:8]}.tmp")
     try:
-        with h5py.File(tmp, "w") as f:
+        with h5py.File(tmp, "x") as f:
             f.attrs["ergofit_format"] = _FORMAT_VERSION
             f.attrs["config_hash"] = config_hash
             f.attrs["parameter_names"] = np.array(names, dtype=h5py.string_dtype())

@@ -1,0 +1,613 @@
+"""Posterior summaries of a run: getdist statistics, tables, triangle and multipoles figures.
+
+Everything here reads a :class:`likelihood.sampler.SamplerResult` (or the run folder through
+:func:`likelihood.sampler.load_chain`) and writes into the run folder:
+
+``summary.json``      per parameter (sampled and derived): mean, std, median, 68% and 95%
+                      marginal limits (getdist), best fit; plus run diagnostics, chi2/dof at the
+                      best fit, config hash and notes.
+``constraints.md``    mean with 68% limits and the 95% interval per parameter (Markdown table).
+``constraints.tex``   the same as a LaTeX ``tabular`` to ``\\input`` in a paper.
+``triangle.png/pdf``  getdist triangle plot, filled 68/95% contours and 1-D marginals.
+``multipoles.png``    data with error bars per multipole, best-fit model, residuals in sigma.
+
+Statistics. Marginal limits are getdist's (Lewis 2019, arXiv:1910.13970): from the kernel-
+smoothed 1-D marginal, integrating inwards equally from both tails unless the posterior is
+skewed, then equal-probability (density-threshold) limits; one-tailed limits are reported when
+the posterior hits a prior bound (``limit_type`` "upper limit"/"lower limit"). The credible
+levels are 0.68 and 0.95 (getdist's default convention, not 0.6827/0.9545). "Best fit" is the
+highest-posterior sample in the stored chain, not an optimiser's maximum: with flat priors it
+approximates the maximum likelihood only to within the sampling scatter (for d parameters
+chi2 exceeds its minimum by about a few hundredths to a few tenths).
+
+Numbers in the tables are rounded by the Particle Data Group rule (PDG, Review of Particle
+Physics, Introduction, "Rounding"): the three leading digits of the error decide between two
+significant digits (100-354), one (355-949) or rounding up to two (950-999).
+
+Files are written atomically (temporary file in the same folder, then ``os.replace``), so an
+interrupted summary never leaves a half-written file. Figures use matplotlib's Agg canvas.
+
+Public API: :func:`make_samples`, :func:`marginal_stats`, :func:`write_summary`,
+:func:`plot_triangle`, :func:`plot_multipoles`, :func:`overlay`, :func:`summarize`.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import json
+import math
+import os
+import uuid
+import warnings
+from typing import Any, Callable, Sequence
+
+import numpy as np
+
+from .errors import ErgofitError
+from .sampler import SamplerResult, load_chain
+
+__all__ = [
+    "make_samples",
+    "marginal_stats",
+    "overlay",
+    "plot_multipoles",
+    "plot_triangle",
+    "summarize",
+    "write_summary",
+]
+
+_CONTOURS = (0.68, 0.95)
+_LIMIT_TYPES = {"two": "two-sided", ">": "upper limit", "<": "lower limit", "none": "none"}
+
+
+# --------------------------------------------------------------------------------------------
+# Atomic file output
+# --------------------------------------------------------------------------------------------
+
+
+def _atomic_write(path: str, write: Callable[[str], None], suffix: str) -> None:
+    """Call ``write(tmp_path)`` on a temporary file beside ``path``, then rename it to ``path``."""
+    directory, name = os.path.split(os.path.abspath(path))
+    # not mkstemp: its 0600 mode would stick to the output file
+    tmp = os.path.join(directory, f".{name}.{os.getpid()}.{uuid.uuid4().hex[:8]}{suffix}")
+    try:
+        write(tmp)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+        raise
+
+
+def _write_text(path: str, text: str) -> None:
+    def write(tmp: str) -> None:
+        with open(tmp, "w", encoding="utf-8") as f:
+            f.write(text)
+
+    _atomic_write(path, write, ".tmp")
+
+
+def _save_figure(fig, path: str, dpi: int = 150, tight: bool = True) -> None:
+    fmt = os.path.splitext(path)[1].lstrip(".").lower()
+    bbox = "tight" if tight else None
+    _atomic_write(path, lambda tmp: fig.savefig(tmp, format=fmt, dpi=dpi, bbox_inches=bbox),
+                  "." + fmt)
+
+
+# --------------------------------------------------------------------------------------------
+# getdist samples and statistics
+# --------------------------------------------------------------------------------------------
+
+
+def _derived_values(lik: Any, theta: np.ndarray) -> tuple[list[str], list[str], np.ndarray]:
+    names = list(getattr(lik, "derived_names", []) or [])
+    labels = list(getattr(lik, "derived_labels", []) or [])
+    if not names:
+        return [], [], np.empty((theta.shape[0], 0))
+    if len(labels) != len(names):
+        raise ErgofitError(
+            f"likelihood derived_labels has {len(labels)} entries, expected {len(names)}"
+        )
+    values = np.asarray(lik.derived(theta), dtype=float)
+    if values.shape != (theta.shape[0], len(names)):
+        raise ErgofitError(
+            f"likelihood derived() returned shape {values.shape}, expected "
+            f"({theta.shape[0]}, {len(names)})"
+        )
+    bad = ~np.isfinite(values).all(axis=0)
+    if bad.any():
+        raise ErgofitError(
+            f"likelihood derived() gave non-finite values for '{names[int(np.argmax(bad))]}'"
+        )
+    return names, labels, values
+
+
+def _check_same_run(result: SamplerResult, lik: Any) -> None:
+    if lik is not None and getattr(lik, "config_hash", result.config_hash) != result.config_hash:
+        raise ErgofitError(
+            f"likelihood config hash {lik.config_hash} differs from {result.config_hash} of chain "
+            f"{result.chain_path}; the config changed after the run, summarise with the run's "
+            "config.yaml"
+        )
+    if lik is not None and list(lik.parameter_names) != list(result.parameter_names):
+        raise ErgofitError(
+            f"likelihood samples {list(lik.parameter_names)} but chain {result.chain_path} holds "
+            f"{list(result.parameter_names)}"
+        )
+
+
+def _check_labels(names: Sequence[str], labels: Sequence[str]) -> None:
+    """Every label must be typeset by matplotlib's mathtext (the figures use it)."""
+    from matplotlib.mathtext import MathTextParser
+
+    parser = MathTextParser("path")
+    for name, label in zip(names, labels):
+        try:
+            parser.parse(f"${label}$")
+        except ValueError as exc:
+            reason = " ".join(str(exc).split())
+            raise ErgofitError(
+                f"label '{label}' of parameter '{name}' is not valid LaTeX for matplotlib "
+                f"(write it without $, e.g. f_{{\\rm NL}}): {reason}"
+            ) from None
+
+
+def make_samples(result: SamplerResult, lik: Any = None, label: str | None = None):
+    """getdist ``MCSamples`` of a run: LaTeX labels, prior ranges, derived parameters.
+
+    result: the run (its kept samples, names, labels and prior bounds are used).
+    lik: optional likelihood; when given (and it has ``derived_names``), ``lik.derived`` is
+        evaluated on every kept sample and added as derived parameters.
+    label: legend label of these samples (default: the run folder's name).
+    Infinite prior bounds become open ranges (getdist ``None``).
+    """
+    from getdist import MCSamples
+
+    _check_same_run(result, lik)
+    names = list(result.parameter_names)
+    _check_labels(names, result.labels)
+    ranges = {
+        n: [float(lo) if np.isfinite(lo) else None, float(hi) if np.isfinite(hi) else None]
+        for n, (lo, hi) in zip(names, np.asarray(result.prior_bounds, dtype=float))
+    }
+    if label is None:
+        label = os.path.basename(os.path.dirname(os.path.abspath(result.chain_path)))
+    with contextlib.redirect_stdout(io.StringIO()):  # getdist prints "Removed no burn in"
+        samples = MCSamples(
+            samples=np.asarray(result.samples, dtype=float),
+            loglikes=-np.asarray(result.log_prob, dtype=float),
+            names=names, labels=list(result.labels), ranges=ranges, label=label,
+            sampler="mcmc", ignore_rows=0,
+            settings={"contours": " ".join(str(c) for c in _CONTOURS)},
+        )
+    if lik is not None:
+        d_names, d_labels, values = _derived_values(lik, np.asarray(result.samples, dtype=float))
+        _check_labels(d_names, d_labels)
+        for j, (n, lab) in enumerate(zip(d_names, d_labels)):
+            samples.addDerived(values[:, j], name=n, label=lab)
+    return samples
+
+
+def _num(x: Any) -> float | None:
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+def marginal_stats(samples) -> dict[str, dict]:
+    """Per parameter: label, mean, std, median, interval68/95 and their limit types (getdist)."""
+    marge = samples.getMargeStats()
+    contours = [float(c) for c in samples.contours[: len(_CONTOURS)]]
+    if not np.allclose(contours, _CONTOURS):
+        raise ErgofitError(f"getdist contours are {contours}, expected {list(_CONTOURS)}")
+    out: dict[str, dict] = {}
+    for info in samples.paramNames.names:
+        p = marge.parWithName(info.name)
+        column = samples.samples[:, samples.index[info.name]]
+        entry = {
+            "label": info.label,
+            "derived": bool(info.isDerived),
+            "mean": _num(p.mean),
+            "std": _num(p.err),
+            "median": _num(np.median(column)),
+        }
+        for level, lim in zip(("68", "95"), p.limits[:2]):
+            entry[f"interval{level}"] = [_num(lim.lower), _num(lim.upper)]
+            entry[f"limit_type{level}"] = _LIMIT_TYPES[lim.limitTag()]
+        out[info.name] = entry
+    return out
+
+
+# --------------------------------------------------------------------------------------------
+# Number formatting (PDG rounding rule)
+# --------------------------------------------------------------------------------------------
+
+
+def _decimals(err: float) -> int:
+    """Decimal places for a value with uncertainty ``err`` (PDG rounding rule, see module doc)."""
+    if err is None or not math.isfinite(err) or err <= 0:
+        return 4
+    exponent = math.floor(math.log10(err))
+    leading = int(err / 10.0 ** (exponent - 2) + 1e-9)  # three leading digits, 100..999
+    if leading >= 950:  # rounds up to 1000: two significant digits of the next decade
+        exponent, significant = exponent + 1, 2
+    else:
+        significant = 1 if leading >= 355 else 2
+    return significant - 1 - exponent
+
+
+def _fmt(x: float | None, decimals: int) -> str:
+    """``x`` rounded to ``decimals`` places (negative: to tens, hundreds, ...)."""
+    if x is None:
+        return "-"
+    if abs(x) >= 1e9 or decimals > 12:
+        return f"{x:.3g}"
+    if decimals < 0:
+        text = f"{round(x, decimals):.0f}"
+    else:
+        text = f"{x:.{decimals}f}"
+    return text[1:] if text.startswith("-") and float(text) == 0 else text
+
+
+_rounded_error = _fmt
+
+
+def _central(entry: dict) -> tuple[str, str, str]:
+    """(mean, +err, -err) strings for a two-sided 68% limit."""
+    mean = entry["mean"]
+    lo, hi = entry["interval68"]
+    up, down = hi - mean, mean - lo
+    dec = _decimals(min(up, down)) if up > 0 and down > 0 else _decimals(entry["std"])
+    return _fmt(mean, dec), _rounded_error(up, dec), _rounded_error(down, dec)
+
+
+def _one_sided(entry: dict, level: str, tex: bool) -> str:
+    kind = entry[f"limit_type{level}"]
+    lo, hi = entry[f"interval{level}"]
+    dec = _decimals(entry["std"])
+    lt, gt = (r"<", r">") if tex else ("<", ">")
+    if kind == "upper limit" and hi is not None:
+        return f"{lt} {_fmt(hi, dec)}"
+    if kind == "lower limit" and lo is not None:
+        return f"{gt} {_fmt(lo, dec)}"
+    return "unconstrained" if not tex else r"\text{--}"
+
+
+def _interval(entry: dict, level: str, tex: bool) -> str:
+    if entry[f"limit_type{level}"] != "two-sided":
+        return _one_sided(entry, level, tex)
+    lo, hi = entry[f"interval{level}"]
+    dec = _decimals(entry["std"])
+    return f"[{_fmt(lo, dec)}, {_fmt(hi, dec)}]" if not tex else \
+        rf"[{_fmt(lo, dec)},\ {_fmt(hi, dec)}]"
+
+
+def _best(entry: dict) -> str:
+    return _fmt(entry.get("best_fit"), _decimals(entry["std"]) + 1)
+
+
+def _constraints_markdown(summary: dict) -> str:
+    lines = [f"# Constraints: {summary['label']}", ""]
+    conv = "converged" if summary["converged"] else "NOT CONVERGED"
+    lines.append(
+        f"{summary['n_steps']} steps x {summary['n_walkers']} walkers ({conv}); max tau = "
+        f"{_fmt(summary['tau_max'], 1)} steps; burn-in {summary['burn_in']}, thin "
+        f"{summary['thin']}, {summary['n_samples']} samples; acceptance "
+        f"{summary['acceptance_fraction']:.2f}; config hash `{summary['config_hash']}`."
+    )
+    if summary["chi2"] is not None:
+        lines.append(f"Best fit: chi2 = {summary['chi2']:.2f} for {summary['dof']} degrees of "
+                     "freedom.")
+    lines += ["", "| parameter | mean and 68% limits | 68% interval | 95% interval | best fit |",
+              "|:--|:--|:--|:--|:--|"]
+    for name, e in summary["parameters"].items():
+        label = f"${e['label']}$" + (" (derived)" if e["derived"] else "")
+        if e["limit_type68"] == "two-sided":
+            m, up, down = _central(e)
+            central = f"{m} ± {up}" if up == down else f"{m} +{up} / -{down}"
+        else:
+            central = _one_sided(e, "68", tex=False)
+        lines.append(f"| {label} `{name}` | {central} | {_interval(e, '68', False)} | "
+                     f"{_interval(e, '95', False)} | {_best(e)} |")
+    lines.append("")
+    for note in summary["notes"]:
+        lines.append(f"> Note: {note}")
+    lines.append("")
+    lines.append("Limits: getdist marginal limits at 68% and 95% credibility; best fit: "
+                 "highest-posterior sample of the chain.")
+    return "\n".join(lines) + "\n"
+
+
+def _constraints_tex(summary: dict) -> str:
+    lines = [
+        f"% ergofit constraints for {summary['label']} (config hash {summary['config_hash']})",
+        f"% {summary['n_steps']} steps x {summary['n_walkers']} walkers, "
+        + ("converged" if summary["converged"] else "NOT CONVERGED"),
+        r"\begin{tabular}{lccc}",
+        r"\hline",
+        r"Parameter & Mean and 68\% limits & 95\% interval & Best fit \\",
+        r"\hline",
+    ]
+    for e in summary["parameters"].values():
+        if e["limit_type68"] == "two-sided":
+            m, up, down = _central(e)
+            central = rf"{m} \pm {up}" if up == down else rf"{m}^{{+{up}}}_{{-{down}}}"
+        else:
+            central = _one_sided(e, "68", tex=True)
+        lines.append(rf"${e['label']}$ & ${central}$ & ${_interval(e, '95', True)}$ & "
+                     rf"${_best(e)}$ \\")
+    lines += [r"\hline", r"\end{tabular}"]
+    return "\n".join(lines) + "\n"
+
+
+# --------------------------------------------------------------------------------------------
+# Figures
+# --------------------------------------------------------------------------------------------
+
+
+def _base_path(out_path: str | os.PathLike) -> str:
+    out_path = os.fspath(out_path)
+    root, ext = os.path.splitext(out_path)
+    return root if ext.lower() in (".png", ".pdf") else out_path
+
+
+def plot_triangle(samples_list: Sequence, out_path: str | os.PathLike,
+                  legend_labels: Sequence[str] | None = None,
+                  params: Sequence[str] | None = None) -> list[str]:
+    """getdist triangle plot (filled 68/95% contours, 1-D marginals) as PNG and PDF.
+
+    out_path: file name with or without ``.png``/``.pdf``; both files are written.
+    Returns the two paths.
+    """
+    import matplotlib.pyplot as plt
+    from getdist import plots
+
+    base = _base_path(out_path)
+    n_par = len(params) if params is not None else samples_list[0].paramNames.numParams()
+    g = plots.get_subplot_plotter(width_inch=min(3.0 + 1.6 * n_par, 12.0))
+    paths = [base + ".png", base + ".pdf"]
+    try:
+        with warnings.catch_warnings():
+            # getdist's tick formatter reads an attribute that matplotlib deprecates (not ours)
+            warnings.filterwarnings("ignore", category=DeprecationWarning, module="getdist")
+            g.triangle_plot(list(samples_list), params=list(params) if params else None,
+                            filled=True,
+                            legend_labels=list(legend_labels) if legend_labels else None)
+            for p in paths:
+                _save_figure(g.fig, p, tight=False)  # getdist has laid the figure out
+    finally:
+        plt.close(g.fig)
+    return paths
+
+
+def _check_observables(obs: Any) -> tuple[list, list, list, list]:
+    if not isinstance(obs, dict):
+        raise ErgofitError("likelihood observables(): expected a dict with ells, k, data, sigma")
+    for key in ("ells", "k", "data", "sigma"):
+        if key not in obs:
+            raise ErgofitError(f"likelihood observables() has no key '{key}'")
+    ells = list(obs["ells"])
+    arrays = {key: [np.asarray(a, dtype=float) for a in obs[key]] for key in ("k", "data", "sigma")}
+    for key, arrs in arrays.items():
+        if len(arrs) != len(ells):
+            raise ErgofitError(
+                f"likelihood observables()['{key}'] has {len(arrs)} entries for {len(ells)} ells"
+            )
+    for i, ell in enumerate(ells):
+        n = arrays["k"][i].shape
+        for key in ("data", "sigma"):
+            if arrays[key][i].shape != n:
+                raise ErgofitError(
+                    f"likelihood observables()['{key}'][{i}] (ell={ell}) has shape "
+                    f"{arrays[key][i].shape}, expected {n} like k"
+                )
+        if not np.all(np.isfinite(arrays["sigma"][i])) or np.any(arrays["sigma"][i] <= 0):
+            raise ErgofitError(
+                f"likelihood observables()['sigma'][{i}] (ell={ell}): expected finite values > 0"
+            )
+    return ells, arrays["k"], arrays["data"], arrays["sigma"]
+
+
+def plot_multipoles(lik: Any, theta: np.ndarray, out_path: str | os.PathLike,
+                    k_power: int = 1, title: str | None = None) -> str:
+    """Data multipoles with error bars, the model at ``theta``, and residuals in sigma (PNG).
+
+    Upper panel: k^k_power P_ell(k) (Mpc/h)^3 (h/Mpc)^k_power for data and model, one colour per
+    ell; lower panel: (data - model) / sigma with the +-1 band. The error bars are the square
+    roots of the covariance diagonal: correlated bins scatter less than they suggest.
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+    from matplotlib.ticker import FormatStrFormatter, LogLocator, NullFormatter
+
+    ells, ks, data, sigma = _check_observables(lik.observables())
+    model = [np.asarray(m, dtype=float) for m in lik.model_observables(np.asarray(theta, float))]
+    if len(model) != len(ells) or any(m.shape != d.shape for m, d in zip(model, data)):
+        raise ErgofitError(
+            "likelihood model_observables(): expected one array per ell with the shapes of the data"
+        )
+    fig = Figure(figsize=(6.4, 5.6))
+    FigureCanvasAgg(fig)
+    top, bottom = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1], "hspace": 0})
+    n = len(ells)
+    for i, (ell, k, d, s, m) in enumerate(zip(ells, ks, data, sigma, model)):
+        colour = f"C{i % 10}"
+        w = k ** k_power
+        shift = 1.0 + 0.012 * (i - (n - 1) / 2)  # spread overlapping points a little
+        top.errorbar(k * shift, w * d, yerr=w * s, fmt="o", ms=3.5, color=colour, capsize=0,
+                     label=rf"$\ell={ell}$")
+        order = np.argsort(k)
+        top.plot(k[order], (w * m)[order], "-", color=colour, lw=1.4)
+        bottom.plot(k * shift, (d - m) / s, "o", ms=3.5, color=colour)
+    bottom.axhspan(-1, 1, color="0.88", zorder=0)
+    bottom.axhline(0, color="0.3", lw=0.8)
+    top.set_xscale("log")
+    top.xaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
+    top.xaxis.set_major_formatter(FormatStrFormatter("%g"))
+    top.xaxis.set_minor_formatter(NullFormatter())
+    kp = "" if k_power == 0 else ("k" if k_power == 1 else f"k^{{{k_power}}}")
+    power = 3 - k_power
+    unit = "" if power == 0 else (r"\ [h^{-1}{\rm Mpc}]" if power == 1 else
+                                  rf"\ [(h^{{-1}}{{\rm Mpc}})^{{{power}}}]")
+    top.set_ylabel(rf"${kp}P_\ell(k){unit}$")
+    worst = max(float(np.max(np.abs((d - m) / s))) for d, m, s in zip(data, model, sigma))
+    bottom.set_ylim(-max(3.0, 1.15 * worst), max(3.0, 1.15 * worst))
+    bottom.set_ylabel(r"$\Delta/\sigma$")
+    bottom.set_xlabel(r"$k\ [h\,{\rm Mpc}^{-1}]$")
+    top.legend(frameon=False, title="points: data, lines: model", alignment="left")
+    if title:
+        top.set_title(title, fontsize=10)
+    path = os.fspath(out_path)
+    _save_figure(fig, path)
+    return path
+
+
+# --------------------------------------------------------------------------------------------
+# Summary of one run, re-summary, overlay
+# --------------------------------------------------------------------------------------------
+
+
+def _clean(obj: Any) -> Any:
+    if isinstance(obj, dict):
+        return {str(k): _clean(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple, np.ndarray)):
+        return [_clean(v) for v in obj]
+    if isinstance(obj, (bool, np.bool_)):
+        return bool(obj)
+    if isinstance(obj, (int, np.integer)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        return _num(obj)
+    return obj
+
+
+def write_summary(out_dir: str | os.PathLike, result: SamplerResult, lik: Any = None,
+                  label: str | None = None) -> dict:
+    """Write summary.json, constraints.md/.tex, triangle.png/.pdf and multipoles.png.
+
+    lik: the run's likelihood (same config hash as the chain). Without it, derived parameters,
+        chi2/dof and multipoles.png are left out and a note says so.
+    label: name of the run in the files (default: the folder name).
+    Returns the summary dict (the content of summary.json).
+    """
+    return _write_summary(out_dir, result, lik, label)[0]
+
+
+def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
+    out_dir = os.fspath(out_dir)
+    if not os.path.isdir(out_dir):
+        raise ErgofitError(f"output folder {out_dir} does not exist")
+    if label is None:
+        label = os.path.basename(os.path.abspath(out_dir))
+    samples = make_samples(result, lik, label=label)
+    params = marginal_stats(samples)
+    notes = list(result.notes)
+    for name, value in zip(result.parameter_names, result.best_fit):
+        params[name]["best_fit"] = _num(value)
+    chi2 = dof = None
+    if lik is not None and hasattr(lik, "observables"):
+        _check_observables(lik.observables())  # fail before any file is written
+    if lik is not None:
+        d_names, _, d_best = _derived_values(lik, np.asarray(result.best_fit, float)[None, :])
+        for j, name in enumerate(d_names):
+            params[name]["best_fit"] = _num(d_best[0, j])
+        chi2, dof = _num(lik.chi2(np.asarray(result.best_fit, float))), int(lik.dof)
+    else:
+        notes.append("no likelihood given: derived parameters, chi2/dof and multipoles.png left out")
+    tau = {n: _num(t) for n, t in zip(result.parameter_names, result.tau)}
+    summary = {
+        "label": label,
+        "config_hash": result.config_hash,
+        "chain": os.path.relpath(result.chain_path, out_dir),
+        "converged": bool(result.converged),
+        "status": result.status,
+        "n_steps": int(result.n_steps),
+        "n_walkers": int(result.n_walkers),
+        "burn_in": int(result.burn_in),
+        "thin": int(result.thin),
+        "n_samples": int(len(result.samples)),
+        "tau": tau,
+        "tau_max": _num(np.max(result.tau)) if np.all(np.isfinite(result.tau)) else None,
+        "acceptance_fraction": float(result.acceptance_fraction),
+        "best_fit_log_posterior": _num(result.best_log_prob),
+        "chi2": chi2,
+        "dof": dof,
+        "credible_levels": list(_CONTOURS),
+        "parameters": params,
+        "notes": notes,
+    }
+    summary = _clean(summary)
+    _write_text(os.path.join(out_dir, "summary.json"),
+                json.dumps(summary, indent=2, allow_nan=False) + "\n")
+    _write_text(os.path.join(out_dir, "constraints.md"), _constraints_markdown(summary))
+    _write_text(os.path.join(out_dir, "constraints.tex"), _constraints_tex(summary))
+    plot_triangle([samples], os.path.join(out_dir, "triangle"))
+    if lik is not None and hasattr(lik, "observables") and hasattr(lik, "model_observables"):
+        title = f"{label}: best fit, $\\chi^2$ = {chi2:.1f} for {dof} d.o.f." if chi2 is not None \
+            else label
+        plot_multipoles(lik, result.best_fit, os.path.join(out_dir, "multipoles.png"), title=title)
+    return summary, samples
+
+
+def _labels_for(run_dirs: Sequence[str], labels: Sequence[str] | None) -> list[str]:
+    if labels is None:
+        return [os.path.basename(os.path.abspath(d)) for d in run_dirs]
+    labels = list(labels)
+    if len(labels) != len(run_dirs):
+        raise ErgofitError(f"got {len(labels)} labels for {len(run_dirs)} run folders; give one per run")
+    return labels
+
+
+def _overlay_samples(samples_list: list, labels: list[str], out_path: str) -> list[str]:
+    names = [s.paramNames.list() for s in samples_list]
+    common = [n for n in names[0] if all(n in other for other in names[1:])]
+    if not common:
+        raise ErgofitError("the runs to overlay share no parameter name")
+    return plot_triangle(samples_list, out_path, legend_labels=labels, params=common)
+
+
+def overlay(run_dirs: Sequence[str | os.PathLike], labels: Sequence[str] | None,
+            out_path: str | os.PathLike, lik_factory: Callable[[str], Any] | None = None) -> list[str]:
+    """Triangle plot of several runs in one figure (``out_path`` .png and .pdf).
+
+    Only the parameters present in every run are plotted (derived ones only when lik_factory
+    rebuilds each run's likelihood). Returns the two file paths.
+    """
+    run_dirs = [os.fspath(d) for d in run_dirs]
+    if not run_dirs:
+        raise ErgofitError("overlay: give at least one run folder")
+    labels = _labels_for(run_dirs, labels)
+    samples_list = []
+    for d, lab in zip(run_dirs, labels):
+        lik = lik_factory(d) if lik_factory is not None else None
+        samples_list.append(make_samples(load_chain(d), lik, label=lab))
+    return _overlay_samples(samples_list, labels, os.fspath(out_path))
+
+
+def summarize(run_dirs: Sequence[str | os.PathLike], labels: Sequence[str] | None = None,
+              lik_factory: Callable[[str], Any] | None = None,
+              overlay_path: str | os.PathLike | None = None) -> list[dict]:
+    """Re-summarise runs from their folders alone (the command-line ``summarize``).
+
+    For each folder: read the chain, rebuild the likelihood with ``lik_factory(run_dir)`` when
+    given (from the run's stored config), and :func:`write_summary` into the folder. With more
+    than one folder, also overlay them in one triangle plot at ``overlay_path`` (default
+    ``overlay`` in the current folder: overlay.png and overlay.pdf). Returns the summary dicts.
+    """
+    run_dirs = [os.fspath(d) for d in run_dirs]
+    if not run_dirs:
+        raise ErgofitError("summarize: give at least one run folder")
+    labels = _labels_for(run_dirs, labels)
+    summaries, samples_list = [], []
+    for d, lab in zip(run_dirs, labels):
+        result = load_chain(d)
+        lik = lik_factory(d) if lik_factory is not None else None
+        summary, samples = _write_summary(d, result, lik, lab)
+        summaries.append(summary)
+        samples_list.append(samples)
+    if len(run_dirs) > 1:
+        path = os.fspath(overlay_path) if overlay_path is not None else "overlay"
+        _overlay_samples(samples_list, labels, path)
+    return summaries
