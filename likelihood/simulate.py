@@ -617,7 +617,8 @@ def poisson_sample(mesh, density_field, nbar, window=None, seed=None):
     frac = float(neg.mean())
     if frac > 1e-3:
         warnings.warn(f"poisson_sample: 1 + Δ < 0 in {100 * frac:.2f}% of cells, clipped to 0: the "
-                      "mock power is biased low (Gaussian field too strong for this cell size)",
+                      "mock power is biased (Gaussian field too strong for this cell size); use a "
+                      "coarser mesh (k_N just above k_max) or remove the modes above k_max (k_cut)",
                       stacklevel=2)
     lam[neg] = 0.0
     lam *= nb * mesh.cell ** 3
@@ -837,7 +838,7 @@ def _estimator_field(mesh, field, w, nbar, subtract_mean, name):
 # ---------------------------------------------------------------------------------------------
 
 def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10, seed=0,
-                   nbar=None, constraint=None, subtract_mean=True, progress=None):
+                   nbar=None, constraint=None, subtract_mean=True, k_cut=None, progress=None):
     """Draw ``n_mocks`` Gaussian mocks, observe them and measure their multipoles.
 
     Per mock i (random streams spawned from ``seed``, so mock i depends only on (seed, i)):
@@ -845,6 +846,10 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
     given, c(x_o) = ν σ_c is imposed by :func:`constrain_at_origin`; Δ_g = :func:`observed_field`
     (A, B, F); optional :func:`poisson_sample` (nbar); :func:`measure_multipoles` with the window.
     Linear-theory Gaussian mocks: see the module notes for the regime of validity.
+    ``k_cut`` (h/Mpc, optional): the mock density has no power above k_cut (P = 0 there). Use it
+    with Poisson sampling, where the full linear power up to the Nyquist frequency can drive
+    1 + Δ < 0 in many cells; keep k_cut well above the last bin (the window mixes modes over a
+    few k_f, so the measured bins near k_cut then lack the leakage from k > k_cut).
     Returns (list of DataVector, MockCovariance); the covariance is the unbiased sample covariance
     of the flat (ℓ-major) vectors.
     """
@@ -858,19 +863,25 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
     w = _weights(mesh, window, "window")
     _extent_warning(mesh, w)
     p = _fourier_array(mesh, pk, "pk")
+    if k_cut is not None:
+        kc = _finite(k_cut, "k_cut")
+        if kc <= e[-1]:
+            raise ErgofitError(f"k_cut = {k_cut!r}: must exceed the last bin edge k_max = "
+                               f"{e[-1]:.4g} h/Mpc")
+        p = np.where(mesh.kmag() <= kc, p, 0.0)
     a = _fourier_array(mesh, A, "A")
     bk = None if B is None else _fourier_array(mesh, B, "B")
     c_value = None
     if constraint is not None:
         sig = constraint_sigma(mesh, p, constraint.kernel)
-        kc = _fourier_array(mesh, constraint.kernel, "constraint kernel")
+        kern = _fourier_array(mesh, constraint.kernel, "constraint kernel")
         c_value = constraint.nu * sig
     mocks = []
     for i, child in enumerate(np.random.SeedSequence(seed).spawn(n)):
         s_field, s_poisson = child.spawn(2)
         dk = gaussian_field(mesh, p, s_field)
         if constraint is not None:
-            dk, _, _ = constrain_at_origin(mesh, dk, kc, c_value, p)
+            dk, _, _ = constrain_at_origin(mesh, dk, kern, c_value, p)
         gal = observed_field(mesh, dk, a, bk, F)
         del dk
         if nbar is not None:
@@ -1004,13 +1015,15 @@ def _observer_from_settings(observer):
 
 
 def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells, n_mocks, seed,
-                           nbar=None, observer=None, out_dir=None, progress=None):
+                           nbar=None, observer=None, out_dir=None, k_cut=None, progress=None):
     """Mocks of a configured survey: one data-vector file per mock plus ``covariance.txt``.
 
     ``cosmo`` (``likelihood.cosmology.Cosmology``) gives P(k, z); ``likelihood.tracer.kernel(cosmo,
     z, k, tracer, effects)`` gives the observed-field kernel (A, B, F) evaluated once on the mesh's
     |k|; ``window`` a geometry or mask; ``observer`` None, an :class:`ObserverConstraint`, or a
-    mapping {"field": "potential"|"density", "nu_obs": ν, "radius": R}.
+    mapping like the config's ``observer`` section {"field": "potential"|"density", "nu_true": ν,
+    "smoothing": R, "k_ir": k}; ``k_cut``: see :func:`simulate_mocks`; ``progress(i, n)``: an
+    optional callback after each mock.
     Files in ``out_dir`` (created): ``mock_0000.txt``, ... (the documented data-vector text format
     of ``likelihood.data``) and ``covariance.txt`` (``likelihood.data`` covariance format: header
     ``# ergofit covariance``, ``# ells:``, ``# n_bins:``, then the matrix in the ℓ-major order).
@@ -1045,7 +1058,7 @@ def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells,
             raise ErgofitError(f"out_dir = {out_dir}: cannot create the folder ({exc})") from None
     mocks, cov = simulate_mocks(mesh, pk, a, b if np.any(b) else None, fval, window, e, ells,
                                 n_mocks, seed, nbar=nbar, constraint=constraint,
-                                progress=progress)
+                                k_cut=k_cut, progress=progress)
     for m in mocks:
         m.meta["z"] = f"{zf:.6g}"
     if out_dir is not None:
