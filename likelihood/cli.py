@@ -1,0 +1,238 @@
+"""The ``ergofit`` command line: run, summarize, forecast, simulate, window, theory, check.
+
+Exit codes: 0 on success, 2 on bad input (one line on stderr), 1 on an unexpected failure.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import warnings
+
+from .errors import ErgofitError
+
+
+def _out_dir(path):
+    """Create (if needed) and check that an output folder is writable."""
+    try:
+        os.makedirs(path, exist_ok=True)
+    except OSError as exc:
+        raise ErgofitError(f"{path}: cannot create output folder ({exc.strerror})") from None
+    if not os.access(path, os.W_OK):
+        raise ErgofitError(f"{path}: output folder is not writable; choose another with output.folder")
+    return path
+
+
+def cmd_check(args):
+    from .model import build
+    lik = build(args.config)
+    print(lik.describe())
+    print("config OK")
+    return 0
+
+
+def cmd_theory(args):
+    from .theory_report import theory_report
+    from .config import load_config
+    cfg = load_config(args.config)
+    out = args.out or os.path.join(cfg.output_folder, "theory.txt")
+    _out_dir(os.path.dirname(os.path.abspath(out)))
+    for line in theory_report(cfg, out):
+        print(line)
+    return 0
+
+
+def _settings(cfg, args):
+    from .sampler import SamplerSettings
+    s = cfg["sampling"]
+    return SamplerSettings(n_walkers=s["walkers"], max_steps=s["max_steps"], check_every=s["check_every"],
+                           tau_factor=s["tau_factor"], tau_rtol=s["tau_rtol"], seed=s["seed"],
+                           progress=s["progress"] and not args.quiet)
+
+
+def _rebuild(run_dir):
+    from .model import build
+    return build(os.path.join(run_dir, "config.yaml"))
+
+
+def cmd_run(args):
+    import shutil
+    from .config import load_config
+    from .model import build
+    from .sampler import run_sampler
+    from .summary import write_summary
+    cfg = load_config(args.config)
+    out = _out_dir(args.out or cfg.output_folder)
+    lik = build(cfg)
+    settings = _settings(cfg, args)
+    if lik.n_walkers_min() > settings.n_walkers:
+        raise ErgofitError(f"{args.config}: sampling.walkers must be at least {lik.n_walkers_min()} "
+                           f"(twice the {len(lik.parameter_names)} sampled parameters)")
+    print(lik.describe())
+    pool = None
+    if args.mpi:
+        pool = _mpi_pool()
+    elif args.processes and args.processes > 1:
+        import multiprocessing
+        pool = multiprocessing.get_context("fork").Pool(args.processes)
+    try:
+        result = run_sampler(lik, settings, out, resume=args.resume, pool=pool)
+    finally:
+        if pool is not None:
+            pool.close()
+    cfg_copy = os.path.join(out, "config.yaml")
+    if os.path.abspath(args.config) != os.path.abspath(cfg_copy):
+        _write_config_copy(args.config, cfg_copy)
+    write_summary(out, result, lik)
+    print(f"outputs in {out}/: chain.h5, summary.json, constraints.md, constraints.tex, "
+          f"triangle.png, triangle.pdf, multipoles.png")
+    if not result.converged:
+        print("WARNING: the chain did not converge (see summary.json: converged=false); "
+              "raise sampling.max_steps and rerun with --resume")
+    return 0
+
+
+def _write_config_copy(src, dst):
+    """Copy the config next to the chain with input paths made absolute (so it can be rebuilt)."""
+    import yaml
+    from .config import load_config
+    cfg = load_config(src)
+    with open(src, encoding="utf-8") as fh:
+        raw = yaml.safe_load(fh)
+    for sec, key in (("data", "file"), ("covariance", "file"), ("covariance", "mocks"),
+                     ("cosmology", "table")):
+        if isinstance(raw.get(sec), dict) and key in raw[sec]:
+            raw[sec][key] = os.path.abspath(cfg.resolve(raw[sec][key]))
+    geo = (raw.get("survey") or {}).get("geometry") or {}
+    if "randoms" in geo:
+        geo["randoms"] = os.path.abspath(cfg.resolve(geo["randoms"]))
+    raw.setdefault("run", cfg.run_name)
+    tmp = dst + ".tmp"
+    with open(tmp, "w", encoding="utf-8") as fh:
+        yaml.safe_dump(raw, fh, sort_keys=False)
+    os.replace(tmp, dst)
+
+
+def _mpi_pool():
+    try:
+        from schwimmbad import MPIPool
+    except ImportError:
+        raise ErgofitError("--mpi needs the optional extra: pip install 'ergofit[mpi]'") from None
+    pool = MPIPool()
+    if not pool.is_master():
+        pool.wait()
+        sys.exit(0)
+    return pool
+
+
+def cmd_summarize(args):
+    from .summary import overlay, summarize
+    for d in args.run_dirs:
+        if not os.path.isfile(os.path.join(d, "chain.h5")):
+            raise ErgofitError(f"{d}: no chain.h5 in this folder; give run folders written by 'ergofit run'")
+    labels = args.labels
+    if labels and len(labels) != len(args.run_dirs):
+        raise ErgofitError(f"--labels: {len(labels)} labels for {len(args.run_dirs)} run folders")
+    summarize(args.run_dirs, labels=labels, lik_factory=_rebuild)
+    if len(args.run_dirs) > 1:
+        out = args.out or "overlay"
+        _out_dir(os.path.dirname(os.path.abspath(out)) or ".")
+        overlay(args.run_dirs, labels or [os.path.basename(os.path.normpath(d)) for d in args.run_dirs], out)
+        print(f"overlay written to {out}.png and {out}.pdf")
+    return 0
+
+
+def cmd_window(args):
+    from .window import load_randoms, window_from_randoms
+    pos, wts = load_randoms(args.randoms)
+    _out_dir(os.path.dirname(os.path.abspath(args.out)))
+    wm = window_from_randoms(pos, wts, s_max=args.s_max)
+    wm.save(args.out)
+    png = os.path.splitext(args.out)[0] + ".png"
+    wm.plot(png)
+    print(f"window multipoles Q_0..Q_8 written to {args.out}; plot {png}")
+    return 0
+
+
+def cmd_forecast(args):
+    from .forecast import forecast_cli
+    return forecast_cli(args)
+
+
+def cmd_simulate(args):
+    from .simulate_cli import simulate_cli
+    return simulate_cli(args)
+
+
+def make_parser():
+    p = argparse.ArgumentParser(prog="ergofit", description="Fit the largest-scale galaxy power "
+                                "spectrum multipoles: f_NL, projection terms, window, integral "
+                                "constraint and the observer term.")
+    sub = p.add_subparsers(dest="command", required=True)
+
+    s = sub.add_parser("run", help="sample the posterior of a config with emcee")
+    s.add_argument("config")
+    s.add_argument("--resume", action="store_true", help="continue an interrupted run in its folder")
+    s.add_argument("--out", help="output folder (default: output.folder or chains/<run>)")
+    s.add_argument("--processes", type=int, default=0, help="process pool size on this machine")
+    s.add_argument("--mpi", action="store_true", help="distribute walkers over MPI ranks")
+    s.add_argument("--quiet", action="store_true", help="no progress bar")
+    s.set_defaults(func=cmd_run)
+
+    s = sub.add_parser("summarize", help="tables and figures from finished run folders")
+    s.add_argument("run_dirs", nargs="+")
+    s.add_argument("--labels", nargs="+")
+    s.add_argument("--out", help="path stem of the overlay figure (several runs)")
+    s.set_defaults(func=cmd_summarize)
+
+    s = sub.add_parser("forecast", help="Fisher forecasts and f_NL biases from neglected effects")
+    s.add_argument("config")
+    s.add_argument("--out")
+    s.add_argument("--check-mcmc", action="store_true")
+    s.add_argument("--mpi", action="store_true")
+    s.add_argument("--processes", type=int, default=0)
+    s.set_defaults(func=cmd_forecast)
+
+    s = sub.add_parser("simulate", help="Gaussian mock surveys measured with the FFT estimator")
+    s.add_argument("config")
+    s.add_argument("--n", type=int, default=10, help="number of mocks")
+    s.add_argument("--out")
+    s.add_argument("--mesh", type=int, default=None, help="cells per side")
+    s.add_argument("--validate", action="store_true")
+    s.set_defaults(func=cmd_simulate)
+
+    s = sub.add_parser("window", help="window multipoles Q_l(s) from a random catalogue")
+    s.add_argument("randoms")
+    s.add_argument("--out", required=True)
+    s.add_argument("--s-max", type=float, default=None)
+    s.set_defaults(func=cmd_window)
+
+    s = sub.add_parser("theory", help="model multipoles component by component, and a plot")
+    s.add_argument("config")
+    s.add_argument("--out")
+    s.set_defaults(func=cmd_theory)
+
+    s = sub.add_parser("check", help="validate a config and describe the model")
+    s.add_argument("config")
+    s.set_defaults(func=cmd_check)
+    return p
+
+
+def main(argv=None):
+    args = make_parser().parse_args(argv)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("default")
+            return args.func(args)
+    except ErgofitError as exc:
+        msg = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
+        print(f"ergofit {args.command}: error: {msg}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print(f"ergofit {args.command}: interrupted; finished work is kept (resume with --resume)",
+              file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,351 @@
+"""YAML run configuration: loading and validation.
+
+A config is read with ``yaml.safe_load`` and checked completely before any work starts: unknown
+keys (with the nearest valid one suggested), wrong types, out-of-range values, missing files,
+prior bounds and starts outside their priors all raise :class:`~likelihood.errors.ConfigError`
+with one line naming the file and the key.
+
+Input file paths (data, covariance, tables, randoms) are resolved relative to the folder of the
+config file; the output folder is relative to the current working directory.
+
+The vocabulary (all sections but ``survey`` optional)::
+
+    run: NAME                      # run name; default output folder chains/NAME
+    cosmology:  {preset, overrides: {h, omega_b, omega_cdm, n_s, ln10As | sigma8, w, m_nu},
+                 transfer: eh98 | eh98_nowiggle | table, table: FILE, table_kind: power | transfer}
+    survey:     {redshift, nbar, geometry: {shape: box | sphere | shell | cap | randoms,
+                 volume | radius | r_min, r_max | fsky | randoms: FILE}}
+    tracer:     {b1, fnl, p, b_e, s}
+    effects:    {rsd, fnl, doppler, potential, window, integral_constraint: none | global, observer}
+    observer:   {field: potential | density, smoothing, k_ir, nu_true}
+    data:       {file: FILE | mock: {seed, noise, truth: {...}, k_min, k_max, n_bins},
+                 ells, k_min, k_max, shot_noise_subtracted}
+    covariance: {kind: gaussian | file | mocks, file: FILE, mocks: GLOB, method: hartlap | t}
+    parameters: {NAME: {flat: [lo, hi] | gauss: [mean, sigma] | fixed: x, start, scale, bounds}}
+    sampling:   {walkers, max_steps, check_every, tau_factor, tau_rtol, seed, progress}
+    output:     {folder}
+"""
+from __future__ import annotations
+
+import copy
+import hashlib
+import json
+import os
+
+import numpy as np
+import yaml
+
+from .errors import ConfigError
+from .params import KNOWN, ParameterSet, parse_parameter, suggest
+
+_NUM = (int, float)
+
+
+def _num(lo=None, hi=None, lo_open=False, integer=False):
+    """Validator for a number in a range."""
+    def check(val, where):
+        if isinstance(val, bool) or not isinstance(val, _NUM) or not np.isfinite(val):
+            raise ConfigError(f"{where}: expected a {'whole ' if integer else ''}number, got {val!r}")
+        if integer and int(val) != val:
+            raise ConfigError(f"{where}: expected a whole number, got {val!r}")
+        if lo is not None and (val <= lo if lo_open else val < lo):
+            raise ConfigError(f"{where}: must be {'>' if lo_open else '>='} {lo}, got {val}")
+        if hi is not None and val > hi:
+            raise ConfigError(f"{where}: must be <= {hi}, got {val}")
+        return int(val) if integer else float(val)
+    return check
+
+
+def _choice(*options):
+    def check(val, where):
+        if val not in options:
+            raise ConfigError(f"{where}: '{val}' is not allowed{suggest(val, [str(o) for o in options])}; "
+                              f"choose one of {', '.join(str(o) for o in options)}")
+        return val
+    return check
+
+
+def _bool(val, where):
+    if not isinstance(val, bool):
+        raise ConfigError(f"{where}: expected true or false, got {val!r}")
+    return val
+
+
+def _str(val, where):
+    if not isinstance(val, str) or not val.strip():
+        raise ConfigError(f"{where}: expected a non-empty string, got {val!r}")
+    return val
+
+
+def _ells(val, where):
+    if not isinstance(val, list) or not val or not all(isinstance(v, int) and not isinstance(v, bool)
+                                                       for v in val):
+        raise ConfigError(f"{where}: expected a list of multipoles like [0, 2], got {val!r}")
+    if any(v < 0 or v > 4 for v in val) or len(set(val)) != len(val):
+        raise ConfigError(f"{where}: multipoles must be distinct integers in 0..4, got {val}")
+    return sorted(val)
+
+
+def _mapping(val, where):
+    if not isinstance(val, dict):
+        raise ConfigError(f"{where}: expected a mapping, got {val!r}")
+    return val
+
+
+# section -> key -> (validator, default); default None means "optional, no default"
+SCHEMA = {
+    "cosmology": {
+        "preset": (_choice("planck2018", "planck2018_bao"), "planck2018"),
+        "overrides": (_mapping, {}),
+        "transfer": (_choice("eh98", "eh98_nowiggle", "table"), "eh98"),
+        "table": (_str, None),
+        "table_kind": (_choice("power", "transfer"), "power"),
+    },
+    "survey": {
+        "redshift": (_num(0.0, 10.0, lo_open=True), None),
+        "nbar": (_num(0.0, lo_open=True), None),
+        "geometry": (_mapping, None),
+    },
+    "tracer": {
+        "b1": (_num(), KNOWN["b1"].default),
+        "fnl": (_num(), KNOWN["fnl"].default),
+        "p": (_num(0.0, lo_open=True), 1.0),
+        "b_e": (_num(), KNOWN["b_e"].default),
+        "s": (_num(), KNOWN["s"].default),
+    },
+    "effects": {
+        "rsd": (_bool, True),
+        "fnl": (_bool, True),
+        "doppler": (_bool, True),
+        "potential": (_bool, True),
+        "window": (_bool, True),
+        "integral_constraint": (_choice("none", "global"), "global"),
+        "observer": (_bool, False),
+    },
+    "observer": {
+        "field": (_choice("potential", "density"), "potential"),
+        "smoothing": (_num(0.0, lo_open=True), None),
+        "k_ir": (_num(0.0, lo_open=True), None),
+        "nu_true": (_num(), 1.0),
+    },
+    "data": {
+        "file": (_str, None),
+        "mock": (_mapping, None),
+        "ells": (_ells, [0, 2]),
+        "k_min": (_num(0.0, lo_open=True), None),
+        "k_max": (_num(0.0, lo_open=True), None),
+        "shot_noise_subtracted": (_bool, True),
+    },
+    "covariance": {
+        "kind": (_choice("gaussian", "file", "mocks"), "gaussian"),
+        "file": (_str, None),
+        "mocks": (_str, None),
+        "method": (_choice("hartlap", "t"), "hartlap"),
+    },
+    "sampling": {
+        "walkers": (_num(2, integer=True), 32),
+        "max_steps": (_num(1, integer=True), 20000),
+        "check_every": (_num(1, integer=True), 200),
+        "tau_factor": (_num(1.0), 50.0),
+        "tau_rtol": (_num(0.0, lo_open=True), 0.01),
+        "seed": (_num(0, integer=True), 0),
+        "progress": (_bool, True),
+    },
+    "output": {
+        "folder": (_str, None),
+    },
+}
+
+GEOMETRY = {
+    "box": {"shape": None, "volume": _num(0.0, lo_open=True)},
+    "sphere": {"shape": None, "radius": _num(0.0, lo_open=True)},
+    "shell": {"shape": None, "r_min": _num(0.0), "r_max": _num(0.0, lo_open=True)},
+    "cap": {"shape": None, "r_min": _num(0.0), "r_max": _num(0.0, lo_open=True),
+            "fsky": _num(0.0, 1.0, lo_open=True)},
+    "randoms": {"shape": None, "randoms": _str},
+}
+
+MOCK = {"seed": (_num(0, integer=True), 1), "noise": (_bool, True), "truth": (_mapping, {}),
+        "k_min": (_num(0.0, lo_open=True), 0.002), "k_max": (_num(0.0, lo_open=True), 0.05),
+        "n_bins": (_num(2, integer=True), 16)}
+
+TOP = ("run", *SCHEMA, "parameters")
+
+
+def _check_keys(mapping, allowed, where):
+    for key in mapping:
+        if key not in allowed:
+            raise ConfigError(f"{where}: unknown key '{key}'{suggest(key, allowed)}; "
+                              f"allowed: {', '.join(allowed)}")
+
+
+def _section(raw, name, src):
+    spec = SCHEMA[name]
+    block = raw.get(name, {})
+    if block is None:
+        block = {}
+    where = f"{src}: {name}"
+    _mapping(block, where)
+    _check_keys(block, spec, where)
+    out = {}
+    for key, (check, default) in spec.items():
+        if key in block:
+            out[key] = check(block[key], f"{where}.{key}")
+        elif default is not None:
+            out[key] = copy.deepcopy(default)
+    return out
+
+
+class Config(dict):
+    """A validated configuration (a plain nested dict plus ``path``, ``base_dir``, ``hash``)."""
+
+    path: str = "<memory>"
+    base_dir: str = "."
+
+    def resolve(self, rel):
+        """Absolute path of an input file named in the config."""
+        return rel if os.path.isabs(rel) else os.path.normpath(os.path.join(self.base_dir, rel))
+
+    @property
+    def hash(self):
+        blob = json.dumps(self, sort_keys=True, default=str).encode()
+        return hashlib.sha256(blob).hexdigest()[:16]
+
+    @property
+    def run_name(self):
+        return self["run"]
+
+    @property
+    def output_folder(self):
+        return self["output"].get("folder") or os.path.join("chains", self["run"])
+
+
+def validate(raw, src="<memory>", base_dir="."):
+    """Validate a raw config mapping; return a :class:`Config` with defaults filled in."""
+    if not isinstance(raw, dict):
+        raise ConfigError(f"{src}: the top level must be a mapping of sections")
+    _check_keys(raw, TOP, src)
+    cfg = Config()
+    cfg.path, cfg.base_dir = src, base_dir
+    run = raw.get("run", os.path.splitext(os.path.basename(src))[0] or "run")
+    cfg["run"] = _str(str(run), f"{src}: run")
+    for name in SCHEMA:
+        cfg[name] = _section(raw, name, src)
+
+    sv = cfg["survey"]
+    for key in ("redshift", "nbar", "geometry"):
+        if key not in sv:
+            raise ConfigError(f"{src}: survey.{key} is required")
+    geo = sv["geometry"]
+    shape = geo.get("shape")
+    if shape not in GEOMETRY:
+        raise ConfigError(f"{src}: survey.geometry.shape '{shape}' is not allowed"
+                          f"{suggest(shape, GEOMETRY)}; choose one of {', '.join(GEOMETRY)}")
+    _check_keys(geo, GEOMETRY[shape], f"{src}: survey.geometry ({shape})")
+    for key, check in GEOMETRY[shape].items():
+        if check is None:
+            continue
+        if key not in geo:
+            raise ConfigError(f"{src}: survey.geometry.{key} is required for shape '{shape}'")
+        geo[key] = check(geo[key], f"{src}: survey.geometry.{key}")
+    if shape in ("shell", "cap") and not geo["r_min"] < geo["r_max"]:
+        raise ConfigError(f"{src}: survey.geometry needs r_min < r_max, got {geo['r_min']} >= {geo['r_max']}")
+    if shape == "randoms":
+        _need_file(cfg, geo["randoms"], "survey.geometry.randoms")
+    if shape == "box" and cfg["effects"]["window"]:
+        cfg["effects"]["window"] = False  # a periodic box has no window to convolve with
+
+    cosmo = cfg["cosmology"]
+    for key, val in cosmo["overrides"].items():
+        if key not in ("h", "omega_b", "omega_cdm", "n_s", "ln10As", "sigma8", "w", "m_nu"):
+            raise ConfigError(f"{src}: cosmology.overrides: unknown key '{key}'"
+                              f"{suggest(key, ['h', 'omega_b', 'omega_cdm', 'n_s', 'ln10As', 'sigma8', 'w', 'm_nu'])}")
+        _num()(val, f"{src}: cosmology.overrides.{key}")
+    if cosmo["transfer"] == "table":
+        if "table" not in cosmo:
+            raise ConfigError(f"{src}: cosmology.table is required with transfer: table")
+        _need_file(cfg, cosmo["table"], "cosmology.table")
+
+    data = cfg["data"]
+    if ("file" in data) == ("mock" in data):
+        raise ConfigError(f"{src}: data needs exactly one of 'file' (a data vector) or 'mock' (generate one)")
+    if "file" in data:
+        _need_file(cfg, data["file"], "data.file")
+    else:
+        mock_raw = data["mock"]
+        _check_keys(mock_raw, MOCK, f"{src}: data.mock")
+        mock = {}
+        for key, (check, default) in MOCK.items():
+            mock[key] = check(mock_raw[key], f"{src}: data.mock.{key}") if key in mock_raw else copy.deepcopy(default)
+        for name, val in mock["truth"].items():
+            if name not in KNOWN:
+                raise ConfigError(f"{src}: data.mock.truth: unknown parameter '{name}'{suggest(name, KNOWN)}")
+            _num()(val, f"{src}: data.mock.truth.{name}")
+        if not mock["k_min"] < mock["k_max"]:
+            raise ConfigError(f"{src}: data.mock needs k_min < k_max")
+        data["mock"] = mock
+    if "k_min" in data and "k_max" in data and not data["k_min"] < data["k_max"]:
+        raise ConfigError(f"{src}: data.k_min must be below data.k_max")
+
+    cov = cfg["covariance"]
+    if cov["kind"] == "file":
+        if "file" not in cov:
+            raise ConfigError(f"{src}: covariance.file is required with kind: file")
+        _need_file(cfg, cov["file"], "covariance.file")
+    if cov["kind"] == "mocks" and "mocks" not in cov:
+        raise ConfigError(f"{src}: covariance.mocks (a glob of mock data-vector files) is required with kind: mocks")
+
+    if cfg["effects"]["observer"] and cfg["observer"]["field"] == "density" \
+            and "smoothing" not in cfg["observer"]:
+        raise ConfigError(f"{src}: observer.smoothing (radius in Mpc/h, > 0) is required for field: density")
+
+    params = raw.get("parameters", {}) or {}
+    _mapping(params, f"{src}: parameters")
+    free, fixed = [], {}
+    for name, spec in params.items():
+        par, val = parse_parameter(name, spec, f"{src}: parameters")
+        if par is None:
+            fixed[name] = val
+        else:
+            free.append(par)
+    if not free:
+        raise ConfigError(f"{src}: parameters: nothing to sample; give at least one parameter a flat or gauss prior")
+    if "nu_obs" in [p.name for p in free] and not cfg["effects"]["observer"]:
+        raise ConfigError(f"{src}: parameters.nu_obs is sampled but effects.observer is false")
+    if "ln10As" in [p.name for p in free] + list(fixed) and "sigma8" in [p.name for p in free] + list(fixed):
+        raise ConfigError(f"{src}: parameters: give ln10As or sigma8, not both")
+    cfg["parameters"] = {p.name: {"prior": p.prior.__dict__, "start": p.start, "scale": p.scale} for p in free}
+    cfg["fixed"] = fixed
+    cfg._param_objects = (free, fixed)
+    return cfg
+
+
+def _need_file(cfg, rel, key):
+    path = cfg.resolve(rel)
+    if not os.path.isfile(path):
+        raise ConfigError(f"{cfg.path}: {key}: file '{rel}' not found (looked for {path})")
+
+
+def parameter_set(cfg):
+    """The :class:`~likelihood.params.ParameterSet` of a validated config."""
+    free, fixed = cfg._param_objects
+    return ParameterSet(free, fixed)
+
+
+def load_config(path):
+    """Read and validate a YAML config file (``yaml.safe_load`` only)."""
+    path = os.fspath(path)
+    if not os.path.isfile(path):
+        raise ConfigError(f"{path}: config file not found")
+    try:
+        with open(path, "r", encoding="utf-8") as fh:
+            raw = yaml.safe_load(fh)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f" (line {mark.line + 1})" if mark is not None else ""
+        raise ConfigError(f"{path}: not valid YAML{where}: {getattr(exc, 'problem', exc)}") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{path}: cannot read ({exc})") from None
+    if raw is None:
+        raise ConfigError(f"{path}: the config file is empty")
+    return validate(raw, src=path, base_dir=os.path.dirname(os.path.abspath(path)))

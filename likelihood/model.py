@@ -1,0 +1,522 @@
+"""The likelihood: config → cosmology → tracer kernel → observation operator → Gaussian likelihood.
+
+Decomposition used by the fast path
+-----------------------------------
+The observed galaxy field is Z(k, μ) δ_m with Z = A + iμB + Fμ² (see :mod:`likelihood.tracer`).
+At fixed cosmology Z is *linear* in a short vector of coefficients
+
+    x = (1, b1, v, b_e, 𝒬),   v = f_NL (b1 − p),   𝒬 = 5s/2,
+
+because A = b1 + v α(k) + γ2/k², B = γ1/k and γ1, γ2 are linear in (b_e, 𝒬). Writing
+Z = Σ_a x_a Z_a, every power spectrum is the quadratic form Σ_ab x_a x_b Re[Z_a Z_b^*] P_m, and the
+observation operator M (window, integral constraint, mode-averaged bins) is linear, so
+
+    model = Σ_{a≤b} c_ab x_a x_b T_ab + (ν² − 1) Σ_{a≤b} c_ab x_a x_b O_ab + (A_sn − s)/n̄ S,
+
+with T_ab = M[multipoles of Z_a Z_b^* P_m] (symmetrised), O_ab the observer-term templates
+(the estimator applied to the constrained mean field is quadratic in the kernel), S the
+shot-noise template, c_ab = 1. With the data whitened by the Cholesky factor L of the covariance
+(C = L Lᵀ), χ² = |d_w|² − 2 c·g + cᵀ G c with g = W d_w, G = W Wᵀ, W = L⁻¹ T: an evaluation
+is a handful of tiny dot products. Only b_e and 𝒬 that are sampled get their own coefficient;
+fixed ones are folded into the constant kernel Z_0.
+
+The direct path recomputes the full model (tracer multipoles → operator → observer term) and
+must agree with the fast path to 1e-10 (tests). When cosmological parameters are sampled the
+templates are rebuilt per walker (the window matrix is reused).
+"""
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+from scipy.linalg import cho_solve, solve_triangular
+
+from . import tracer as tr
+from .config import parameter_set
+from .cosmology import Cosmology
+from .data import (DataVector, MockCovariance, check_covariance, condition_number,
+                   covariance_from_mocks, gaussian_covariance, load_covariance)
+from .errors import ConfigError, DataError
+from .observation import KBins, WindowMatrix, theory_k_grid
+from .params import KNOWN
+
+COSMO_PARAMS = ("h", "omega_cdm", "omega_b", "n_s", "ln10As", "sigma8")
+TRACER_PARAMS = ("b1", "fnl", "b_e", "s")
+
+
+def make_cosmology(cfg, values=None):
+    """Cosmology from the config's preset and overrides, then sampled/fixed values on top."""
+    c = cfg["cosmology"]
+    over = dict(c["overrides"])
+    for name in COSMO_PARAMS:
+        if name in cfg["fixed"]:
+            over[name] = cfg["fixed"][name]
+    if values:
+        over.update({k: float(v) for k, v in values.items() if k in COSMO_PARAMS})
+    if "ln10As" in over:
+        over["A_s"] = np.exp(over.pop("ln10As")) * 1e-10
+        over["sigma8"] = None
+    elif "sigma8" in over:
+        over["A_s"] = None
+    kwargs = dict(transfer=c["transfer"])
+    if c["transfer"] == "table":
+        kwargs.update(table_file=cfg.resolve(c["table"]), table_kind=c["table_kind"])
+    return Cosmology.from_preset(c["preset"], **kwargs, **over)
+
+
+def make_geometry(cfg):
+    """(window object or None, effective volume in (Mpc/h)^3)."""
+    from . import window as win
+    geo = cfg["survey"]["geometry"]
+    shape = geo["shape"]
+    if shape == "box":
+        return None, geo["volume"]
+    if shape == "sphere":
+        w = win.SphereWindow(geo["radius"])
+    elif shape == "shell":
+        w = win.ShellWindow(geo["r_min"], geo["r_max"])
+    elif shape == "cap":
+        w = win.CapShellWindow(geo["r_min"], geo["r_max"], geo["fsky"])
+    else:
+        pos, wts = win.load_randoms(cfg.resolve(geo["randoms"]), cosmo=None)
+        return win.window_from_randoms(pos, wts), win.effective_volume(pos, wts)
+    return w, w.volume
+
+
+def white_noise_response(op):
+    """Data vector of a unit white-noise monopole (P(k) = 1, e.g. shot noise per 1/n̄).
+
+    Convolving a constant with the window normalised by I₂ returns the constant in ℓ = 0 and
+    zero in ℓ > 0 (end-point line of sight, ∫|W̃|² d³k/(2π)³ = I₂); the global integral
+    constraint then subtracts P̂_0(0) W²_ℓ(k)/W²_0(0) = W²_ℓ(k)/W²_0(0)
+    (Peacock & Nicholson 1991; see ``likelihood.observation``).
+    """
+    n_b = op.bins.n
+    out = np.zeros(len(op.ells_out) * n_b)
+    for o, l in enumerate(op.ells_out):
+        if l == 0:
+            out[o * n_b:(o + 1) * n_b] = 1.0
+        if op.window is not None and op.ic == "global":
+            out[o * n_b:(o + 1) * n_b] -= op._avg @ op._W2[l] / op._w2_zero
+    return out
+
+
+def effects_tuple(cfg):
+    e = cfg["effects"]
+    return tuple(name for name in ("rsd", "fnl", "doppler", "potential") if e[name])
+
+
+class Likelihood:
+    """Gaussian likelihood of the measured multipoles; built by :func:`build`.
+
+    Public surface: ``parameter_names``, ``labels``, ``prior_bounds``, ``start``, ``start_scale``,
+    ``log_prob(theta)`` (vectorised over walkers), ``log_likelihood(params)``,
+    ``log_likelihood_direct(params)``, ``model_vector(params)``, ``chi2(theta)``, ``derived(theta)``.
+    """
+
+    def __init__(self, cfg):
+        self.config = cfg
+        self.config_hash = cfg.hash
+        self.params = parameter_set(cfg)
+        self.parameter_names = self.params.names
+        self.labels = self.params.labels
+        self.prior_bounds = self.params.bounds
+        self.start = self.params.start
+        self.start_scale = self.params.start_scale
+        self.z = cfg["survey"]["redshift"]
+        self.nbar = cfg["survey"]["nbar"]
+        self.effects = effects_tuple(cfg)
+        self.p = cfg["tracer"]["p"]
+        self.sn_sub = 1.0 if cfg["data"]["shot_noise_subtracted"] else 0.0
+        self.cosmo = make_cosmology(cfg)
+        self.cosmo_free = [n for n in self.parameter_names if n in COSMO_PARAMS]
+        self.lin_free = [n for n in ("b_e", "s") if self.params.is_free(n)]
+        self.observer_on = cfg["effects"]["observer"]
+        self.window, self.volume = make_geometry(cfg)
+        if not cfg["effects"]["window"]:
+            self.window = None
+        self.ells = tuple(cfg["data"]["ells"])
+        self.ells_theory = (0, 2, 4)
+
+        self.fiducial = self._fiducial_values()
+        self.data_full = self._load_or_mock_bins()
+        self.bins = KBins(self.data_full.edges, self.data_full.k_eff, self.data_full.n_modes)
+        self.k_theory = theory_k_grid()
+        self.operator = WindowMatrix(self.k_theory, self.ells_theory, self.bins, self.data_full.ells,
+                                     window=self.window, ic=cfg["effects"]["integral_constraint"]
+                                     if self.window is not None else "none")
+        d = cfg["data"]
+        self.mask = self.data_full.mask(self.ells, d.get("k_min"), d.get("k_max"))
+        self.observer = self._make_observer()
+        cov_full, self.mock_cov = self._covariance()
+        if cfg["data"].get("mock") is not None:
+            self.data_full = self._make_mock(cov_full)
+        self.data = self.data_full.flat[self.mask]
+        cov = cov_full[np.ix_(self.mask, self.mask)]
+        self.chol = check_covariance(cov, n=self.data.size, source="covariance")
+        self.covariance = cov
+        self.condition_number = condition_number(cov)
+        self.n_mocks = self.mock_cov.n_mocks if self.mock_cov is not None else None
+        self.t_likelihood = cfg["covariance"]["kind"] == "mocks" and cfg["covariance"]["method"] == "t"
+        scale = 1.0
+        if self.mock_cov is not None and not self.t_likelihood:
+            scale = self.mock_cov.hartlap(self.data.size)
+        self.precision_scale = scale
+        self.dof = int(self.data.size - len(self.parameter_names))
+        self._d_w = solve_triangular(self.chol, self.data, lower=True)
+        self._templates = self._build_templates(self.cosmo)
+
+    # --- set-up -----------------------------------------------------------------------------
+    def _fiducial_values(self):
+        """Fiducial values of every known parameter: defaults < tracer block < fixed < mock truth."""
+        cfg = self.config
+        vals = {n: info.default for n, info in KNOWN.items()}
+        vals.update({k: cfg["tracer"][k] for k in TRACER_PARAMS})
+        vals["nu_obs"] = cfg["observer"]["nu_true"]
+        vals.update(cfg["fixed"])
+        mock = cfg["data"].get("mock")
+        if mock:
+            vals.update(mock["truth"])
+        return vals
+
+    def _load_or_mock_bins(self):
+        cfg = self.config
+        d = cfg["data"]
+        if "file" in d:
+            dv = DataVector.load(cfg.resolve(d["file"]))
+            missing = [l for l in self.ells if l not in dv.ells]
+            if missing:
+                raise DataError(f"{dv.source}: data.ells asks for {missing} but the file has {list(dv.ells)}")
+            return dv
+        m = d["mock"]
+        edges = np.linspace(m["k_min"], m["k_max"], m["n_bins"] + 1)
+        kb = KBins.from_edges(edges, volume=self.volume)
+        return DataVector(self.ells, edges, kb.k_eff, kb.n_modes,
+                          np.zeros((len(self.ells), edges.size - 1)), source="mock")
+
+    def _make_observer(self):
+        if not self.observer_on:
+            return None
+        from .observer import ObserverTerm
+        o = self.config["observer"]
+        return ObserverTerm(field=o["field"], smoothing=o.get("smoothing"), k_ir=o.get("k_ir"),
+                            window=self.window, volume=self.volume, bins=self.bins,
+                            ells=self.data_full.ells, ic=self.operator.ic,
+                            k_min_data=float(self.data_full.k_eff[self.mask.reshape(len(self.data_full.ells), -1).any(0)][0]))
+
+    def _covariance(self):
+        cfg = self.config
+        c = cfg["covariance"]
+        n = self.data_full.flat.size
+        if c["kind"] == "file":
+            cov, ells = load_covariance(cfg.resolve(c["file"]))
+            if ells is not None and tuple(ells) != self.data_full.ells:
+                raise DataError(f"{c['file']}: covariance multipoles {list(ells)} differ from the data's "
+                                f"{list(self.data_full.ells)}")
+            check_covariance(cov, n=n, source=c["file"])
+            return cov, None
+        if c["kind"] == "mocks":
+            mc, first = covariance_from_mocks(cfg.resolve(c["mocks"]))
+            if first.ells != self.data_full.ells or not np.allclose(first.edges, self.data_full.edges):
+                raise DataError(f"{c['mocks']}: mock multipoles/k bins differ from the data vector")
+            return mc.covariance, mc
+        # analytic Gaussian covariance at the fiducial model
+        kern = self._kernel(self.cosmo, self.fiducial, self.bins.k_eff)
+        pm = self.cosmo.power(self.bins.k_eff, self.z)
+        coeffs = np.column_stack([kern.A ** 2 * pm, (2 * kern.A * kern.F + kern.B ** 2) * pm,
+                                  np.full_like(pm, kern.F ** 2) * pm])
+        cov = gaussian_covariance(self.bins.k_eff, coeffs, 1.0 / self.nbar, self.bins.n_modes,
+                                  self.data_full.ells)
+        return cov, None
+
+    def _make_mock(self, cov_full):
+        m = self.config["data"]["mock"]
+        truth = {k: np.atleast_1d(v) for k, v in self.fiducial.items()}
+        mean = self._model_full(truth, direct=True)[0]
+        if m["noise"]:
+            rng = np.random.default_rng(m["seed"])
+            mean = mean + np.linalg.cholesky(cov_full) @ rng.standard_normal(mean.size)
+        dv = self.data_full
+        meta = {"generated": "ergofit mock", "seed": m["seed"], "noise": m["noise"]}
+        meta.update({f"truth.{k}": v for k, v in m["truth"].items()})
+        return DataVector(dv.ells, dv.edges, dv.k_eff, dv.n_modes, mean.reshape(dv.values.shape),
+                          meta=meta, source="mock")
+
+    # --- kernels and templates ------------------------------------------------------------------
+    def _tracer(self, values, i=0):
+        g = lambda n: float(np.atleast_1d(values[n])[i])  # noqa: E731
+        return tr.Tracer(b1=g("b1"), fnl=g("fnl"), p=self.p, nbar=self.nbar, b_e=g("b_e"), s=g("s"))
+
+    def _kernel(self, cosmo, values, k, i=0):
+        return tr.kernel(cosmo, self.z, k, self._tracer(values, i), effects=self.effects)
+
+    def _basis(self, cosmo, k):
+        """Basis kernels Z_a with Z = Σ_a x_a Z_a (see module docstring); names in order."""
+        f = cosmo.growth_rate(self.z) if "rsd" in self.effects else 0.0
+        proj = [e for e in self.effects if e in tr.PROJECTION_TERMS or e in ("doppler", "potential")]
+        fid = self.fiducial
+        be0 = 0.0 if "b_e" in self.lin_free else fid["b_e"]
+        q0 = 0.0 if "s" in self.lin_free else 2.5 * fid["s"]
+
+        def gam(be, q):
+            g1 = tr.gamma1(cosmo, self.z, be, q) if "doppler" in proj else 0.0
+            g2 = tr.gamma2(cosmo, self.z, be, q) if "potential" in proj else 0.0
+            return g1, g2
+
+        zero = np.zeros_like(k)
+        g1, g2 = gam(be0, q0)
+        basis = [("1", tr.Kernel(A=g2 / k ** 2 + zero, B=g1 / k + zero, F=f)),
+                 ("b1", tr.Kernel(A=np.ones_like(k), B=zero, F=0.0))]
+        if "fnl" in self.effects:
+            basis.append(("v", tr.Kernel(A=tr.fnl_alpha(cosmo, k, self.z), B=zero, F=0.0)))
+        for name, (db, dq) in (("b_e", (1.0, 0.0)), ("s", (0.0, 2.5))):
+            if name in self.lin_free:
+                h1, h2 = gam(be0 + db, q0 + dq)
+                basis.append((name, tr.Kernel(A=(h2 - g2) / k ** 2 + zero, B=(h1 - g1) / k + zero, F=0.0)))
+        return basis
+
+    def _coefficients(self, values):
+        """(n, n_basis) coefficient vectors x for each row of ``values``."""
+        b1 = np.atleast_1d(values["b1"])
+        cols = [np.ones_like(b1), b1]
+        if "fnl" in self.effects:
+            cols.append(np.atleast_1d(values["fnl"]) * (b1 - self.p))
+        for name in self.lin_free:
+            cols.append(np.atleast_1d(values[name]) * (2.5 if name == "s" else 1.0))
+        return np.column_stack(cols)
+
+    def _build_templates(self, cosmo):
+        """Whitened template matrices for the fast path at the given cosmology."""
+        k = self.k_theory
+        pm = cosmo.power(k, self.z)
+        basis = self._basis(cosmo, k)
+        n = len(basis)
+        pairs = [(a, b) for a in range(n) for b in range(a, n)]
+        rows = []
+        for a, b in pairs:
+            pab = tr.pair_multipoles(basis[a][1], basis[b][1], pm, self.ells_theory)
+            if a != b:
+                pab = pab + tr.pair_multipoles(basis[b][1], basis[a][1], pm, self.ells_theory)
+            rows.append(self.operator(pab)[self.mask])
+        T = np.array(rows)
+        extra = []
+        if self.observer is not None:
+            O = self.observer.templates(cosmo, self.z, [z for _, z in basis], pairs)[:, self.mask]
+            extra.append(O)
+        S = self._shot_template()
+        W = solve_triangular(self.chol, np.vstack([T] + extra + [S[None]]).T, lower=True).T
+        G = W @ W.T
+        g = W @ self._d_w
+        return dict(pairs=np.array(pairs), n_pairs=len(pairs), T=T, W=W, G=G, g=g,
+                    sigma8=cosmo.sigma8, growth=cosmo.growth_factor(self.z) / cosmo.growth_factor(0.0))
+
+    def _shot_template(self):
+        """Model response to a unit white-noise monopole (constant in k), including the
+        integral-constraint subtraction when a window is present."""
+        return white_noise_response(self.operator)[self.mask] / self.nbar
+
+    def _design(self, values, tpl):
+        """(n, n_templates) coefficients multiplying the whitened templates."""
+        x = self._coefficients(values)
+        pa, pb = tpl["pairs"][:, 0], tpl["pairs"][:, 1]
+        c = x[:, pa] * x[:, pb]
+        cols = [c]
+        if self.observer is not None:
+            cols.append(c * (np.atleast_1d(values["nu_obs"]) ** 2 - 1.0)[:, None])
+        cols.append((np.atleast_1d(values["shot_noise"]) - self.sn_sub)[:, None])
+        return np.hstack(cols)
+
+    # --- evaluation -----------------------------------------------------------------------------
+    def _chi2_fast(self, values, tpl):
+        c = self._design(values, tpl)
+        return self._dd - 2.0 * c @ tpl["g"] + np.einsum("ni,ij,nj->n", c, tpl["G"], c)
+
+    @property
+    def _dd(self):
+        return float(self._d_w @ self._d_w)
+
+    def _loglike_from_chi2(self, chi2):
+        if self.t_likelihood:
+            ns = self.n_mocks
+            return -0.5 * ns * np.log1p(chi2 / (ns - 1.0))
+        return -0.5 * self.precision_scale * chi2
+
+    def log_prob(self, theta):
+        """Log posterior for an (n_walkers, n_dim) array (or one point); −inf outside the prior."""
+        theta = np.asarray(theta, float)
+        single = theta.ndim == 1
+        theta = np.atleast_2d(theta)
+        lp = self.params.log_prior(theta)
+        ok = np.isfinite(lp)
+        out = np.full(theta.shape[0], -np.inf)
+        if ok.any():
+            values = self.params.values(theta[ok])
+            chi2 = self._chi2(values)
+            ll = self._loglike_from_chi2(chi2)
+            res = lp[ok] + ll
+            out[ok] = np.where(np.isfinite(res), res, -np.inf)
+        return out[0] if single else out
+
+    def _chi2(self, values):
+        if not self.cosmo_free:
+            return self._chi2_fast(values, self._templates)
+        n = len(next(iter(values.values())))
+        chi2 = np.empty(n)
+        for i in range(n):
+            row = {k: v[i:i + 1] for k, v in values.items()}
+            try:
+                cosmo = make_cosmology(self.config, {k: row[k][0] for k in self.cosmo_free})
+                tpl = self._build_templates(cosmo)
+            except ValueError:
+                chi2[i] = np.inf
+                continue
+            chi2[i] = self._chi2_fast(row, tpl)[0]
+        return chi2
+
+    def _values(self, params):
+        vals = {k: np.atleast_1d(float(v)) for k, v in self.fiducial.items()}
+        for k in self.params.fixed:
+            vals[k] = np.atleast_1d(float(self.params.fixed[k]))
+        for k, v in params.items():
+            if k not in KNOWN:
+                from .params import suggest
+                raise ConfigError(f"unknown parameter '{k}'{suggest(k, KNOWN)}")
+            vals[k] = np.atleast_1d(float(v))
+        return vals
+
+    def log_likelihood(self, params):
+        """Log likelihood (fast path) for a dict of parameter values (others at fiducial/fixed)."""
+        vals = self._values(params)
+        return float(self._loglike_from_chi2(self._chi2(vals))[0])
+
+    def _model_full(self, values, direct=False):
+        """Full (unmasked) model vector(s) by the direct path."""
+        cosmo = make_cosmology(self.config, {k: float(np.atleast_1d(values[k])[0])
+                                             for k in COSMO_PARAMS if k in values and
+                                             (k in self.cosmo_free or k in self.config["fixed"])})
+        out = []
+        n = len(np.atleast_1d(values["b1"]))
+        for i in range(n):
+            t = self._tracer(values, i)
+            pl = tr.multipoles(cosmo, self.z, self.k_theory, t, effects=self.effects,
+                               ells=self.ells_theory, shot_noise=False)
+            model = self.operator(pl)
+            amp = float(np.atleast_1d(values["shot_noise"])[i]) - self.sn_sub
+            model = model + amp * white_noise_response(self.operator) / self.nbar
+            if self.observer is not None:
+                nu = float(np.atleast_1d(values["nu_obs"])[i])
+                kern = tr.kernel(cosmo, self.z, self.k_theory, t, effects=self.effects)
+                model = model + (nu ** 2 - 1.0) * self.observer.correction(cosmo, self.z, kern)
+            out.append(model)
+        return np.array(out)
+
+    def model_vector(self, params, direct=True):
+        """Masked model vector for a dict of parameters (direct path by default)."""
+        vals = self._values(params)
+        if direct:
+            return self._model_full(vals)[0][self.mask]
+        tpl = self._templates
+        c = self._design(vals, tpl)
+        full_T = np.vstack([tpl["T"]] + ([self.observer_templates] if self.observer is not None else [])
+                           + [self._shot_template()[None]])
+        return (c @ full_T)[0]
+
+    @property
+    def observer_templates(self):
+        basis = self._basis(self.cosmo, self.k_theory)
+        return self.observer.templates(self.cosmo, self.z, [z for _, z in basis],
+                                       [tuple(p) for p in self._templates["pairs"]])[:, self.mask]
+
+    def log_likelihood_direct(self, params):
+        """Log likelihood by full recomputation (reference for the fast path)."""
+        r = self.data - self.model_vector(params, direct=True)
+        chi2 = float(r @ cho_solve((self.chol, True), r))
+        return float(self._loglike_from_chi2(np.array([chi2]))[0])
+
+    # --- helpers for the sampler/summary -------------------------------------------------------
+    def n_walkers_min(self):
+        return 2 * len(self.parameter_names)
+
+    def theta_to_dict(self, theta):
+        return {n: float(v) for n, v in zip(self.parameter_names, np.asarray(theta, float))}
+
+    def chi2(self, theta):
+        vals = self.params.values(np.atleast_2d(theta))
+        return float(self._chi2(vals)[0])
+
+    derived_names = ["fnl_eff", "b1_sigma8"]
+
+    @property
+    def derived_labels(self):
+        from .params import DERIVED
+        return [DERIVED[n].label for n in self.derived_names]
+
+    def derived(self, theta):
+        """(n, 2): f_NL mimicked by the projection terms, and b1 σ8(z)."""
+        theta = np.atleast_2d(theta)
+        vals = self.params.values(theta)
+        out = np.empty((theta.shape[0], 2))
+        cache = {}
+        for i in range(theta.shape[0]):
+            t = self._tracer(vals, i)
+            key = (t.b1, t.b_e, t.s)
+            if key not in cache:
+                cache[key] = tr.effective_fnl(self.cosmo, self.z, t, effects=self.effects)
+            out[i, 0] = cache[key]
+        tpl = self._templates
+        out[:, 1] = vals["b1"] * tpl["sigma8"] * tpl["growth"]
+        return out
+
+    def observables(self):
+        """Data per multipole for plots: ells, k, data, sigma (masked)."""
+        sig = np.sqrt(np.diag(self.covariance))
+        m2 = self.mask.reshape(len(self.data_full.ells), -1)
+        out = dict(ells=[], k=[], data=[], sigma=[])
+        pos = 0
+        for j, l in enumerate(self.data_full.ells):
+            sel = m2[j]
+            if not sel.any():
+                continue
+            n = int(sel.sum())
+            out["ells"].append(l)
+            out["k"].append(self.data_full.k_eff[sel])
+            out["data"].append(self.data[pos:pos + n])
+            out["sigma"].append(sig[pos:pos + n])
+            pos += n
+        return out
+
+    def model_observables(self, theta):
+        vec = self.model_vector(self.theta_to_dict(theta), direct=False)
+        parts, pos = [], 0
+        for k in self.observables()["k"]:
+            parts.append(vec[pos:pos + k.size])
+            pos += k.size
+        return parts
+
+    def describe(self):
+        """Multi-line human summary of the model (used by ``ergofit check``)."""
+        cfg = self.config
+        lines = [f"run: {cfg['run']}  (config hash {self.config_hash})",
+                 f"survey: z = {self.z:g}, nbar = {self.nbar:g} (h/Mpc)^3, geometry "
+                 f"{cfg['survey']['geometry']['shape']}, volume {self.volume:.4g} (Mpc/h)^3",
+                 f"effects on: {', '.join(self.effects) or 'none'}; window: "
+                 f"{'yes' if self.window is not None else 'no'}; integral constraint: {self.operator.ic}; "
+                 f"observer term: {'yes (' + cfg['observer']['field'] + ')' if self.observer_on else 'no'}",
+                 f"data: {self.data.size} points, multipoles {list(self.ells)}, k in "
+                 f"[{self.data_full.k_eff[self.mask.reshape(len(self.data_full.ells), -1).any(0)].min():.4g}, "
+                 f"{self.data_full.k_eff[self.mask.reshape(len(self.data_full.ells), -1).any(0)].max():.4g}] h/Mpc",
+                 f"covariance: {cfg['covariance']['kind']}, condition number {self.condition_number:.3g}",
+                 "sampled parameters:"]
+        for p in self.params.free:
+            lines.append(f"  {p.name:<10s} {p.prior.describe():<30s} start {p.start:g}")
+        if self.params.fixed:
+            lines.append("fixed: " + ", ".join(f"{k} = {v:g}" for k, v in self.params.fixed.items()))
+        return "\n".join(lines)
+
+
+def build(config):
+    """Build the likelihood of a validated config (or a path to a YAML file)."""
+    from .config import Config, load_config
+    if not isinstance(config, Config):
+        config = load_config(config)
+    return Likelihood(config)

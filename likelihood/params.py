@@ -1,0 +1,225 @@
+"""The parameter table and priors.
+
+Every parameter ergofit knows has a name, a LaTeX label, a default value and a group
+(tracer, observer, noise, cosmology). A run samples some of them (flat or Gaussian prior) and keeps
+the others fixed. Derived parameters are computed from each sample after the fit.
+"""
+from __future__ import annotations
+
+import difflib
+from dataclasses import dataclass
+
+import numpy as np
+
+from .errors import ConfigError
+
+
+@dataclass(frozen=True)
+class ParamInfo:
+    label: str
+    default: float
+    group: str
+    doc: str
+
+
+#: Parameters that can be sampled or fixed (defaults are the demo's fiducial values).
+KNOWN = {
+    "b1": ParamInfo(r"b_1", 2.0, "tracer", "linear bias"),
+    "fnl": ParamInfo(r"f_{\rm NL}", 0.0, "tracer", "local primordial non-Gaussianity (CMB convention)"),
+    "b_e": ParamInfo(r"b_e", 0.0, "tracer", "evolution bias d ln(a^3 n)/d ln a"),
+    "s": ParamInfo(r"s", 0.0, "tracer", "magnification bias: slope of the cumulative counts"),
+    "nu_obs": ParamInfo(r"\nu_{\rm obs}", 1.0, "observer",
+                        "value of the constraint field at the observer in units of its rms"),
+    "shot_noise": ParamInfo(r"A_{\rm sn}", 1.0, "noise", "shot-noise amplitude in units of 1/nbar"),
+    "h": ParamInfo(r"h", 0.6736, "cosmology", "H0 / (100 km/s/Mpc)"),
+    "omega_cdm": ParamInfo(r"\omega_{\rm cdm}", 0.1200, "cosmology", "physical CDM density"),
+    "omega_b": ParamInfo(r"\omega_{\rm b}", 0.02237, "cosmology", "physical baryon density"),
+    "n_s": ParamInfo(r"n_s", 0.9649, "cosmology", "scalar spectral index"),
+    "ln10As": ParamInfo(r"\ln(10^{10}A_s)", 3.044, "cosmology", "primordial amplitude"),
+    "sigma8": ParamInfo(r"\sigma_8", 0.8111, "cosmology", "rms linear density in 8 Mpc/h spheres"),
+}
+
+#: Derived parameters (computed per sample).
+DERIVED = {
+    "fnl_eff": ParamInfo(r"f_{\rm NL}^{\rm proj}", 0.0, "derived",
+                         "f_NL mimicked by the projection terms at k -> 0"),
+    "b1_sigma8": ParamInfo(r"b_1\sigma_8", 0.0, "derived", "b1 times sigma8(z)"),
+    "sigma8_0": ParamInfo(r"\sigma_8", 0.0, "derived", "sigma8 at z = 0"),
+}
+
+
+def suggest(name, choices):
+    """' (did you mean 'x'?)' for the nearest valid name, or ''."""
+    best = difflib.get_close_matches(str(name), list(choices), n=1, cutoff=0.5)
+    return f" (did you mean '{best[0]}'?)" if best else ""
+
+
+def check_name(name, where="parameters"):
+    if name not in KNOWN:
+        raise ConfigError(f"{where}: unknown parameter '{name}'{suggest(name, KNOWN)}; "
+                          f"known: {', '.join(KNOWN)}")
+
+
+@dataclass(frozen=True)
+class Prior:
+    """A flat prior on [lower, upper] or a Gaussian N(mean, sigma) truncated to [lower, upper]."""
+
+    kind: str
+    lower: float = -np.inf
+    upper: float = np.inf
+    mean: float = 0.0
+    sigma: float = 1.0
+
+    def __post_init__(self):
+        if self.kind not in ("flat", "gauss"):
+            raise ConfigError(f"prior kind '{self.kind}' unknown; use 'flat' or 'gauss'")
+        if not self.lower < self.upper:
+            raise ConfigError(f"prior bounds [{self.lower}, {self.upper}]: lower must be below upper")
+        if self.kind == "flat" and not (np.isfinite(self.lower) and np.isfinite(self.upper)):
+            raise ConfigError("a flat prior needs finite bounds [lower, upper]")
+        if self.kind == "gauss" and not self.sigma > 0:
+            raise ConfigError(f"Gaussian prior sigma must be > 0, got {self.sigma}")
+
+    def log_pdf(self, x):
+        """Log prior density (up to a constant): vectorised, −inf outside the bounds, never NaN."""
+        x = np.asarray(x, float)
+        inside = (x >= self.lower) & (x <= self.upper) & np.isfinite(x)
+        if self.kind == "flat":
+            val = np.zeros_like(x)
+        else:
+            val = -0.5 * ((np.where(inside, x, self.mean) - self.mean) / self.sigma) ** 2
+        return np.where(inside, val, -np.inf)
+
+    def contains(self, x):
+        return bool(self.lower <= x <= self.upper)
+
+    def describe(self):
+        if self.kind == "flat":
+            return f"flat [{self.lower:g}, {self.upper:g}]"
+        bounds = "" if np.isinf(self.lower) and np.isinf(self.upper) else \
+            f" on [{self.lower:g}, {self.upper:g}]"
+        return f"Gaussian N({self.mean:g}, {self.sigma:g}){bounds}"
+
+
+@dataclass(frozen=True)
+class Parameter:
+    name: str
+    prior: Prior
+    start: float
+    scale: float
+
+    @property
+    def label(self):
+        return KNOWN[self.name].label
+
+
+class ParameterSet:
+    """Ordered sampled parameters plus fixed values of all the others.
+
+    ``values(theta)`` maps an (n, n_dim) array to a dict name -> (n,) array over every known
+    parameter (fixed ones broadcast), which is what the model consumes.
+    """
+
+    def __init__(self, free, fixed):
+        self.free = list(free)
+        self.fixed = dict(fixed)
+        names = [p.name for p in self.free]
+        for p in self.free:
+            if not p.prior.contains(p.start):
+                raise ConfigError(f"parameters.{p.name}: start {p.start} is outside its prior "
+                                  f"{p.prior.describe()}")
+        if len(set(names)) != len(names):
+            raise ConfigError("parameters: a parameter is listed twice")
+        self.names = names
+
+    @property
+    def labels(self):
+        return [p.label for p in self.free]
+
+    @property
+    def bounds(self):
+        return np.array([[p.prior.lower, p.prior.upper] for p in self.free], float).reshape(-1, 2)
+
+    @property
+    def start(self):
+        return np.array([p.start for p in self.free], float)
+
+    @property
+    def start_scale(self):
+        return np.array([p.scale for p in self.free], float)
+
+    def log_prior(self, theta):
+        theta = np.atleast_2d(theta)
+        lp = np.zeros(theta.shape[0])
+        for i, p in enumerate(self.free):
+            lp = lp + p.prior.log_pdf(theta[:, i])
+        return lp
+
+    def values(self, theta):
+        theta = np.atleast_2d(np.asarray(theta, float))
+        n = theta.shape[0]
+        out = {name: np.full(n, float(v)) for name, v in self.fixed.items()}
+        for i, p in enumerate(self.free):
+            out[p.name] = theta[:, i]
+        return out
+
+    def is_free(self, name):
+        return name in self.names
+
+
+def parse_parameter(name, spec, where):
+    """Parse one entry of the config's ``parameters`` block.
+
+    Vocabulary: ``{fixed: v}`` or ``{flat: [lo, hi] | gauss: [mean, sigma], bounds: [lo, hi],
+    start: v, scale: s}``. Returns ``(Parameter or None, fixed value or None)``.
+    """
+    check_name(name, where)
+    info = KNOWN[name]
+    if not isinstance(spec, dict):
+        # a bare number fixes the parameter
+        if isinstance(spec, (int, float)) and not isinstance(spec, bool):
+            return None, float(spec)
+        raise ConfigError(f"{where}.{name}: expected a mapping like {{flat: [lo, hi], start: x}} "
+                          f"or {{fixed: x}}, got {spec!r}")
+    allowed = ("fixed", "flat", "gauss", "bounds", "start", "scale")
+    for key in spec:
+        if key not in allowed:
+            raise ConfigError(f"{where}.{name}: unknown key '{key}'{suggest(key, allowed)}; "
+                              f"allowed: {', '.join(allowed)}")
+    kinds = [k for k in ("fixed", "flat", "gauss") if k in spec]
+    if len(kinds) != 1:
+        raise ConfigError(f"{where}.{name}: give exactly one of fixed / flat / gauss")
+    kind = kinds[0]
+
+    def pair(key):
+        val = spec[key]
+        if (not isinstance(val, (list, tuple)) or len(val) != 2
+                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in val)):
+            raise ConfigError(f"{where}.{name}.{key}: expected two numbers [a, b], got {val!r}")
+        return float(val[0]), float(val[1])
+
+    def number(key, default):
+        val = spec.get(key, default)
+        if not isinstance(val, (int, float)) or isinstance(val, bool) or not np.isfinite(val):
+            raise ConfigError(f"{where}.{name}.{key}: expected a finite number, got {val!r}")
+        return float(val)
+
+    if kind == "fixed":
+        return None, number("fixed", None)
+    try:
+        if kind == "flat":
+            lo, hi = pair("flat")
+            prior = Prior("flat", lo, hi)
+        else:
+            mean, sigma = pair("gauss")
+            lo, hi = pair("bounds") if "bounds" in spec else (-np.inf, np.inf)
+            prior = Prior("gauss", lo, hi, mean, sigma)
+    except ConfigError as exc:
+        raise ConfigError(f"{where}.{name}: {exc}") from None
+    centre = 0.5 * (prior.lower + prior.upper) if kind == "flat" else prior.mean
+    start = number("start", info.default if prior.contains(info.default) else centre)
+    width = (prior.upper - prior.lower) if kind == "flat" else prior.sigma
+    scale = number("scale", 1e-2 * width)
+    if scale <= 0:
+        raise ConfigError(f"{where}.{name}.scale: must be > 0, got {scale}")
+    return Parameter(name, prior, start, scale), None
