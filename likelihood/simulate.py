@@ -748,7 +748,12 @@ def measure_multipoles(mesh, field, window_mask=None, edges=None, ells=(0, 2, 4)
 
         F(x) = W(x) [Δ(x) − Δ̄],   Δ̄ = Σ W Δ / Σ W    (mean estimated from the data),
         F_ℓ(k) = ∫ d³x F(x) e^{-ik·x} L_ℓ(k̂·x̂),      x̂ from the observer,
-        P̂_ℓ(k) = (2ℓ+1)/I₂ < F_0(k) F_ℓ*(k) >_bin − δ_ℓ0 S,     I₂ = ∫ d³x W²,
+        P̂_ℓ(k) = (2ℓ+1)/I₂ < F_ℓ(k) F_0*(k) >_bin − δ_ℓ0 S,     I₂ = ∫ d³x W²,
+
+    i.e. for a pair (x₁, x₂) the line of sight is x̂₁, the point of the un-conjugated factor, and
+    the pair enters as e^{-ik·(x₁−x₂)}: the convention of ``likelihood.window`` (Q_ℓ(s) with
+    s = x₁ − x₂ and the line of sight x̂₁). Even ℓ do not depend on this choice; odd ℓ change
+    sign with it.
 
     so Q_0(0) = 1 with I₂ = ∫W² (the window module's normalisation). With W = 1 the monopole is
     the periodic-box estimator |δ_k|²/V. Because Δ̄ comes from the data, the integral constraint
@@ -759,11 +764,12 @@ def measure_multipoles(mesh, field, window_mask=None, edges=None, ells=(0, 2, 4)
     α = Σ N/(n̄ H³ Σ W), and the shot noise S = Σ N /(n̄² I₂) (→ 1/n̄; subtracted from ℓ = 0 only;
     Feldman, Kaiser & Peacock 1994).
     ``window_mask``: None (W = 1, periodic box), a geometry with ``contains``, or weights on the mesh.
-    ``cross``: a second field (same conventions, its own ``nbar_cross``) for the cross spectrum
-    P_AB(k, μ) = <Δ_A(k) Δ_B*(k)>: F_0 from ``field``, F_ℓ (line of sight at its points) from
-    ``cross``; no shot noise is subtracted (independent samples).
+    ``cross``: a second field B (same conventions, its own ``nbar_cross``) for the cross spectrum
+    of A = ``field`` and B, P_AB(k, μ) = <Δ_A(k) Δ_B*(k)> (the ``likelihood.tracer`` convention):
+    F_ℓ from A (line of sight at A's points), F_0 from B; no shot noise is subtracted
+    (independent samples).
 
-    Odd ℓ: the bin average of F_0 F_ℓ* is imaginary (k and −k pair up); the data vector stores
+    Odd ℓ: the bin average of F_ℓ F_0* is imaginary (k and −k pair up); the data vector stores
     Π_ℓ = Im P̂_ℓ, with P_ℓ = i Π_ℓ (``likelihood.data`` convention). For a single tracer with the
     local line of sight the odd multipoles are wide-angle effects (order 1/(kχ)).
     Bins: [k_lo, k_hi) (the last one closed), averaged over the mesh modes; ``k_eff`` = mean |k| of
@@ -778,7 +784,7 @@ def measure_multipoles(mesh, field, window_mask=None, edges=None, ells=(0, 2, 4)
     w = _weights(mesh, window_mask)
     F, shot, i2 = _estimator_field(mesh, field, w, nbar, subtract_mean, "field")
     if cross is not None:
-        G, _, i2b = _estimator_field(mesh, cross, w, nbar_cross, subtract_mean, "cross")
+        G, _, _ = _estimator_field(mesh, cross, w, nbar_cross, subtract_mean, "cross")
         shot = 0.0
     else:
         G = F
@@ -790,11 +796,11 @@ def measure_multipoles(mesh, field, window_mask=None, edges=None, ells=(0, 2, 4)
         raise ErgofitError(f"edges: bin [{e[i]:.4g}, {e[i + 1]:.4g}) h/Mpc contains no Fourier mode "
                            f"of the mesh (k_f = {mesh.k_fundamental:.4g} h/Mpc); widen the bins")
     k_eff = np.bincount(b, weights=mult * kmag, minlength=nbins) / counts
-    F0 = _fft_at(mesh, F, flat)
-    Fl = _multipole_transforms(mesh, G, ells, flat, khat)
+    Fl = _multipole_transforms(mesh, F, ells, flat, khat)
+    F0 = Fl[0] if G is F else _fft_at(mesh, G, flat)
     vals = []
     for ell in ells:
-        prod = F0 * np.conj(Fl[ell])
+        prod = Fl[ell] * np.conj(F0)
         part = prod.imag if ell % 2 else prod.real
         p = (2 * ell + 1) / i2 * np.bincount(b, weights=mult * part, minlength=nbins) / counts
         if ell == 0:
