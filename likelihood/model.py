@@ -29,7 +29,7 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
-from scipy.linalg import cho_solve, solve_triangular
+from scipy.linalg import cho_solve
 
 from . import tracer as tr
 from .config import parameter_set
@@ -148,6 +148,7 @@ class Likelihood:
         d = cfg["data"]
         self.mask = self.data_full.mask(self.ells, d.get("k_min"), d.get("k_max"))
         self.observer = self._make_observer()
+        self._warn_regime()
         cov_full, self.mock_cov = self._covariance()
         if cfg["data"].get("mock") is not None:
             self.data_full = self._make_mock(cov_full)
@@ -163,7 +164,10 @@ class Likelihood:
             scale = self.mock_cov.hartlap(self.data.size)
         self.precision_scale = scale
         self.dof = int(self.data.size - len(self.parameter_names))
-        self._d_w = solve_triangular(self.chol, self.data, lower=True)
+        self._fixed_floats = {k: float(v[0]) for k, v in self._values({}).items()}
+        self._chol_inv = np.linalg.inv(self.chol)   # tiny matrix; matmul beats repeated solves
+        self._d_w = self._chol_inv @ self.data
+        self._dd = float(self._d_w @ self._d_w)
         self._templates = self._build_templates(self.cosmo)
 
     # --- set-up -----------------------------------------------------------------------------
@@ -194,6 +198,21 @@ class Likelihood:
         return DataVector(self.ells, edges, kb.k_eff, kb.n_modes,
                           np.zeros((len(self.ells), edges.size - 1)), source="mock")
 
+    def _warn_regime(self):
+        """Say where the plane-parallel, linear-theory kernel is stretched by the data."""
+        k_used = self.data_full.k_eff[self.mask.reshape(len(self.data_full.ells), -1).any(0)]
+        chi = float(self.cosmo.comoving_distance(self.z))
+        if any(e in self.effects for e in ("doppler", "potential")) and \
+                k_used[0] * chi < tr.PLANE_PARALLEL_KCHI:
+            warnings.warn(f"data k_min = {k_used[0]:.3g} h/Mpc gives k chi = {k_used[0] * chi:.2g} < "
+                          f"{tr.PLANE_PARALLEL_KCHI:g} at z = {self.z:g}: the plane-parallel projection "
+                          "terms miss wide-angle corrections of order 1/(k chi) there",
+                          tr.PlaneParallelWarning, stacklevel=3)
+        if k_used[-1] > 0.1:
+            warnings.warn(f"data k_max = {k_used[-1]:.3g} h/Mpc: the model is linear theory "
+                          "(no non-linear damping or loop corrections); keep k_max <~ 0.1 h/Mpc at z ~ 1",
+                          UserWarning, stacklevel=3)
+
     def _make_observer(self):
         if not self.observer_on:
             return None
@@ -221,7 +240,9 @@ class Likelihood:
                 raise DataError(f"{c['mocks']}: mock multipoles/k bins differ from the data vector")
             return mc.covariance, mc
         # analytic Gaussian covariance at the fiducial model
-        kern = self._kernel(self.cosmo, self.fiducial, self.bins.k_eff)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", tr.PlaneParallelWarning)
+            kern = self._kernel(self.cosmo, self.fiducial, self.bins.k_eff)
         pm = self.cosmo.power(self.bins.k_eff, self.z)
         coeffs = np.column_stack([kern.A ** 2 * pm, (2 * kern.A * kern.F + kern.B ** 2) * pm,
                                   np.full_like(pm, kern.F ** 2) * pm])
@@ -276,14 +297,18 @@ class Likelihood:
         return basis
 
     def _coefficients(self, values):
-        """(n, n_basis) coefficient vectors x for each row of ``values``."""
-        b1 = np.atleast_1d(values["b1"])
-        cols = [np.ones_like(b1), b1]
+        """(n, n_basis) coefficient vectors x for the parameter values (arrays or floats)."""
+        b1 = values["b1"]
+        cols = [1.0, b1]
         if "fnl" in self.effects:
-            cols.append(np.atleast_1d(values["fnl"]) * (b1 - self.p))
+            cols.append(values["fnl"] * (b1 - self.p))
         for name in self.lin_free:
-            cols.append(np.atleast_1d(values[name]) * (2.5 if name == "s" else 1.0))
-        return np.column_stack(cols)
+            cols.append(values[name])   # the basis kernel of s already carries d𝒬/ds = 5/2
+        n = max(np.size(c) for c in cols)
+        x = np.empty((n, len(cols)))
+        for j, c in enumerate(cols):
+            x[:, j] = c
+        return x
 
     def _build_templates(self, cosmo):
         """Whitened template matrices for the fast path at the given cosmology."""
@@ -304,10 +329,10 @@ class Likelihood:
             O = self.observer.templates(cosmo, self.z, [z for _, z in basis], pairs)[:, self.mask]
             extra.append(O)
         S = self._shot_template()
-        W = solve_triangular(self.chol, np.vstack([T] + extra + [S[None]]).T, lower=True).T
+        W = np.vstack([T] + extra + [S[None]]) @ self._chol_inv.T
         G = W @ W.T
         g = W @ self._d_w
-        return dict(pairs=np.array(pairs), n_pairs=len(pairs), T=T, W=W, G=G, g=g,
+        return dict(pairs=np.array(pairs), n_pairs=len(pairs), pair_list=pairs, T=T, W=W, G=G, g=g,
                     sigma8=cosmo.sigma8, growth=cosmo.growth_factor(self.z) / cosmo.growth_factor(0.0))
 
     def _shot_template(self):
@@ -318,22 +343,20 @@ class Likelihood:
     def _design(self, values, tpl):
         """(n, n_templates) coefficients multiplying the whitened templates."""
         x = self._coefficients(values)
-        pa, pb = tpl["pairs"][:, 0], tpl["pairs"][:, 1]
-        c = x[:, pa] * x[:, pb]
-        cols = [c]
+        c = x[:, tpl["pairs"][:, 0]] * x[:, tpl["pairs"][:, 1]]
+        n = c.shape[0]
+        out = np.empty((n, tpl["W"].shape[0]))
+        npair = c.shape[1]
+        out[:, :npair] = c
         if self.observer is not None:
-            cols.append(c * (np.atleast_1d(values["nu_obs"]) ** 2 - 1.0)[:, None])
-        cols.append((np.atleast_1d(values["shot_noise"]) - self.sn_sub)[:, None])
-        return np.hstack(cols)
+            out[:, npair:2 * npair] = c * (np.reshape(values["nu_obs"], (-1, 1)) ** 2 - 1.0)
+        out[:, -1] = values["shot_noise"] - self.sn_sub
+        return out
 
     # --- evaluation -----------------------------------------------------------------------------
     def _chi2_fast(self, values, tpl):
         c = self._design(values, tpl)
-        return self._dd - 2.0 * c @ tpl["g"] + np.einsum("ni,ij,nj->n", c, tpl["G"], c)
-
-    @property
-    def _dd(self):
-        return float(self._d_w @ self._d_w)
+        return self._dd - 2.0 * (c @ tpl["g"]) + np.sum((c @ tpl["G"]) * c, axis=1)
 
     def _loglike_from_chi2(self, chi2):
         if self.t_likelihood:
@@ -345,33 +368,72 @@ class Likelihood:
         """Log posterior for an (n_walkers, n_dim) array (or one point); −inf outside the prior."""
         theta = np.asarray(theta, float)
         single = theta.ndim == 1
+        if single and not self.cosmo_free:
+            return self._log_prob_single(theta)
         theta = np.atleast_2d(theta)
         lp = self.params.log_prior(theta)
         ok = np.isfinite(lp)
         out = np.full(theta.shape[0], -np.inf)
         if ok.any():
-            values = self.params.values(theta[ok])
+            values = self._theta_values(theta[ok])
             chi2 = self._chi2(values)
             ll = self._loglike_from_chi2(chi2)
             res = lp[ok] + ll
             out[ok] = np.where(np.isfinite(res), res, -np.inf)
         return out[0] if single else out
 
+    def _log_prob_single(self, theta):
+        """Scalar fast path for one point at fixed cosmology (what a per-walker pool calls)."""
+        lo, hi, mean, inv_sig, any_gauss = self.params._prior_arrays()
+        th = theta.tolist()
+        lp = 0.0
+        for i, x in enumerate(th):
+            if not lo[i] <= x <= hi[i]:       # also False for NaN
+                return -np.inf
+            if inv_sig[i]:
+                lp -= 0.5 * ((x - mean[i]) * inv_sig[i]) ** 2
+        vals = dict(self._fixed_floats)
+        vals.update(zip(self.parameter_names, th))
+        b1 = vals["b1"]
+        x = [1.0, b1]
+        if "fnl" in self.effects:
+            x.append(vals["fnl"] * (b1 - self.p))
+        for name in self.lin_free:
+            x.append(vals[name])
+        tpl = self._templates
+        c = [x[a] * x[b] for a, b in tpl["pair_list"]]
+        if self.observer is not None:
+            w = vals["nu_obs"] ** 2 - 1.0
+            c += [w * ci for ci in c]
+        c.append(vals["shot_noise"] - self.sn_sub)
+        c = np.array(c)
+        chi2 = self._dd - 2.0 * (c @ tpl["g"]) + c @ (tpl["G"] @ c)
+        res = lp + float(self._loglike_from_chi2(chi2))
+        return res if res == res else -np.inf
+
     def _chi2(self, values):
         if not self.cosmo_free:
             return self._chi2_fast(values, self._templates)
-        n = len(next(iter(values.values())))
+        n = max(np.size(v) for v in values.values())
         chi2 = np.empty(n)
         for i in range(n):
-            row = {k: v[i:i + 1] for k, v in values.items()}
+            row = {k: (v[i] if np.ndim(v) else v) for k, v in values.items()}
             try:
-                cosmo = make_cosmology(self.config, {k: row[k][0] for k in self.cosmo_free})
+                cosmo = make_cosmology(self.config, {k: row[k] for k in self.cosmo_free})
                 tpl = self._build_templates(cosmo)
             except ValueError:
-                chi2[i] = np.inf
+                chi2[i] = np.inf   # e.g. a cosmology the background cannot describe
                 continue
             chi2[i] = self._chi2_fast(row, tpl)[0]
         return chi2
+
+    def _theta_values(self, theta):
+        """Dict name -> (n,) array (sampled) or float (fixed/fiducial) for (n, n_dim) theta."""
+        theta = np.atleast_2d(np.asarray(theta, float))
+        vals = dict(self._fixed_floats)
+        for i, name in enumerate(self.parameter_names):
+            vals[name] = theta[:, i]
+        return vals
 
     def _values(self, params):
         vals = {k: np.atleast_1d(float(v)) for k, v in self.fiducial.items()}
@@ -391,6 +453,13 @@ class Likelihood:
 
     def _model_full(self, values, direct=False):
         """Full (unmasked) model vector(s) by the direct path."""
+        with warnings.catch_warnings():
+            # the fine theory grid reaches k chi << 1 by construction; the data range is
+            # checked once in __init__ (_warn_regime)
+            warnings.simplefilter("ignore", tr.PlaneParallelWarning)
+            return self._model_full_quiet(values)
+
+    def _model_full_quiet(self, values):
         cosmo = make_cosmology(self.config, {k: float(np.atleast_1d(values[k])[0])
                                              for k in COSMO_PARAMS if k in values and
                                              (k in self.cosmo_free or k in self.config["fixed"])})
@@ -441,7 +510,7 @@ class Likelihood:
         return {n: float(v) for n, v in zip(self.parameter_names, np.asarray(theta, float))}
 
     def chi2(self, theta):
-        vals = self.params.values(np.atleast_2d(theta))
+        vals = self._theta_values(np.atleast_2d(theta))
         return float(self._chi2(vals)[0])
 
     derived_names = ["fnl_eff", "b1_sigma8"]
@@ -454,7 +523,7 @@ class Likelihood:
     def derived(self, theta):
         """(n, 2): f_NL mimicked by the projection terms, and b1 σ8(z)."""
         theta = np.atleast_2d(theta)
-        vals = self.params.values(theta)
+        vals = self._theta_values(theta)
         out = np.empty((theta.shape[0], 2))
         cache = {}
         for i in range(theta.shape[0]):

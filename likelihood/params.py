@@ -148,17 +148,30 @@ class ParameterSet:
     def start_scale(self):
         return np.array([p.scale for p in self.free], float)
 
+    def _prior_arrays(self):
+        if not hasattr(self, "_pa"):
+            lo, hi = self.bounds.T.copy()
+            gauss = np.array([p.prior.kind == "gauss" for p in self.free])
+            mean = np.array([p.prior.mean for p in self.free], float)
+            inv_sig = np.where(gauss, 1.0 / np.array([p.prior.sigma for p in self.free], float), 0.0)
+            self._pa = (lo, hi, mean, inv_sig, bool(gauss.any()))
+        return self._pa
+
     def log_prior(self, theta):
+        """Sum of log prior densities for (n, n_dim) theta; −inf outside the bounds, never NaN."""
         theta = np.atleast_2d(theta)
-        lp = np.zeros(theta.shape[0])
-        for i, p in enumerate(self.free):
-            lp = lp + p.prior.log_pdf(theta[:, i])
-        return lp
+        lo, hi, mean, inv_sig, any_gauss = self._prior_arrays()
+        inside = np.all((theta >= lo) & (theta <= hi), axis=1)
+        if any_gauss:
+            lp = -0.5 * np.sum(((np.where(inside[:, None], theta, mean) - mean) * inv_sig) ** 2, axis=1)
+        else:
+            lp = np.zeros(theta.shape[0])
+        return np.where(inside, lp, -np.inf)
 
     def values(self, theta):
+        """Dict name -> (n,) array for sampled parameters and float for fixed ones."""
         theta = np.atleast_2d(np.asarray(theta, float))
-        n = theta.shape[0]
-        out = {name: np.full(n, float(v)) for name, v in self.fixed.items()}
+        out = {name: float(v) for name, v in self.fixed.items()}
         for i, p in enumerate(self.free):
             out[p.name] = theta[:, i]
         return out
