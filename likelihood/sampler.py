@@ -293,6 +293,46 @@ class _PerWalkerLogProb:
 # --------------------------------------------------------------------------------------------
 
 
+def _h5(path: str, mode: str) -> h5py.File:
+    """Open without HDF5's file lock: a reader (a notebook, a summary) holding the chain open
+    must never make the running sampler fail. Writers are serialised by :class:`_RunLock`."""
+    return h5py.File(path, mode, locking=False)
+
+
+class _RunLock:
+    """Exclusive lock on the output folder for the duration of a run (``flock`` on the folder).
+
+    The kernel releases it when the process ends, however it ends. No-op where ``fcntl`` is
+    unavailable.
+    """
+
+    def __init__(self, out_dir: str):
+        self.out_dir = out_dir
+        self.fd: int | None = None
+
+    def __enter__(self) -> _RunLock:
+        try:
+            import fcntl
+        except ImportError:  # pragma: no cover - not POSIX
+            return self
+        self.fd = os.open(self.out_dir, os.O_RDONLY)
+        try:
+            fcntl.flock(self.fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            os.close(self.fd)
+            self.fd = None
+            raise ErgofitError(
+                f"another process is running the sampler in {self.out_dir}; wait for it to end "
+                "or choose a new output folder"
+            ) from None
+        return self
+
+    def __exit__(self, *exc) -> None:
+        if self.fd is not None:
+            os.close(self.fd)  # releases the flock
+            self.fd = None
+
+
 def _chain_error(path: str, reason: str) -> ErgofitError:
     reason = " ".join(str(reason).split())
     return ErgofitError(
@@ -329,9 +369,21 @@ class _Stored:
     random_state: tuple | None  # emcee RandomState state after step `iteration`, if consistent
 
 
-def _read_chain(path: str, with_arrays: bool = True) -> _Stored:
+def _read_chain(path: str, with_arrays: bool = True, attempts: int = 3) -> _Stored:
+    """Read a chain file; retried briefly, since a running sampler may be mid-flush."""
+    for attempt in range(attempts):
+        try:
+            return _read_chain_once(path, with_arrays)
+        except ErgofitError:
+            if attempt == attempts - 1:
+                raise
+            time.sleep(0.1)
+    raise AssertionError("unreachable")
+
+
+def _read_chain_once(path: str, with_arrays: bool) -> _Stored:
     try:
-        with h5py.File(path, "r") as f:
+        with _h5(path, "r") as f:
             a = f.attrs
             if "ergofit_format" not in a or _GROUP not in f:
                 raise _chain_error(path, "not an ergofit chain (missing ergofit attributes)")
@@ -387,7 +439,7 @@ def _create_chain_file(path: str, names, labels, bounds, config_hash: str, setti
     # a fresh unique name (not mkstemp, whose 0600 mode would stick to the chain file)
     tmp = os.path.join(directory, f".{name}.{os.getpid()}.{uuid.uuid4().hex[:8]}.tmp")
     try:
-        with h5py.File(tmp, "x") as f:
+        with _h5(tmp, "x") as f:
             f.attrs["ergofit_format"] = _FORMAT_VERSION
             f.attrs["config_hash"] = config_hash
             f.attrs["parameter_names"] = np.array(names, dtype=h5py.string_dtype())
@@ -441,7 +493,7 @@ def _fsync(path: str) -> None:
 
 
 def _set_root_attrs(path: str, **attrs: Any) -> None:
-    with h5py.File(path, "a") as f:
+    with _h5(path, "a") as f:
         for key, value in attrs.items():
             f.attrs[key] = value
     _fsync(path)
@@ -473,7 +525,7 @@ class _ChainWriter:
         )
 
     def ensure_capacity(self, n_total: int) -> None:
-        with h5py.File(self.path, "a") as f:
+        with _h5(self.path, "a") as f:
             g = f[_GROUP]
             for name in ("chain", "log_prob"):
                 if g[name].shape[0] < n_total:
@@ -486,7 +538,7 @@ class _ChainWriter:
             return
         m = len(self.coords)
         start, stop = self.iteration, self.iteration + m
-        with h5py.File(self.path, "a") as f:
+        with _h5(self.path, "a") as f:
             g = f[_GROUP]
             for name in ("chain", "log_prob"):
                 if g[name].shape[0] < stop:
@@ -716,6 +768,13 @@ def run_sampler(lik: Any, settings: SamplerSettings | None, out_dir: str | os.Pa
     if os.path.exists(out_dir) and not os.path.isdir(out_dir):
         raise ErgofitError(f"output folder {out_dir} exists and is not a folder")
     os.makedirs(out_dir, exist_ok=True)
+    with _RunLock(out_dir):
+        return _run_locked(lik, settings, out_dir, resume, pool, names, labels, bounds, start,
+                           scale)
+
+
+def _run_locked(lik, settings: SamplerSettings, out_dir: str, resume: bool, pool, names, labels,
+                bounds, start, scale) -> SamplerResult:
     path = os.path.join(out_dir, CHAIN_FILENAME)
     notes: list[str] = []
 
@@ -758,14 +817,18 @@ def run_sampler(lik: Any, settings: SamplerSettings | None, out_dir: str | os.Pa
         # Rebuild the convergence bookkeeping of the uninterrupted run.
         c = (n0 // settings.check_every) * settings.check_every
         tau_prev = _tau(stored.chain[:c]) if c > 0 else None
+        # The stop rule is re-evaluated with the current settings: a chain that met it stays
+        # finished; one that met a laxer rule (e.g. a smaller tau_factor) is continued.
         already = False
-        if c == n0 and c > settings.check_every and stored.status != "converged":
+        if c == n0 and c > settings.check_every:
             already = _stop_rule(n0, tau_prev, _tau(stored.chain[:c - settings.check_every]),
                                  settings)
-        if stored.status == "converged" or already:
-            if already:
+        if already:
+            if stored.status != "converged":
                 _set_root_attrs(path, status="converged")
             return _result_from(_read_chain(path), path, notes + ["run had converged already"])
+        if stored.status == "converged":
+            notes.append(f"continued a chain that had converged under other settings at {n0} steps")
         accepted = _acceptance(stored.initial_coords, stored.chain)
         store_settings = dict(stored.settings, **{k: v for k, v in settings.to_dict().items()
                                                   if k not in ("seed", "n_walkers")})
@@ -784,14 +847,14 @@ def run_sampler(lik: Any, settings: SamplerSettings | None, out_dir: str | os.Pa
     if n0 >= settings.max_steps:
         _set_root_attrs(path, status="max_steps")
         result = _result_from(_read_chain(path), path, notes)
-        warnings.warn(f"{path}: " + result.notes[-1], ConvergenceWarning, stacklevel=2)
+        warnings.warn(f"{path}: " + result.notes[-1], ConvergenceWarning, stacklevel=3)
         return result
 
     converged = _sample(lik, settings, path, pool, coords, log_prob, random_state, n0, tau_prev,
-                        accepted, first=(n0 == 0 and not resume) or n0 == 0)
+                        accepted, first=n0 == 0)
     result = _result_from(_read_chain(path), path, notes)
     if not converged:
-        warnings.warn(f"{path}: " + result.notes[-1], ConvergenceWarning, stacklevel=2)
+        warnings.warn(f"{path}: " + result.notes[-1], ConvergenceWarning, stacklevel=3)
     return result
 
 
@@ -813,7 +876,7 @@ def _sample(lik, settings: SamplerSettings, path: str, pool, coords, log_prob, r
     finished = False
     it = n0
     previous = np.array(coords)
-    tau_text = "-"
+    tau_text = "tau=?"
     try:
         with _DeferredSignals() as signals:
             try:
@@ -832,13 +895,14 @@ def _sample(lik, settings: SamplerSettings, path: str, pool, coords, log_prob, r
                             tau = _tau(_read_chain(path).chain)
                             converged = _stop_rule(it, tau, tau_prev, settings)
                             tau_prev = tau
-                            tau_text = f"{np.max(tau):.1f}"
+                            tau_text = (f"tau={np.max(tau):.1f} (need {settings.tau_factor:g} tau"
+                                        f" = {settings.tau_factor * np.max(tau):.0f} steps)")
                         if bar is not None:
                             bar.update(1)
                             if check or it % 20 == 0:
                                 bar.set_postfix_str(
-                                    f"tau={tau_text} acc={np.mean(writer.accepted) / it:.2f}",
-                                    refresh=False)
+                                    f"{tau_text} acc={np.mean(writer.accepted) / it:.2f}"
+                                    + (" converged" if converged else ""), refresh=check)
                         if converged or signals.received is not None:
                             break
                     finished = True

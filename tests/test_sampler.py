@@ -199,6 +199,24 @@ def test_resume_extends_to_identical_chain(tmp_path):
     np.testing.assert_array_equal(chain, full_chain(tmp_path / "direct"))
 
 
+def test_resume_of_converged_run(tmp_path):
+    s = quiet(n_walkers=16, check_every=100, max_steps=20000, tau_factor=30.0)
+    first = run_sampler(ToyGaussian(), s, tmp_path)
+    assert first.converged
+    before = full_chain(tmp_path)
+    # same settings: nothing to do, chain unchanged
+    again = run_sampler(ToyGaussian(), s, tmp_path, resume=True)
+    assert again.n_steps == first.n_steps and "run had converged already" in again.notes
+    # a stricter rule: the chain is continued until the stricter rule holds
+    factor = 1.3 * first.n_steps / np.max(first.tau)  # not met by the stored chain
+    stricter = quiet(n_walkers=16, check_every=100, max_steps=20000, tau_factor=factor)
+    more = run_sampler(ToyGaussian(), stricter, tmp_path, resume=True)
+    assert more.converged and more.n_steps > first.n_steps
+    assert more.n_steps > factor * np.max(more.tau)
+    assert any("converged under other settings" in n for n in more.notes)
+    np.testing.assert_array_equal(full_chain(tmp_path)[: first.n_steps], before)
+
+
 def test_resume_without_chain_starts_fresh(tmp_path):
     res = run_quiet(ToyGaussian(), quiet(check_every=1000, max_steps=10), tmp_path, resume=True)
     assert res.n_steps == 10
@@ -249,6 +267,40 @@ def test_corrupt_chain_gives_one_line_error(tmp_path, kind):
             call()
         msg = str(e.value)
         assert str(path) in msg and "\n" not in msg and "remove it or choose a new output folder" in msg
+
+
+def test_second_writer_is_refused(tmp_path):
+    import fcntl
+
+    fd = os.open(tmp_path, os.O_RDONLY)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)  # as a running sampler holds it
+        with pytest.raises(ErgofitError, match="another process is running the sampler"):
+            run_sampler(ToyGaussian(), quiet(max_steps=10), tmp_path, resume=True)
+    finally:
+        os.close(fd)
+    assert not os.path.exists(tmp_path / CHAIN_FILENAME)
+    assert run_quiet(ToyGaussian(), quiet(check_every=1000, max_steps=10), tmp_path).n_steps == 10
+
+
+def test_reader_holding_the_file_does_not_break_the_run(tmp_path):
+    """Another program keeping chain.h5 open (with HDF5's default file lock) while the run
+    appends: the run must go on (emcee's own backend fails here with 'unable to lock file')."""
+    run_quiet(ToyGaussian(), quiet(check_every=50, max_steps=100, seed=2), tmp_path)
+    holder = subprocess.Popen(
+        [sys.executable, "-c",
+         "import h5py, sys, time; f = h5py.File(sys.argv[1], 'r'); print('open', flush=True); "
+         "time.sleep(30)", str(tmp_path / CHAIN_FILENAME)],
+        stdout=subprocess.PIPE)
+    try:
+        assert holder.stdout.readline().strip() == b"open"
+        res = run_quiet(ToyGaussian(), quiet(check_every=50, max_steps=300, flush_every=5),
+                        tmp_path, resume=True)
+        assert res.n_steps == 300
+        load_chain(tmp_path)
+    finally:
+        holder.kill()
+        holder.wait()
 
 
 def test_load_chain_missing(tmp_path):
