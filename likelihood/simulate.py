@@ -986,7 +986,8 @@ def _residual_plot(first, mean, model, err, res, path):
         ax.text(0.99, 0.92, rf"$\ell={ell}$: $\chi^2$ = {res['chi2'][ell]:.1f} / {res['dof'][ell]}",
                 transform=ax.transAxes, ha="right", va="top", fontsize=8)
     axes[-1, 0].set_xlabel(r"$k\ [h\,{\rm Mpc}^{-1}]$")
-    axes[0, 0].set_title(f"mean of {res['n_mocks']} mocks minus model", fontsize=9)
+    axes[0, 0].set_title(f"(mean of {res['n_mocks']} mocks − model) / error of the mean",
+                         fontsize=9)
     fig.tight_layout()
     path = os.fspath(path)
     fig.savefig(path, dpi=120)
