@@ -24,6 +24,8 @@ Regime of validity
 * The box is periodic: the mock has no power below the fundamental k_f = 2π/L and points
   separated by more than L/2 see periodic images. Use a box at least twice the survey diameter
   (a warning says so) when comparing with a theory that assumes an infinite volume.
+* One redshift: the whole mock is a snapshot at the effective z (growth, bias, f and the
+  projection coefficients γ1, γ2 do not evolve across the survey; no light cone).
 * Poisson sampling is done per mesh cell (1 + Δ clipped at 0): mock galaxies are cell-resolved.
 """
 from __future__ import annotations
@@ -608,24 +610,34 @@ def poisson_sample(mesh, density_field, nbar, window=None, seed=None):
     together with ``nbar``).
     """
     d = _check_real_field(mesh, density_field, "density_field")
+    w = _weights(mesh, window, "window")
+    counts, frac = _poisson(mesh, d, nbar, w, seed)
+    _clip_warning(frac, stacklevel=3)
+    return counts
+
+
+def _clip_warning(frac, stacklevel):
+    if frac > 1e-3:
+        warnings.warn(f"poisson_sample: 1 + Δ < 0 in {100 * frac:.2f}% of the cells inside the "
+                      "window, clipped to 0: the mock power is biased (Gaussian field too strong "
+                      "for this cell size); use a coarser mesh (k_N just above k_max) or remove "
+                      "the modes above k_max (k_cut)", stacklevel=stacklevel)
+
+
+def _poisson(mesh, d, nbar, w, seed):
+    """Counts and the fraction of in-window cells where 1 + Δ < 0 was clipped."""
     nb = _finite(nbar, "nbar")
     if nb <= 0:
         raise ErgofitError(f"nbar = {nbar!r}: expected a positive number density in (h/Mpc)^3")
-    w = _weights(mesh, window, "window")
     lam = 1.0 + d.astype(float)
     neg = lam < 0
-    frac = float(neg.mean())
-    if frac > 1e-3:
-        warnings.warn(f"poisson_sample: 1 + Δ < 0 in {100 * frac:.2f}% of cells, clipped to 0: the "
-                      "mock power is biased (Gaussian field too strong for this cell size); use a "
-                      "coarser mesh (k_N just above k_max) or remove the modes above k_max (k_cut)",
-                      stacklevel=2)
+    frac = float(neg[w > 0].mean()) if w is not None else float(neg.mean())
     lam[neg] = 0.0
     lam *= nb * mesh.cell ** 3
     if w is not None:
         lam *= w
     rng = np.random.default_rng(seed)
-    return rng.poisson(lam).astype(mesh.real_dtype)
+    return rng.poisson(lam).astype(mesh.real_dtype), frac
 
 
 # ---------------------------------------------------------------------------------------------
@@ -883,6 +895,7 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
         kern = _fourier_array(mesh, constraint.kernel, "constraint kernel")
         c_value = constraint.nu * sig
     mocks = []
+    max_clip = 0.0
     for i, child in enumerate(np.random.SeedSequence(seed).spawn(n)):
         s_field, s_poisson = child.spawn(2)
         dk = gaussian_field(mesh, p, s_field)
@@ -891,7 +904,8 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
         gal = observed_field(mesh, dk, a, bk, F)
         del dk
         if nbar is not None:
-            gal = poisson_sample(mesh, gal, nbar, w, s_poisson)
+            gal, frac = _poisson(mesh, gal, nbar, w, s_poisson)
+            max_clip = max(max_clip, frac)
         dv = measure_multipoles(mesh, gal, w, e, ells, nbar=nbar, subtract_mean=subtract_mean)
         dv.meta.update({"mock": str(i), "seed": str(seed)})
         if constraint is not None:
@@ -899,6 +913,7 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
         mocks.append(dv)
         if progress is not None:
             progress(i + 1, n)
+    _clip_warning(max_clip, stacklevel=3)  # once for the set (largest fraction over the mocks)
     x = np.array([m.flat for m in mocks])
     cov = np.cov(x, rowvar=False, ddof=1) if n > 1 else np.zeros((x.shape[1],) * 2)
     return mocks, MockCovariance(np.atleast_2d(cov), n)

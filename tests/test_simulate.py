@@ -241,7 +241,7 @@ def test_estimator_on_window_matches_window_module_multipoles():
     R = 100.0
     mesh = Mesh(64, 400.0)
     sphere = window.SphereWindow(R)
-    W = window_mask(mesh, sphere, subsample=4)  # cell fractions: closer to the continuous ball
+    W = window_mask(mesh, sphere, subsample=2)  # cell fractions: closer to the continuous ball
     edges = np.linspace(0.01, 0.12, 12)
     ells = (0, 1, 2, 3, 4)
     dv = measure_multipoles(mesh, W, None, edges, ells, subtract_mean=False)
@@ -411,7 +411,7 @@ def test_constrained_ensemble_mean_and_variance():
     cond_var = xi0 - m ** 2
     node = mesh.observer_node()
     nu = 1.7
-    nreal = 600
+    nreal = 400
     reals, regress_d, regress_c = [], [], []
     kgrid = mesh.on_grid(kern)
     for s in range(nreal):
@@ -501,7 +501,7 @@ def test_mocks_in_a_shell_match_the_window_convolved_theory():
 # Mock sets, files, validation
 # ------------------------------------------------------------------------------------------
 
-def test_validate_pvalues_are_uniform_under_the_null():
+def test_validate_pvalues_are_uniform_under_the_null(tmp_path):
     # Hotelling (1931): with the covariance estimated from the same mocks, T^2 (N-p)/(p(N-1))
     # ~ F(p, N-p); so p-values are uniform when the model is true (KS test, scipy.stats).
     rng = np.random.default_rng(0)
@@ -518,8 +518,11 @@ def test_validate_pvalues_are_uniform_under_the_null():
         pv_known.append(validate(mocks, model, covariance=L @ L.T)["p_value_total"])
     assert stats.kstest(pv, "uniform").pvalue > 0.01
     assert stats.kstest(pv_known, "uniform").pvalue > 0.01
-    shifted = validate(mocks, model + 0.3)
+    shifted = validate(mocks, model + 0.3, plot=tmp_path / "residuals.png")
     assert shifted["p_value_total"] < 1e-3
+    assert (tmp_path / "residuals.png").stat().st_size > 1000
+    with pytest.raises(ErgofitError, match=r"model has shape \(3,\)"):
+        validate(mocks, [1.0, 2.0, 3.0])
 
 
 def test_simulate_from_settings_writes_loadable_files(tmp_path):
@@ -604,7 +607,7 @@ def test_poisson_clipping_warns():
     mesh = Mesh(16, 200.0)
     d = np.full((16,) * 3, -2.0)
     d[::2] = 0.5
-    with pytest.warns(UserWarning, match=r"50\.00% of cells, clipped"):
+    with pytest.warns(UserWarning, match=r"50\.00% of the cells inside the window, clipped"):
         counts = poisson_sample(mesh, d, 1e-3, seed=0)
     assert np.all(counts[1::2] == 0)
 
