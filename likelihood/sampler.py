@@ -749,7 +749,11 @@ def run_sampler(lik: Any, settings: SamplerSettings | None, out_dir: str | os.Pa
     resume: continue the chain stored in ``out_dir`` (made with the same config hash). Without
         it, an existing chain is never touched: the call refuses.
     pool: object with a ``map`` method (multiprocessing pool, MPI pool); the log posterior is then
-        evaluated walker by walker through ``pool.map`` (the likelihood must be picklable).
+        evaluated walker by walker through ``pool.map`` (the likelihood must be picklable, and
+        is pickled with every map call: worth it only when one evaluation takes milliseconds or
+        more). Start multiprocessing workers with ``initializer=signal.signal,
+        initargs=(signal.SIGINT, signal.SIG_IGN)`` so that Ctrl-C reaches only this process,
+        which then stops cleanly after the current step.
 
     Returns the :class:`SamplerResult` read back from the file. Emits :class:`ConvergenceWarning`
     when ``max_steps`` is reached before the stop rule is met.

@@ -251,8 +251,6 @@ def _fmt(x: float | None, decimals: int) -> str:
     return text[1:] if text.startswith("-") and float(text) == 0 else text
 
 
-_rounded_error = _fmt
-
 
 def _central(entry: dict) -> tuple[str, str, str]:
     """(mean, +err, -err) strings for a two-sided 68% limit."""
@@ -260,7 +258,7 @@ def _central(entry: dict) -> tuple[str, str, str]:
     lo, hi = entry["interval68"]
     up, down = hi - mean, mean - lo
     dec = _decimals(min(up, down)) if up > 0 and down > 0 else _decimals(entry["std"])
-    return _fmt(mean, dec), _rounded_error(up, dec), _rounded_error(down, dec)
+    return _fmt(mean, dec), _fmt(up, dec), _fmt(down, dec)
 
 
 def _one_sided(entry: dict, level: str, tex: bool) -> str:
@@ -272,7 +270,7 @@ def _one_sided(entry: dict, level: str, tex: bool) -> str:
         return f"{lt} {_fmt(hi, dec)}"
     if kind == "lower limit" and lo is not None:
         return f"{gt} {_fmt(lo, dec)}"
-    return "unconstrained" if not tex else r"\text{--}"
+    return "unconstrained" if not tex else r"\mathrm{unconstrained}"
 
 
 def _interval(entry: dict, level: str, tex: bool) -> str:
@@ -507,15 +505,21 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
     for name, value in zip(result.parameter_names, result.best_fit):
         params[name]["best_fit"] = _num(value)
     chi2 = dof = None
-    if lik is not None and hasattr(lik, "observables"):
+    can_plot = lik is not None and hasattr(lik, "observables") and hasattr(lik, "model_observables")
+    if can_plot:
         _check_observables(lik.observables())  # fail before any file is written
     if lik is not None:
         d_names, _, d_best = _derived_values(lik, np.asarray(result.best_fit, float)[None, :])
         for j, name in enumerate(d_names):
             params[name]["best_fit"] = _num(d_best[0, j])
-        chi2, dof = _num(lik.chi2(np.asarray(result.best_fit, float))), int(lik.dof)
+        if hasattr(lik, "chi2") and hasattr(lik, "dof"):
+            chi2, dof = _num(lik.chi2(np.asarray(result.best_fit, float))), int(lik.dof)
+        if not can_plot:
+            notes.append("the likelihood has no observables(): multipoles.png left out")
     else:
         notes.append("no likelihood given: derived parameters, chi2/dof and multipoles.png left out")
+    if not can_plot and os.path.exists(os.path.join(out_dir, "multipoles.png")):
+        notes.append("multipoles.png in this folder is from an earlier summary")
     tau = {n: _num(t) for n, t in zip(result.parameter_names, result.tau)}
     summary = {
         "label": label,
@@ -544,7 +548,7 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
     _write_text(os.path.join(out_dir, "constraints.md"), _constraints_markdown(summary))
     _write_text(os.path.join(out_dir, "constraints.tex"), _constraints_tex(summary))
     plot_triangle([samples], os.path.join(out_dir, "triangle"))
-    if lik is not None and hasattr(lik, "observables") and hasattr(lik, "model_observables"):
+    if can_plot:
         title = f"{label}: best fit, $\\chi^2$ = {chi2:.1f} for {dof} d.o.f." if chi2 is not None \
             else label
         plot_multipoles(lik, result.best_fit, os.path.join(out_dir, "multipoles.png"), title=title)
