@@ -150,6 +150,7 @@ class Likelihood:
         self.observer = self._make_observer()
         self._warn_regime()
         cov_full, self.mock_cov = self._covariance()
+        self.covariance_full = cov_full
         if cfg["data"].get("mock") is not None:
             self.data_full = self._make_mock(cov_full)
         self.data = self.data_full.flat[self.mask]
