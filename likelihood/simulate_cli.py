@@ -1,7 +1,8 @@
 """``ergofit simulate CONFIG --n N [--validate]``: Gaussian mocks of the configured survey.
 
-The mesh is chosen from the config unless given: box side L = 2.2 r_max of the window (so the
-window never meets its periodic images; a box geometry uses L = V^(1/3)), and N cells per side so
+The mesh is chosen from the config unless given: box side L = 4.1 r_max of the window (more than twice the
+survey diameter, so periodic images do not correlate survey points; a box geometry uses
+L = V^(1/3)), and N cells per side so
 that the Nyquist frequency is at least 1.5 times the data's k_max. The mocks are measured with the
 FFT estimator (``likelihood.simulate``) on the data's k bins and multipoles; ``--validate``
 compares their mean with the full observed model of the likelihood (window, integral
@@ -35,7 +36,7 @@ def choose_mesh(lik, n_mesh=None):
         if r_max is None:
             raise ErgofitError("simulate: a window from randoms cannot be meshed yet; "
                                "use an analytic geometry (sphere, shell, cap) for mocks")
-        box = 2.2 * float(r_max)
+        box = 4.1 * float(r_max)
     if n_mesh is None:
         n_mesh = int(math.ceil(1.5 * k_max * box / math.pi))
         n_mesh += n_mesh % 2

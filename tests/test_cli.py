@@ -1,0 +1,74 @@
+"""The command line end to end: check, theory, simulate, and bad input (exit code 2, one line)."""
+import os
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from likelihood.cli import main
+
+
+def test_check_prints_model(write_config, capsys):
+    assert main(["check", write_config()]) == 0
+    out = capsys.readouterr().out
+    assert "config OK" in out and "fnl" in out and "24 points" in out
+
+
+@pytest.mark.parametrize("over,needle", [
+    ({"survey": {"redshfit": 1.0}}, "did you mean 'redshift'"),
+    ({"parameters": {"b1": {"flat": [2.0, 1.0]}}}, "lower must be below upper"),
+    ({"parameters": {"b1": {"flat": [0.5, 1.0], "start": 3.0}}}, "outside its prior"),
+    ({"data": {"file": "missing.txt", "mock": None}}, "not found"),
+    ({"survey": {"nbar": -1.0}}, "survey.nbar: must be > 0"),
+    ({"effects": {"rsd": "yes"}}, "expected true or false"),
+])
+def test_bad_config_exit_2_one_line(write_config, capsys, over, needle):
+    assert main(["check", write_config(over)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert needle in err and len(err.splitlines()) == 1
+
+
+def test_bad_yaml_and_missing_file(tmp_path, capsys):
+    p = tmp_path / "broken.yaml"
+    p.write_text("survey: [1, 2\n")
+    assert main(["check", str(p)]) == 2
+    assert "not valid YAML" in capsys.readouterr().err
+    assert main(["check", str(tmp_path / "nope.yaml")]) == 2
+    assert "config file not found" in capsys.readouterr().err
+
+
+def test_theory_writes_table_and_plot(write_config, tmp_path, capsys):
+    out = tmp_path / "th" / "theory.txt"
+    assert main(["theory", write_config(), "--out", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "effective f_NL" in text
+    table = np.loadtxt(out)
+    assert table.shape[1] == 1 + 3 * 3 and np.all(np.isfinite(table))
+    assert (tmp_path / "th" / "theory.png").stat().st_size > 10000
+    # adding f_NL > 0 with b1 > p raises the large-scale monopole (Dalal et al. 2008 sign)
+    assert main(["theory", write_config({"tracer": {"fnl": 20.0}}, "f.yaml"), "--out", str(out)]) == 0
+    t2 = np.loadtxt(out)
+    assert t2[0, 4] > t2[0, 1]
+
+
+def test_simulate_and_validate(tmp_path, write_config, capsys):
+    over = {"survey": {"redshift": 1.0, "geometry": {"shape": "sphere", "radius": 500.0,
+                                                      "r_min": None, "r_max": None}},
+            "data": {"mock": {"k_min": 0.012, "k_max": 0.08, "n_bins": 6}}}
+    cfg = write_config(over)
+    out = tmp_path / "mocks"
+    assert main(["simulate", cfg, "--n", "8", "--out", str(out), "--validate"]) == 0
+    assert len(list(out.glob("mock_*.txt"))) == 8
+    assert (out / "covariance.txt").exists() and (out / "validation.png").exists()
+    text = capsys.readouterr().out
+    assert "total: chi2" in text
+
+
+def test_console_script_entry_point(write_config):
+    """`python -m likelihood.cli` behaves like the installed `ergofit` script."""
+    r = subprocess.run([sys.executable, "-m", "likelihood.cli", "check",
+                        write_config({"survey": {"redshift": -1.0}})],
+                       capture_output=True, text=True, cwd=os.path.dirname(os.path.dirname(__file__)))
+    assert r.returncode == 2
+    assert r.stderr.count("\n") == 1 and "redshift" in r.stderr
