@@ -74,7 +74,9 @@ def cmd_run(args):
         pool = _mpi_pool()
     elif args.processes and args.processes > 1:
         import multiprocessing
-        pool = multiprocessing.get_context("fork").Pool(args.processes)
+        import signal
+        pool = multiprocessing.get_context("fork").Pool(
+            args.processes, initializer=signal.signal, initargs=(signal.SIGINT, signal.SIG_IGN))
     try:
         result = run_sampler(lik, settings, out, resume=args.resume, pool=pool)
     finally:
@@ -126,18 +128,18 @@ def _mpi_pool():
 
 
 def cmd_summarize(args):
-    from .summary import overlay, summarize
+    from .summary import summarize
     for d in args.run_dirs:
         if not os.path.isfile(os.path.join(d, "chain.h5")):
             raise ErgofitError(f"{d}: no chain.h5 in this folder; give run folders written by 'ergofit run'")
     labels = args.labels
     if labels and len(labels) != len(args.run_dirs):
         raise ErgofitError(f"--labels: {len(labels)} labels for {len(args.run_dirs)} run folders")
-    summarize(args.run_dirs, labels=labels, lik_factory=_rebuild)
+    out = args.out or "overlay"
     if len(args.run_dirs) > 1:
-        out = args.out or "overlay"
         _out_dir(os.path.dirname(os.path.abspath(out)) or ".")
-        overlay(args.run_dirs, labels or [os.path.basename(os.path.normpath(d)) for d in args.run_dirs], out)
+    summarize(args.run_dirs, labels=labels, lik_factory=_rebuild, overlay_path=out)
+    if len(args.run_dirs) > 1:
         print(f"overlay written to {out}.png and {out}.pdf")
     return 0
 

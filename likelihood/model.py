@@ -266,7 +266,9 @@ class Likelihood:
 
     # --- kernels and templates ------------------------------------------------------------------
     def _tracer(self, values, i=0):
-        g = lambda n: float(np.atleast_1d(values[n])[i])  # noqa: E731
+        def g(name):
+            v = values[name]
+            return float(v[i] if np.ndim(v) else v)
         return tr.Tracer(b1=g("b1"), fnl=g("fnl"), p=self.p, nbar=self.nbar, b_e=g("b_e"), s=g("s"))
 
     def _kernel(self, cosmo, values, k, i=0):

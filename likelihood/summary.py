@@ -547,7 +547,7 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
                 json.dumps(summary, indent=2, allow_nan=False) + "\n")
     _write_text(os.path.join(out_dir, "constraints.md"), _constraints_markdown(summary))
     _write_text(os.path.join(out_dir, "constraints.tex"), _constraints_tex(summary))
-    plot_triangle([samples], os.path.join(out_dir, "triangle"))
+    plot_triangle([samples], os.path.join(out_dir, "triangle"), params=list(result.parameter_names))
     if can_plot:
         title = f"{label}: best fit, $\\chi^2$ = {chi2:.1f} for {dof} d.o.f." if chi2 is not None \
             else label
