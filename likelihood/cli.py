@@ -145,10 +145,11 @@ def cmd_summarize(args):
 
 
 def cmd_window(args):
+    from .cosmology import Cosmology
     from .window import load_randoms, window_from_randoms
-    pos, wts = load_randoms(args.randoms)
+    pos, wts = load_randoms(args.randoms, cosmo=Cosmology.from_preset(args.preset))
     _out_dir(os.path.dirname(os.path.abspath(args.out)))
-    wm = window_from_randoms(pos, wts, s_max=args.s_max)
+    wm = window_from_randoms(pos, wts, s_max=args.s_max, name=args.randoms)
     wm.save(args.out)
     png = os.path.splitext(args.out)[0] + ".png"
     wm.plot(png)
@@ -206,7 +207,9 @@ def make_parser():
     s = sub.add_parser("window", help="window multipoles Q_l(s) from a random catalogue")
     s.add_argument("randoms")
     s.add_argument("--out", required=True)
-    s.add_argument("--s-max", type=float, default=None)
+    s.add_argument("--s-max", type=float, default=None, help="largest separation [Mpc/h]")
+    s.add_argument("--preset", default="planck2018",
+                   help="cosmology converting ra/dec/z randoms to distances (default planck2018)")
     s.set_defaults(func=cmd_window)
 
     s = sub.add_parser("theory", help="model multipoles component by component, and a plot")

@@ -72,3 +72,26 @@ def test_console_script_entry_point(write_config):
                        capture_output=True, text=True, cwd=os.path.dirname(os.path.dirname(__file__)))
     assert r.returncode == 2
     assert r.stderr.count("\n") == 1 and "redshift" in r.stderr
+
+
+def test_window_command_from_randoms(tmp_path, capsys):
+    """`ergofit window`: Q_0 of a uniform sphere from randoms against the two-sphere overlap
+    fraction 1 − 3s/(4R) + s³/(16R³) (classical geometry)."""
+    rng = np.random.default_rng(2)
+    R = 400.0
+    x = rng.uniform(-1, 1, (60000, 3))
+    x = x[(x ** 2).sum(1) < 1][:6000] * R
+    rfile = tmp_path / "randoms.txt"
+    np.savetxt(rfile, x, header="columns: x y z", comments="# ")
+    out = tmp_path / "win" / "window.txt"
+    assert main(["window", str(rfile), "--out", str(out)]) == 0
+    from likelihood.window import WindowMultipoles
+    wm = WindowMultipoles.load(out)
+    s = np.array([100.0, 300.0, 500.0])
+    ref = 1 - 3 * s / (4 * R) + s ** 3 / (16 * R ** 3)
+    np.testing.assert_allclose(wm(s, 0), ref, atol=0.03)
+    assert (tmp_path / "win" / "window.png").exists()
+    bad = tmp_path / "bad.txt"
+    bad.write_text("# columns: x y z\n1 2 nan\n")
+    assert main(["window", str(bad), "--out", str(out)]) == 2
+    assert "bad.txt" in capsys.readouterr().err
