@@ -271,7 +271,16 @@ class WindowMatrix:
                             "theory grid and window: widen theory_k_grid (k_min/k_max), tabulate "
                             "the window to larger s, or cut the data")
         self._setup()
-        self.matrix = self._cached_matrix(cache_dir, cache)
+        self._cache_dir, self._cache = cache_dir, cache
+        self._matrix = None
+
+    @property
+    def matrix(self):
+        """(len(ells_out) n_bins, len(ells_theory) n_k) operator; built (or read from the disk
+        cache) on first use."""
+        if self._matrix is None:
+            self._matrix = self._cached_matrix(self._cache_dir, self._cache)
+        return self._matrix
 
     # -- internal pieces shared by the matrix and the direct evaluation -------------------------
     def _setup(self):

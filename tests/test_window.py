@@ -156,7 +156,7 @@ def test_sphere_from_a_million_randoms():
     wm = window_from_randoms(pos, s_max=2 * R, n_s=100)
     assert time.perf_counter() - t0 < 60
     _check_randoms_against_sphere(wm, ells=(0, 1, 2, 4))
-    assert np.max(wm.err[0, 1:60]) < 3e-3
+    assert np.median(wm.err[0, 1:90]) < 2e-3 and np.max(wm.err[0, 3:90]) < 5e-3
 
 
 def test_weights_equivalent_to_duplicated_points():
