@@ -44,7 +44,7 @@ def sphere_mats(grid, bins):
 # -- Wigner 3j ----------------------------------------------------------------------------------
 def test_wigner3j_against_sympy():
     """(l1 l2 l3; 000)² against sympy.physics.wigner.wigner_3j (general-purpose library)."""
-    from sympy.physics.wigner import wigner_3j
+    wigner_3j = pytest.importorskip("sympy.physics.wigner").wigner_3j
     for l1 in range(0, 7):
         for l2 in range(0, 7):
             for l3 in range(0, 13):
