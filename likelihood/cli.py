@@ -223,8 +223,14 @@ def make_parser():
     return p
 
 
+def _format_warning(message, category, filename, lineno, line=None):
+    """Warnings as one readable line (no source path) on the command line."""
+    return f"ergofit: {category.__name__}: {message}\n"
+
+
 def main(argv=None):
     args = make_parser().parse_args(argv)
+    warnings.formatwarning = _format_warning
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("default")
