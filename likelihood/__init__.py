@@ -1,27 +1,17 @@
 """ergofit: likelihood and run tool for the largest-scale galaxy power spectrum multipoles.
 
-Public Python surface (see shared design): :class:`Cosmology`, :class:`Tracer`,
-:func:`load_config`, :func:`build`.
+Public Python surface: :class:`Cosmology` (background, growth, linear power, σ8),
+:class:`Tracer` (bias, f_NL, evolution and magnification bias), :func:`load_config` (validated
+YAML) and :func:`build` (the likelihood: ``log_prob(theta)`` vectorised over walkers,
+``log_likelihood(params)``, ``parameter_names``).
 """
-from .errors import ErgofitError, ConfigError, DataError
+from .config import load_config
+from .cosmology import Cosmology
+from .errors import ConfigError, DataError, ErgofitError
+from .model import build
+from .tracer import PlaneParallelWarning, Tracer
 
 __version__ = "0.1.0"
 
-__all__ = ["ErgofitError", "ConfigError", "DataError", "__version__"]
-
-try:  # the modules below are filled in progressively; keep the package importable
-    from .cosmology import Cosmology  # noqa: F401
-    __all__.append("Cosmology")
-except ImportError:  # pragma: no cover
-    pass
-try:
-    from .tracer import Tracer  # noqa: F401
-    __all__.append("Tracer")
-except ImportError:  # pragma: no cover
-    pass
-try:
-    from .config import load_config  # noqa: F401
-    from .model import build  # noqa: F401
-    __all__ += ["load_config", "build"]
-except ImportError:  # pragma: no cover
-    pass
+__all__ = ["Cosmology", "Tracer", "load_config", "build", "ErgofitError", "ConfigError",
+           "DataError", "PlaneParallelWarning", "__version__"]
