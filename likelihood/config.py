@@ -92,6 +92,94 @@ def _mapping(val, where):
     return val
 
 
+# --- forecast section (Fisher forecasts and f_NL bias studies, read by likelihood.forecast) ---
+# forecast: {neglect: [doppler, potential, fnl, rsd, integral_constraint, window, observer],
+#            parameters: [NAME, ...], priors: {NAME: sigma}, threshold: x, step_rtol: x,
+#            scan: {quantity: redshift | volume | fsky | thickness | b1 | nbar | b_e | s | k_min,
+#                   values: [x, ...] | range: [lo, hi, n], spacing: linear | log,
+#                   redshift_geometry: recentre | fixed_volume,
+#                   bias_evolution: constant | inverse_growth}}
+# Defaults are applied by likelihood.forecast (none are stored here).
+FORECAST_NEGLECT = ("doppler", "potential", "fnl", "rsd", "integral_constraint", "window", "observer")
+FORECAST_SCAN = ("redshift", "volume", "fsky", "thickness", "b1", "nbar", "b_e", "s", "k_min")
+_SCAN_POSITIVE = ("redshift", "volume", "fsky", "thickness", "nbar", "k_min")
+
+
+def _name_list(allowed, what):
+    def check(val, where):
+        if not isinstance(val, list) or not all(isinstance(v, str) for v in val):
+            raise ConfigError(f"{where}: expected a list of {what} like [{allowed[0]}], got {val!r}")
+        for v in val:
+            if v not in allowed:
+                raise ConfigError(f"{where}: '{v}' is not one of the {what}{suggest(v, allowed)}; "
+                                  f"choose from {', '.join(allowed)}")
+        if len(set(val)) != len(val):
+            raise ConfigError(f"{where}: a name is listed twice in {val}")
+        return list(val)
+    return check
+
+
+def _forecast_priors(val, where):
+    _mapping(val, where)
+    out = {}
+    for name, sigma in val.items():
+        if name not in KNOWN:
+            raise ConfigError(f"{where}: unknown parameter '{name}'{suggest(name, KNOWN)}")
+        out[name] = _num(0.0, lo_open=True)(sigma, f"{where}.{name} (prior sigma)")
+    return out
+
+
+def _forecast_scan(val, where):
+    """Validate forecast.scan and normalise it to {quantity, values, redshift_geometry, bias_evolution}."""
+    allowed = ("quantity", "values", "range", "spacing", "redshift_geometry", "bias_evolution")
+    _mapping(val, where)
+    _check_keys(val, allowed, where)
+    if "quantity" not in val:
+        raise ConfigError(f"{where}.quantity is required (one of {', '.join(FORECAST_SCAN)})")
+    q = val["quantity"]
+    if q not in FORECAST_SCAN:
+        raise ConfigError(f"{where}.quantity: '{q}' cannot be scanned{suggest(q, FORECAST_SCAN)}; "
+                          f"choose one of {', '.join(FORECAST_SCAN)}")
+    if ("values" in val) == ("range" in val):
+        raise ConfigError(f"{where}: give exactly one of 'values: [x, ...]' or 'range: [lo, hi, n]'")
+    spacing = _choice("linear", "log")(val.get("spacing", "linear"), f"{where}.spacing")
+    if "values" in val:
+        vals = val["values"]
+        if not isinstance(vals, list):
+            raise ConfigError(f"{where}.values: expected a list of numbers, got {vals!r}")
+        if not vals:
+            raise ConfigError(f"{where}.values: the grid is empty; give at least one value")
+        grid = [_num()(v, f"{where}.values[{i}]") for i, v in enumerate(vals)]
+    else:
+        rng = val["range"]
+        if not isinstance(rng, list) or len(rng) != 3:
+            raise ConfigError(f"{where}.range: expected [lo, hi, n], got {rng!r}")
+        lo = _num()(rng[0], f"{where}.range[0] (lo)")
+        hi = _num()(rng[1], f"{where}.range[1] (hi)")
+        n = _num(integer=True)(rng[2], f"{where}.range[2] (n)")
+        if n < 1:
+            raise ConfigError(f"{where}.range: the grid is empty (n = {n}); give n >= 1")
+        if n > 1 and not lo < hi:
+            raise ConfigError(f"{where}.range: expected lo < hi, got {lo} >= {hi}")
+        if spacing == "log":
+            if lo <= 0:
+                raise ConfigError(f"{where}.range: log spacing needs lo > 0, got {lo}")
+            grid = [float(x) for x in np.geomspace(lo, hi, n)]
+        else:
+            grid = [float(x) for x in np.linspace(lo, hi, n)]
+    if len(set(grid)) != len(grid):
+        raise ConfigError(f"{where}.values: the grid repeats a value: {grid}")
+    if q in _SCAN_POSITIVE and min(grid) <= 0:
+        raise ConfigError(f"{where}: {q} must be > 0 at every grid point, got {min(grid)}")
+    if q == "fsky" and max(grid) > 1:
+        raise ConfigError(f"{where}: fsky must be <= 1 at every grid point, got {max(grid)}")
+    return {"quantity": q, "values": grid,
+            "redshift_geometry": _choice("recentre", "fixed_volume")(
+                val.get("redshift_geometry", "recentre"), f"{where}.redshift_geometry"),
+            "bias_evolution": _choice("constant", "inverse_growth")(
+                val.get("bias_evolution", "constant"), f"{where}.bias_evolution")}
+
+
 # section -> key -> (validator, default); default None means "optional, no default"
 SCHEMA = {
     "cosmology": {
@@ -153,6 +241,14 @@ SCHEMA = {
     },
     "output": {
         "folder": (_str, None),
+    },
+    "forecast": {
+        "neglect": (_name_list(FORECAST_NEGLECT, "effects"), None),
+        "parameters": (_name_list(tuple(KNOWN), "parameters"), None),
+        "priors": (_forecast_priors, None),
+        "threshold": (_num(0.0, lo_open=True), None),
+        "step_rtol": (_num(0.0, 0.1, lo_open=True), None),
+        "scan": (_forecast_scan, None),
     },
 }
 
