@@ -78,7 +78,9 @@ ranks. What changes with the scanned quantity:
 Public API: :class:`Fisher`, :func:`fisher_from_derivatives`, :func:`derivative`,
 :func:`likelihood_fisher`, :class:`BiasForecast`, :func:`bias_forecast`, :func:`analysis_config`,
 :func:`scan_config`, :class:`ScanResult`, :func:`bias_scan`, :func:`mcmc_check`,
-:func:`run_forecast`, :func:`forecast_cli`, :func:`config_to_raw`.
+:func:`run_forecast`, :func:`forecast_cli`, :func:`config_to_raw`, :func:`forecast_settings`;
+output helpers :func:`plot_ellipses`, :func:`plot_scan`, :func:`scan_tables`,
+:func:`forecast_markdown`. Speed figures: ``python bench/forecast.py``.
 """
 from __future__ import annotations
 
@@ -102,7 +104,8 @@ from .params import KNOWN
 
 __all__ = ["Fisher", "fisher_from_derivatives", "derivative", "likelihood_fisher", "BiasForecast",
            "bias_forecast", "analysis_config", "scan_config", "ScanResult", "bias_scan",
-           "mcmc_check", "run_forecast", "forecast_cli", "config_to_raw", "DEFAULTS"]
+           "mcmc_check", "run_forecast", "forecast_cli", "config_to_raw", "forecast_settings",
+           "plot_ellipses", "plot_scan", "scan_tables", "forecast_markdown", "DEFAULTS"]
 
 #: Defaults of the config's ``forecast`` section.
 DEFAULTS = {"neglect": ["doppler", "potential"], "parameters": None, "priors": {},
@@ -317,7 +320,8 @@ def fisher_from_derivatives(derivs, chol, names, labels=None, fiducial=None, pri
                   chol=L, precision_scale=float(precision_scale), steps=list(steps or []))
 
 
-def derivative(model, point, name, step, chol, rtol=1e-3, max_halvings=_MAX_HALVINGS):
+def derivative(model, point, name, step, chol, rtol=1e-3, max_halvings=_MAX_HALVINGS,
+               allow_zero=False):
     """Central-difference derivative of ``model(point)`` with respect to ``point[name]``.
 
     model: callable dict -> 1-D vector; point: dict of parameter values; step: first step h.
@@ -325,7 +329,8 @@ def derivative(model, point, name, step, chol, rtol=1e-3, max_halvings=_MAX_HALV
     successive Richardson combinations R_h = (4 D_h/2 − D_h)/3 agree to rtol in that norm; the
     result is the last Richardson combination. Returns (derivative, info dict with the final
     step, the relative change and whether it met rtol). A parameter the model does not depend on
-    raises a one-line :class:`ErgofitError`.
+    raises a one-line :class:`ErgofitError`, unless ``allow_zero`` (then zeros are returned and
+    ``info["zero"]`` is True).
     """
     if not (np.isfinite(step) and step > 0):
         raise ErgofitError(f"derivative step for '{name}': {step}, expected a finite number > 0")
@@ -353,6 +358,9 @@ def derivative(model, point, name, step, chol, rtol=1e-3, max_halvings=_MAX_HALV
         d_new = cdiff(h)
         scale = wnorm(d_new)
         if scale == 0.0 and wnorm(d_prev) == 0.0:
+            if allow_zero:
+                return d_new, {"name": name, "step": h, "rel_change": 0.0, "stable": True,
+                               "zero": True}
             raise ErgofitError(f"the model does not depend on '{name}' (zero derivative at "
                                f"{name} = {x0:g}): is the effect it belongs to switched off "
                                "(effects, forecast.neglect)? Fix it under parameters or leave it "
@@ -392,6 +400,7 @@ def likelihood_fisher(lik, names=None, priors=None, step_rtol=1e-3):
             raise ConfigError(f"forecast.parameters: '{n}' is not sampled in this model; "
                               f"sampled: {', '.join(lik.parameter_names)}")
     point = {n: float(lik.fiducial[n]) for n in names}
+    with_prior = {n for n in names if free[n].prior.kind == "gauss"} | set(priors or {})
     D, steps = [], []
     for n in names:
         direct = n in COSMO_PARAMS
@@ -399,7 +408,13 @@ def likelihood_fisher(lik, names=None, priors=None, step_rtol=1e-3):
         def model(p, _direct=direct):
             return lik.model_vector(p, direct=_direct)
 
-        d, info = derivative(model, point, n, free[n].scale, lik.chol, rtol=step_rtol)
+        d, info = derivative(model, point, n, free[n].scale, lik.chol, rtol=step_rtol,
+                             allow_zero=n in with_prior)
+        if info.get("zero"):
+            warnings.warn(f"the model does not depend on '{n}' to first order at {n} = {point[n]:g} "
+                          f"(zero derivative, e.g. nu_obs = 0 where the model goes as nu_obs^2): "
+                          "its Fisher error is its prior width and the linear forecast says "
+                          "nothing about it", UserWarning, stacklevel=2)
         D.append(d)
         steps.append(info)
     gauss = {}

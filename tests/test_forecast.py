@@ -241,6 +241,51 @@ def test_effective_fnl_of_neglected_terms_and_bias_sign(tmp_path):
     assert dfnl == pytest.approx(res.fnl_eff_neglected, rel=0.3)
 
 
+OBS = """\
+run: obs
+survey:
+  redshift: 1.0
+  nbar: 3.0e-4
+  geometry: {{shape: sphere, radius: 2000}}
+tracer: {{b1: 2.0, fnl: 0.0, b_e: 0.0, s: 0.2}}
+effects: {{observer: true, doppler: false, potential: false}}
+observer: {{field: density, smoothing: 20.0, nu_true: {nu}}}
+data:
+  mock: {{noise: false, k_min: 0.003, k_max: 0.03, n_bins: 8}}
+  ells: [0, 2]
+parameters:
+  b1: {{flat: [0.5, 6], scale: 0.01}}
+  fnl: {{flat: [-100, 100], scale: 0.5}}
+{extra}forecast: {{neglect: [{neglect}]}}
+"""
+
+
+def test_neglected_observer_term_bias_scales_as_nu_squared_minus_one(tmp_path):
+    """Hoffman & Ribak (1991) conditioning: the expected multipoles given the observer's value
+    shift by (ν² − 1) E[m] (design document, observer section), so neglecting the observer term
+    gives no bias at ν = 1 and a bias ∝ ν² − 1 otherwise: Δ(ν=3)/Δ(ν=2) = 8/3."""
+    pytest.importorskip("likelihood.observer")
+    deltas = {}
+    for nu in (1.0, 2.0, 3.0):
+        p = tmp_path / f"obs{nu}.yaml"
+        p.write_text(OBS.format(nu=nu, extra="", neglect="observer"))
+        deltas[nu] = fc.bias_forecast(str(p)).delta
+    assert np.all(deltas[1.0] == 0.0)
+    assert np.any(deltas[2.0] != 0.0)
+    np.testing.assert_allclose(deltas[3.0] / deltas[2.0], 8.0 / 3.0, rtol=1e-8)
+
+
+def test_observer_nuisance_at_zero_is_prior_only(tmp_path):
+    """At ν = 0 the model depends on ν only through ν² (zero first derivative): the Fisher
+    error of nu_obs is its N(0, 1) prior width (common practice), with a warning, not an error."""
+    pytest.importorskip("likelihood.observer")
+    p = tmp_path / "obs0.yaml"
+    p.write_text(OBS.format(nu=0.0, extra="  nu_obs: {gauss: [0, 1], start: 0.0}\n", neglect=""))
+    res = fc.bias_forecast(str(p))
+    assert res.fisher.errors[res.fisher.index("nu_obs")] == pytest.approx(1.0, rel=1e-12)
+    assert any("nu_obs" in w and "prior width" in w for w in res.warnings)
+
+
 # --------------------------------------------------------------------------------------------
 # Config variants and scans
 # --------------------------------------------------------------------------------------------
@@ -383,7 +428,7 @@ def test_demo_fisher_width_matches_mcmc_short():
     res = fc.bias_forecast(DEMO)
     import tempfile
     with tempfile.TemporaryDirectory() as d:
-        chk = fc.mcmc_check(res, d, SamplerSettings(n_walkers=24, max_steps=2500, check_every=500,
+        chk = fc.mcmc_check(res, d, SamplerSettings(n_walkers=24, max_steps=1500, check_every=500,
                                                     seed=2, progress=False))
     for name in ("fnl", "b1"):
         assert chk["parameters"][name]["width_ratio"] == pytest.approx(1.0, abs=0.15)
