@@ -49,11 +49,13 @@ truth is a mis-modelling too. The last term is the pull of a Gaussian prior not 
 fiducial value (zero for centred priors).
 
 Validity. Linear response: the shift is accurate while Δθ is small compared to the scale on which
-∂μ/∂θ changes. The model is quadratic in f_NL (the f_NL² α² term), so for |Δf_NL| of order
-σ(f_NL) or more, or for σ(f_NL) comparable to |b1 − p|⁻¹ × (the f_NL where the f_NL² term
-matters), confirm with ``--check-mcmc``. The model itself is linear theory with a plane-parallel
-kernel and local projection terms only (see :mod:`likelihood.tracer`); the Fisher matrix
-inherits those limits.
+∂μ/∂θ changes. The model is quadratic in f_NL (the [f_NL (b1 − p) α(k)]² term), so the first-order
+shift degrades once f_NL (b1 − p) α(k_min) is no longer small next to b1 over the range
+fiducial ± (σ + |Δ|); when |Δf_NL| ≳ σ(f_NL), confirm with ``--check-mcmc``. The model itself is
+linear theory with a plane-parallel kernel and local projection terms only (see
+:mod:`likelihood.tracer`); the Fisher matrix inherits those limits. (Caveat: a parameter fixed
+to a value different from ``data.mock.truth`` is read differently by the fast and the direct
+model paths of :mod:`likelihood.model` at the time of writing; avoid that combination.)
 
 Scans
 -----
@@ -65,8 +67,8 @@ ranks. What changes with the scanned quantity:
   ``redshift_geometry: recentre`` (default) keeps its comoving thickness r_max − r_min (the
   volume grows with z); ``fixed_volume`` re-centres and adjusts the thickness so the volume stays
   that of the config. If the re-centred shell would reach the observer it is cut at r_min = 0
-  (a note says so). Box and sphere geometries do not change (a sphere is centred on the
-  observer). ``bias_evolution: inverse_growth`` scales b1 as b1(z) = b1(z₀) D(z₀)/D(z) (constant
+  (a note says so). Box, sphere (centred on the observer) and random-catalogue geometries do not
+  change. ``bias_evolution: inverse_growth`` scales b1 as b1(z) = b1(z₀) D(z₀)/D(z) (constant
   clustering amplitude, common practice); ``constant`` (default) keeps b1.
 * ``volume``: box volume; sphere radius; shell/cap thickness about the fixed centre distance.
 * ``fsky``: the cap's sky fraction (a full-sky shell becomes a cap).
@@ -174,7 +176,7 @@ class Fisher:
     @property
     def covariance(self):
         """Parameter covariance F⁻¹ (Cramér–Rao bound for unbiased estimators)."""
-        return _inverse(self.matrix)
+        return _inverse(self.matrix, names=self.names)
 
     @property
     def errors(self):
@@ -215,18 +217,15 @@ class Fisher:
     def chi2_of(self, delta_mu):
         """(χ² of the model error at the fiducial point, χ² left after the parameters absorb it).
 
-        The second is δμᵀC⁻¹δμ − bᵀF₀⁻¹b (b = h ∂μᵀ/∂θ C⁻¹ δμ, F₀ without priors): a large value
-        means the analysis model cannot mimic the neglected effect and the fit would be poor.
+        The second is min_x |L⁻¹δμ √h − W x|² (W the whitened derivatives, priors ignored), i.e.
+        δμᵀC⁻¹δμ − bᵀF₀⁻¹b: a large value means the analysis model cannot mimic the neglected
+        effect and the data would show a poor fit; a small one that the shift hides it.
         """
         dw = solve_triangular(self.chol, np.asarray(delta_mu, float), lower=True) \
             * math.sqrt(self.precision_scale)
-        b = self.whitened.T @ dw
-        total = float(dw @ dw)
-        try:
-            absorbed = float(b @ _inverse(self.data_matrix, names=self.names) @ b)
-        except ErgofitError:   # only the priors make F invertible: nothing is absorbed reliably
-            absorbed = 0.0
-        return total, max(total - absorbed, 0.0)
+        x = np.linalg.lstsq(self.whitened, dw, rcond=None)[0]
+        r = dw - self.whitened @ x
+        return float(dw @ dw), float(r @ r)
 
     def to_dict(self):
         cov = self.covariance
@@ -717,6 +716,13 @@ def bias_forecast(config, neglect=None, parameters=None, priors=None, step_rtol=
         delta = fisher.bias(mu_t - mu_a)
         chi2_t, chi2_r = fisher.chi2_of(mu_t - mu_a)
     _flat_prior_notes(analysis, fisher, notes)
+    mock = cfg["data"].get("mock") or {}
+    for n, v in cfg["fixed"].items():
+        t = (mock.get("truth") or {}).get(n)
+        if t is not None and t != v:
+            notes.append(f"parameters.{n} is fixed to {v:g} but data.mock.truth.{n} = {t:g}: the "
+                         "truth mock uses the second, the analysis the first, and the mismatch "
+                         "enters the bias")
     info = {"config": cfg.path, "config_hash": cfg.hash, "run": cfg["run"], "redshift": truth.z,
             "nbar": truth.nbar, "geometry": dict(cfg["survey"]["geometry"]),
             "volume": float(truth.volume), "n_data": int(truth.data.size),
@@ -786,8 +792,9 @@ def _scan_point(payload):
     except ErgofitError as exc:
         raise ErgofitError(f"scan {quantity} = {value:g}: {str(exc).splitlines()[0]}") from None
     f = res.fisher
-    row = {quantity: float(value), "sigma_fnl": res.value("sigma"), "delta_fnl": res.value("delta"),
-           "delta_fnl_over_sigma": res.value("ratio"), "fnl_eff_neglected": res.fnl_eff_neglected,
+    row = {quantity: float(value), "sigma_fnl": float(res.value("sigma")),
+           "delta_fnl": float(res.value("delta")),
+           "delta_fnl_over_sigma": float(res.value("ratio")), "fnl_eff_neglected": res.fnl_eff_neglected,
            "b1": float(res.info["fiducial"]["b1"]), "volume": res.info["volume"],
            "r_min": pcfg["survey"]["geometry"].get("r_min"),
            "r_max": pcfg["survey"]["geometry"].get("r_max"), "n_data": res.info["n_data"],

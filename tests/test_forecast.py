@@ -119,6 +119,13 @@ def test_fisher_equals_posterior_covariance_of_linear_gaussian_toy():
                          [mom((TA - ma) * (TB - mb)), mom((TB - mb) ** 2)]])
     np.testing.assert_allclose(F.covariance, cov_grid, rtol=1e-5)
     np.testing.assert_allclose(F.fiducial + F.bias(delta), [ma, mb], rtol=0, atol=1e-5 * s.max())
+    # a model error inside the span of the derivatives is absorbed completely; its χ² is
+    # vᵀ AᵀC⁻¹A v (direct evaluation)
+    v = np.array([0.3, -0.8])
+    total, left = F.chi2_of(A @ v)
+    assert total == pytest.approx(v @ A.T @ Cinv @ A @ v, rel=1e-12)
+    assert left < 1e-20 * total
+    np.testing.assert_allclose(F.bias(A @ v), v, rtol=1e-12)
 
 
 def test_derivative_exact_for_quadratic_and_richardson_for_smooth_model():
