@@ -4,6 +4,11 @@ projection terms, and a plot.
 Components (each adds to the previous): Newtonian (b1 + Kaiser RSD), + f_NL scale-dependent bias,
 + relativistic projection terms (Doppler and potential). Linear theory, plane-parallel kernel,
 local projection terms only: see the README's regime of validity.
+
+With ``effects.observer`` on, also the observer term (:mod:`likelihood.observer`): the correction
+(ν² − 1) E_ℓ[m] for ν = 0, 1, 2, 3 next to the cosmic-variance band σ_P = P₀ √(2/N_modes),
+N_modes = V 4πk²Δk/(2π)³, in bins of width the survey's fundamental mode, saved as
+``<out stem>_observer.png``.
 """
 from __future__ import annotations
 
@@ -59,7 +64,93 @@ def theory_report(cfg, out_path, k=None):
         j = i * max(1, len(k) // 6)
         lines.append(f"  k = {kk:.4f}  P0 newtonian {comps['newtonian'][0, j]:.4g}  +fNL "
                      f"{comps['plus_fnl'][0, j]:.4g}  +projection {comps['plus_projection'][0, j]:.4g}")
+    if cfg["effects"]["observer"]:
+        lines += observer_report(cfg, os.path.splitext(out_path)[0] + "_observer.png",
+                                 cosmo, tracer, eff)
     return lines
+
+
+OBSERVER_NUS = (0.0, 1.0, 2.0, 3.0)
+
+
+def observer_report(cfg, png, cosmo, tracer, eff):
+    """Observer correction (ν² − 1) E_ℓ[m], ℓ = 0, 2, against the cosmic variance; lines to print.
+
+    Bins of width k_F from k_F/2, k_F = 2π/(2 r_max) for a window (its diameter) or 2π/V^{1/3}
+    for a plain volume; up to max(0.05, 8 k_F) h/Mpc (0.05 for windows without spherical
+    symmetry, whose correction is measured on a mesh).
+    """
+    from .errors import ErgofitError
+    from .model import make_geometry
+    from .observation import KBins, theory_k_grid
+    from .observer import ObserverTerm
+
+    z = cfg["survey"]["redshift"]
+    o = cfg["observer"]
+    window, volume = make_geometry(cfg)
+    if not cfg["effects"]["window"]:
+        window = None
+    ic = cfg["effects"]["integral_constraint"] if window is not None else "none"
+    try:
+        probe = ObserverTerm(field=o["field"], smoothing=o.get("smoothing"), k_ir=o.get("k_ir"),
+                             window=window, volume=volume, ic=ic, ells=(0, 2))
+    except ErgofitError as exc:
+        return [f"observer term: not computed ({exc})"]
+    k_f, k_f_text = probe.fundamental_mode()
+    k_top = 0.05 if probe.method == "mesh" else max(0.05, 8.0 * k_f)
+    edges = k_f * (0.5 + np.arange(int(np.floor(k_top / k_f - 0.5)) + 1))
+    bins = KBins.from_edges(edges, volume=volume)
+    obs = ObserverTerm(field=o["field"], smoothing=o.get("smoothing"), k_ir=o.get("k_ir"),
+                       window=window, volume=volume, bins=bins, ells=(0, 2), ic=ic)
+    k_th = theory_k_grid()
+    kern = tr.kernel(cosmo, z, k_th, tracer, effects=eff)
+    E = obs.correction(cosmo, z, k_th, kern).reshape(2, -1)
+    p0 = tr.multipoles(cosmo, z, bins.k_eff, tracer, effects=eff, ells=(0,), shot_noise=False)[0]
+    sig_p = np.abs(p0) * np.sqrt(2.0 / bins.n_modes)
+    sig_c = obs.sigma_c(cosmo, z)
+    plot_observer(bins.k_eff, E, sig_p, k_f, k_f_text, png,
+                  title=f"observer term: {o['field']} today, z = {z:g}, b1 = {tracer.b1:g}")
+    above = bins.k_eff > k_f
+    ratio = np.max(np.abs(E[:, above]), axis=0) / sig_p[above] if above.any() else np.array([np.nan])
+    unit = "c^2" if o["field"] == "potential" else "density contrast"
+    return [f"observer term ({obs.describe()}): plot {png}",
+            f"  sigma_c = {sig_c:.4g} ({unit}); cut-offs: k_IR = {obs.k_ir:.4g} h/Mpc, smoothing "
+            f"{'none' if obs.smoothing is None else f'{obs.filter_kind} R = {obs.smoothing:g} Mpc/h'}",
+            f"  fundamental mode k_F = {k_f_text} = {k_f:.4g} h/Mpc; above it max |E_l|/sigma_P = "
+            f"{np.nanmax(ratio):.3g} (correction = (nu^2 - 1) E)"]
+
+
+def plot_observer(k, E, sig_p, k_f, k_f_text, path, title=""):
+    """|(ν² − 1) E_ℓ| for ν in OBSERVER_NUS (ν = 1: zero, not drawn) and σ_P; log axes."""
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    import matplotlib.ticker  # noqa: F401  (NullFormatter for the minor ticks)
+    fig, axes = plt.subplots(1, 2, figsize=(9.0, 3.9), sharex=True, sharey=True)
+    colours = {0.0: "tab:blue", 2.0: "tab:orange", 3.0: "tab:red"}
+    for ax, ell, e in zip(axes, (0, 2), E):
+        ax.fill_between(k, 0, sig_p, color="0.88", label=r"$\sigma_P = P_0\sqrt{2/N_{\rm modes}}$")
+        for nu in OBSERVER_NUS:
+            if nu == 1.0:
+                continue
+            v = (nu * nu - 1.0) * e
+            ax.plot(k, np.abs(v), color=colours[nu], lw=1.5, label=rf"$\nu = {nu:g}$")
+            neg = v < 0
+            ax.plot(k[neg], np.abs(v[neg]), "o", mfc="none", ms=3.5, color=colours[nu])
+        ax.axvline(k_f, color="0.3", ls="--", lw=1.0, label=f"$k_F$ = {k_f_text}")
+        ax.set_xscale("log")
+        ax.set_yscale("log")
+        ax.xaxis.set_minor_formatter(matplotlib.ticker.NullFormatter())
+        ax.set_xlabel(r"$k\ [h\,{\rm Mpc}^{-1}]$")
+        ax.set_title(rf"$|(\nu^2-1)\,E_{ell}(k)|$ (open: negative); $\nu = 1$ gives 0", fontsize=9)
+    axes[0].set_ylabel(r"$[({\rm Mpc}/h)^3]$")
+    axes[0].legend(fontsize=7)
+    fig.suptitle(title, fontsize=10)
+    fig.tight_layout()
+    tmp = path + ".tmp.png"
+    fig.savefig(tmp, dpi=110)
+    plt.close(fig)
+    os.replace(tmp, path)
 
 
 def plot_components(k, comps, path, title=""):
