@@ -353,7 +353,7 @@ class Likelihood:
         T = np.array(rows)
         extra = []
         if self.observer is not None:
-            O = self.observer.templates(cosmo, self.z, [z for _, z in basis], pairs)[:, self.mask]
+            O = self.observer.templates(cosmo, self.z, self.k_theory, [z for _, z in basis], pairs)[:, self.mask]
             extra.append(O)
         S = self._shot_template()
         W = np.vstack([T] + extra + [S[None]]) @ self._chol_inv.T
@@ -502,7 +502,7 @@ class Likelihood:
             if self.observer is not None:
                 nu = float(np.atleast_1d(values["nu_obs"])[i])
                 kern = tr.kernel(cosmo, self.z, self.k_theory, t, effects=self.effects)
-                model = model + (nu ** 2 - 1.0) * self.observer.correction(cosmo, self.z, kern)
+                model = model + (nu ** 2 - 1.0) * self.observer.correction(cosmo, self.z, self.k_theory, kern)
             out.append(model)
         return np.array(out)
 
@@ -520,7 +520,7 @@ class Likelihood:
     @property
     def observer_templates(self):
         basis = self._basis(self.cosmo, self.k_theory)
-        return self.observer.templates(self.cosmo, self.z, [z for _, z in basis],
+        return self.observer.templates(self.cosmo, self.z, self.k_theory, [z for _, z in basis],
                                        [tuple(p) for p in self._templates["pairs"]])[:, self.mask]
 
     def log_likelihood_direct(self, params):
