@@ -11,6 +11,8 @@ config file; the output folder is relative to the current working directory.
 The vocabulary (all sections but ``survey`` optional)::
 
     run: NAME                      # run name; default output folder chains/NAME
+    forecast:   {neglect: [effects], parameters, priors, threshold, step_rtol, scan: {...}}
+                (see likelihood.forecast)
     cosmology:  {preset, overrides: {h, omega_b, omega_cdm, n_s, ln10As | sigma8, w, m_nu},
                  transfer: eh98 | eh98_nowiggle | table, table: FILE, table_kind: power | transfer}
     survey:     {redshift, nbar, geometry: {shape: box | sphere | shell | cap | randoms,
@@ -41,9 +43,20 @@ from .params import KNOWN, ParameterSet, parse_parameter, suggest
 _NUM = (int, float)
 
 
+def _as_number(val):
+    """YAML 1.1 reads '1.0e11' (no sign in the exponent) as a string: accept such numbers."""
+    if isinstance(val, str):
+        try:
+            return float(val)
+        except ValueError:
+            return val
+    return val
+
+
 def _num(lo=None, hi=None, lo_open=False, integer=False):
     """Validator for a number in a range."""
     def check(val, where):
+        val = _as_number(val)
         if isinstance(val, bool) or not isinstance(val, _NUM) or not np.isfinite(val):
             raise ConfigError(f"{where}: expected a {'whole ' if integer else ''}number, got {val!r}")
         if integer and int(val) != val:
@@ -304,7 +317,9 @@ class Config(dict):
 
     @property
     def hash(self):
-        blob = json.dumps(self, sort_keys=True, default=str).encode()
+        # settings that do not change the posterior (forecast studies, output place) stay out
+        core = {k: v for k, v in self.items() if k not in ("forecast", "output")}
+        blob = json.dumps(core, sort_keys=True, default=str).encode()
         return hashlib.sha256(blob).hexdigest()[:16]
 
     @property

@@ -302,7 +302,7 @@ class Likelihood:
         """Basis kernels Z_a with Z = Σ_a x_a Z_a (see module docstring); names in order."""
         f = cosmo.growth_rate(self.z) if "rsd" in self.effects else 0.0
         proj = [e for e in self.effects if e in tr.PROJECTION_TERMS or e in ("doppler", "potential")]
-        fid = self.fiducial
+        fid = self._fixed_floats          # analysis values: fixed ones win over the mock truth
         be0 = 0.0 if "b_e" in self.lin_free else fid["b_e"]
         q0 = 0.0 if "s" in self.lin_free else 2.5 * fid["s"]
 

@@ -204,15 +204,23 @@ def parse_parameter(name, spec, where):
         raise ConfigError(f"{where}.{name}: give exactly one of fixed / flat / gauss")
     kind = kinds[0]
 
+    def as_num(v):   # YAML 1.1 reads '1e-3' as a string
+        try:
+            return float(v) if isinstance(v, str) else v
+        except ValueError:
+            return v
+
     def pair(key):
         val = spec[key]
+        if isinstance(val, (list, tuple)):
+            val = [as_num(v) for v in val]
         if (not isinstance(val, (list, tuple)) or len(val) != 2
                 or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in val)):
             raise ConfigError(f"{where}.{name}.{key}: expected two numbers [a, b], got {val!r}")
         return float(val[0]), float(val[1])
 
     def number(key, default):
-        val = spec.get(key, default)
+        val = as_num(spec.get(key, default))
         if not isinstance(val, (int, float)) or isinstance(val, bool) or not np.isfinite(val):
             raise ConfigError(f"{where}.{name}.{key}: expected a finite number, got {val!r}")
         return float(val)

@@ -124,3 +124,16 @@ def test_bad_inputs(write_config, tmp_path):
     bad.write_text("# ergofit data vector\n# ells: 0\n0.01 0.02 0.015 10 nan\n")
     with pytest.raises(DataError, match="NaN"):
         build(write_config({"data": {"file": "bad.txt", "mock": None, "ells": [0]}}, "bad.yaml"))
+
+
+def test_yaml_exponent_strings_and_fixed_values_win(write_config):
+    """'1e-3'-style numbers (strings to YAML 1.1) are accepted; a fixed b_e different from the
+    mock truth is used by both the fast and the direct path."""
+    over = {"survey": {"nbar": "3e-4"},
+            "data": {"mock": {"truth": {"fnl": 5.0, "b_e": 1.0}}},
+            "parameters": {"b1": {"flat": ["5e-1", 5.0], "start": 2.0}, "fnl": {"flat": [-50, 50]},
+                           "b_e": {"fixed": 0.3}}}
+    lik = build(write_config(over))
+    assert lik.nbar == pytest.approx(3e-4) and lik.prior_bounds[0, 0] == 0.5
+    d = {"b1": 2.05, "fnl": 2.0}
+    assert lik.log_likelihood(d) == pytest.approx(lik.log_likelihood_direct(d), rel=1e-10)
