@@ -30,6 +30,7 @@ The vocabulary (all sections but ``survey`` optional)::
 from __future__ import annotations
 
 import copy
+import glob
 import hashlib
 import json
 import os
@@ -315,10 +316,30 @@ class Config(dict):
         """Absolute path of an input file named in the config."""
         return rel if os.path.isabs(rel) else os.path.normpath(os.path.join(self.base_dir, rel))
 
+    #: (section, key) of every input file named in a config
+    INPUT_FILES = (("data", "file"), ("covariance", "file"), ("covariance", "mocks"),
+                   ("cosmology", "table"))
+
+    def _file_digest(self, rel):
+        """sha256 of the contents of the file(s) a config names (a glob for mocks)."""
+        h = hashlib.sha256()
+        for path in sorted(glob.glob(self.resolve(rel))):
+            with open(path, "rb") as fh:
+                h.update(hashlib.sha256(fh.read()).digest())
+        return h.hexdigest()
+
     @property
     def hash(self):
-        # settings that do not change the posterior (forecast studies, output place) stay out
-        core = {k: v for k, v in self.items() if k not in ("forecast", "output")}
+        """Hash of everything that defines the posterior: the settings and the *contents* of the
+        input files (so a moved or re-pathed data file keeps its hash, an edited one does not).
+        Forecast studies and the output place stay out."""
+        core = {k: copy.deepcopy(v) for k, v in self.items() if k not in ("forecast", "output", "run")}
+        for sec, key in self.INPUT_FILES:
+            if key in core.get(sec, {}):
+                core[sec][key] = self._file_digest(core[sec][key])
+        geo = core.get("survey", {}).get("geometry", {})
+        if "randoms" in geo:
+            geo["randoms"] = self._file_digest(geo["randoms"])
         blob = json.dumps(core, sort_keys=True, default=str).encode()
         return hashlib.sha256(blob).hexdigest()[:16]
 

@@ -540,7 +540,17 @@ class Likelihood:
         vals = self._theta_values(np.atleast_2d(theta))
         return float(self._chi2(vals)[0])
 
-    derived_names = ["fnl_eff", "b1_sigma8"]
+    @property
+    def derived_names(self):
+        """Derived parameters that vary over the posterior: f_NL mimicked by the projection terms
+        (when they are on) and b1 σ8(z) (when b1 is sampled)."""
+        names = []
+        proj = any(e in self.effects for e in ("doppler", "potential"))
+        if proj and any(self.params.is_free(n) for n in ("b1", "b_e", "s")):
+            names.append("fnl_eff")
+        if self.params.is_free("b1"):
+            names.append("b1_sigma8")
+        return names
 
     @property
     def derived_labels(self):
@@ -548,19 +558,22 @@ class Likelihood:
         return [DERIVED[n].label for n in self.derived_names]
 
     def derived(self, theta):
-        """(n, 2): f_NL mimicked by the projection terms, and b1 σ8(z)."""
+        """(n, len(derived_names)) derived parameters for (n, n_dim) theta."""
         theta = np.atleast_2d(theta)
         vals = self._theta_values(theta)
-        out = np.empty((theta.shape[0], 2))
-        cache = {}
-        for i in range(theta.shape[0]):
-            t = self._tracer(vals, i)
-            key = (t.b1, t.b_e, t.s)
-            if key not in cache:
-                cache[key] = tr.effective_fnl(self.cosmo, self.z, t, effects=self.effects)
-            out[i, 0] = cache[key]
-        tpl = self._templates
-        out[:, 1] = vals["b1"] * tpl["sigma8"] * tpl["growth"]
+        names = self.derived_names
+        out = np.empty((theta.shape[0], len(names)))
+        if "fnl_eff" in names:
+            cache = {}
+            for i in range(theta.shape[0]):
+                t = self._tracer(vals, i)
+                key = (t.b1, t.b_e, t.s)
+                if key not in cache:
+                    cache[key] = tr.effective_fnl(self.cosmo, self.z, t, effects=self.effects)
+                out[i, names.index("fnl_eff")] = cache[key]
+        if "b1_sigma8" in names:
+            tpl = self._templates
+            out[:, names.index("b1_sigma8")] = vals["b1"] * tpl["sigma8"] * tpl["growth"]
         return out
 
     def observables(self):

@@ -351,6 +351,9 @@ def _base_path(out_path: str | os.PathLike) -> str:
     return root if ext.lower() in (".png", ".pdf") else out_path
 
 
+_PALETTE = ["#1f5f8b", "#c8553d", "#3a8a4f", "#8e5ea2", "#d4a017", "#5c5c5c"]
+
+
 def plot_triangle(samples_list: Sequence, out_path: str | os.PathLike,
                   legend_labels: Sequence[str] | None = None,
                   params: Sequence[str] | None = None) -> list[str]:
@@ -370,8 +373,12 @@ def plot_triangle(samples_list: Sequence, out_path: str | os.PathLike,
         with warnings.catch_warnings():
             # getdist's tick formatter reads an attribute that matplotlib deprecates (not ours)
             warnings.filterwarnings("ignore", category=DeprecationWarning, module="getdist")
+            n_runs = len(samples_list)
+            # one run: filled contours; several: the first filled, the others as lines on top
             g.triangle_plot(list(samples_list), params=list(params) if params else None,
-                            filled=True,
+                            filled=True if n_runs == 1 else [True] + [False] * (n_runs - 1),
+                            contour_colors=_PALETTE[:n_runs] if n_runs <= len(_PALETTE) else None,
+                            contour_lws=1.8,
                             legend_labels=list(legend_labels) if legend_labels else None)
             for p in paths:
                 _save_figure(g.fig, p, tight=False)  # getdist has laid the figure out
@@ -565,7 +572,7 @@ def _labels_for(run_dirs: Sequence[str], labels: Sequence[str] | None) -> list[s
 
 
 def _overlay_samples(samples_list: list, labels: list[str], out_path: str) -> list[str]:
-    names = [s.paramNames.list() for s in samples_list]
+    names = [[p.name for p in s.paramNames.names if not p.isDerived] for s in samples_list]
     common = [n for n in names[0] if all(n in other for other in names[1:])]
     if not common:
         raise ErgofitError("the runs to overlay share no parameter name")
