@@ -87,11 +87,11 @@ def observer_report(cfg, png, cosmo, tracer, eff):
 
     z = cfg["survey"]["redshift"]
     o = cfg["observer"]
-    window, volume = make_geometry(cfg)
-    if not cfg["effects"]["window"]:
-        window = None
-    ic = cfg["effects"]["integral_constraint"] if window is not None else "none"
     try:
+        window, volume = make_geometry(cfg, cosmo)
+        if not cfg["effects"]["window"]:
+            window = None
+        ic = cfg["effects"]["integral_constraint"] if window is not None else "none"
         probe = ObserverTerm(field=o["field"], smoothing=o.get("smoothing"), k_ir=o.get("k_ir"),
                              window=window, volume=volume, ic=ic, ells=(0, 2))
     except ErgofitError as exc:
