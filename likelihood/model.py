@@ -188,6 +188,10 @@ class Likelihood:
         if self.mock_cov is not None and not self.t_likelihood:
             scale = self.mock_cov.hartlap(self.data.size)
         self.precision_scale = scale
+        # Percival et al. (2014) eq. 18: parameter variances from a mock covariance are inflated
+        # by m1 (reported; the posterior itself is not rescaled)
+        self.percival_m1 = (self.mock_cov.percival_m1(self.data.size, len(self.parameter_names))
+                            if self.mock_cov is not None else None)
         self.dof = int(self.data.size - len(self.parameter_names))
         self._fixed_floats = {k: float(v[0]) for k, v in self._values({}).items()}
         self._chol_inv = np.linalg.inv(self.chol)   # tiny matrix; matmul beats repeated solves
@@ -614,7 +618,12 @@ class Likelihood:
                  f"data: {self.data.size} points, multipoles {list(self.ells)}, k in "
                  f"[{self.data_full.k_eff[self.mask.reshape(len(self.data_full.ells), -1).any(0)].min():.4g}, "
                  f"{self.data_full.k_eff[self.mask.reshape(len(self.data_full.ells), -1).any(0)].max():.4g}] h/Mpc",
-                 f"covariance: {cfg['covariance']['kind']}, condition number {self.condition_number:.3g}",
+                 f"covariance: {cfg['covariance']['kind']}, condition number {self.condition_number:.3g}"
+                 + (f"; {self.n_mocks} mocks, "
+                    + ("Sellentin-Heavens t-likelihood" if self.t_likelihood else
+                       f"Hartlap factor {self.precision_scale:.3f}")
+                    + f"; Percival m1 = {self.percival_m1:.3f} (inflate parameter errors by "
+                      f"{np.sqrt(self.percival_m1):.3f})" if self.mock_cov is not None else ""),
                  "sampled parameters:"]
         for p in self.params.free:
             lines.append(f"  {p.name:<10s} {p.prior.describe():<30s} start {p.start:g}")

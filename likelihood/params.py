@@ -48,6 +48,11 @@ DERIVED = {
 }
 
 
+#: Priors used when a sampled parameter is listed without one (design: ν ~ N(0, 1), the
+#: constraint field's value at the observer in units of its rms is a unit Gaussian variable).
+DEFAULT_PRIORS = {"nu_obs": {"gauss": [0.0, 1.0]}}
+
+
 def suggest(name, choices):
     """' (did you mean 'x'?)' for the nearest valid name, or ''."""
     best = difflib.get_close_matches(str(name), list(choices), n=1, cutoff=0.5)
@@ -200,6 +205,9 @@ def parse_parameter(name, spec, where):
             raise ConfigError(f"{where}.{name}: unknown key '{key}'{suggest(key, allowed)}; "
                               f"allowed: {', '.join(allowed)}")
     kinds = [k for k in ("fixed", "flat", "gauss") if k in spec]
+    if not kinds and name in DEFAULT_PRIORS:
+        spec = dict(spec, **DEFAULT_PRIORS[name])
+        kinds = [k for k in ("flat", "gauss") if k in spec]
     if len(kinds) != 1:
         raise ConfigError(f"{where}.{name}: give exactly one of fixed / flat / gauss")
     kind = kinds[0]

@@ -104,6 +104,8 @@ def test_mock_covariance_hartlap_and_t(write_config, tmp_path):
     assert lik_h.log_likelihood(d) == pytest.approx(-0.5 * (60 - n_d - 2) / 59 * chi2, rel=1e-10)
     # Sellentin & Heavens (2016) eq. 6
     assert lik_t.log_likelihood(d) == pytest.approx(-30.0 * np.log1p(chi2 / 59.0), rel=1e-10)
+    # Percival et al. (2014) eq. 18 reported in the model description
+    assert lik_h.percival_m1 > 1.0 and "Percival m1" in lik_h.describe()
 
 
 def test_bad_inputs(write_config, tmp_path):
@@ -137,3 +139,14 @@ def test_yaml_exponent_strings_and_fixed_values_win(write_config):
     assert lik.nbar == pytest.approx(3e-4) and lik.prior_bounds[0, 0] == 0.5
     d = {"b1": 2.05, "fnl": 2.0}
     assert lik.log_likelihood(d) == pytest.approx(lik.log_likelihood_direct(d), rel=1e-10)
+
+
+def test_nu_obs_default_prior_and_percival_report(write_config):
+    """nu_obs listed without a prior gets N(0, 1) (design); the observer term is switched on."""
+    over = {"effects": {"observer": True},
+            "parameters": {"b1": {"flat": [0.5, 5.0], "start": 2.0}, "nu_obs": {"start": 0.5}}}
+    lik = build(write_config(over))
+    p = lik.params.free[1]
+    assert p.prior.kind == "gauss" and p.prior.mean == 0.0 and p.prior.sigma == 1.0
+    d = {"b1": 2.0, "nu_obs": 0.5}
+    assert lik.log_prob(np.array([2.0, 0.5])) == pytest.approx(lik.log_likelihood(d) - 0.125, rel=1e-12)
