@@ -37,7 +37,7 @@ def cmd_theory(args):
     cfg = load_config(args.config)
     out = args.out or os.path.join(cfg.output_folder, "theory.txt")
     _out_dir(os.path.dirname(os.path.abspath(out)))
-    for line in theory_report(cfg, out):
+    for line in theory_report(cfg, out, fnl=args.fnl):
         print(line)
     return 0
 
@@ -214,7 +214,9 @@ def make_parser():
 
     s = sub.add_parser("theory", help="model multipoles component by component, and a plot")
     s.add_argument("config")
-    s.add_argument("--out")
+    s.add_argument("--out", help="table path (default <output folder>/theory.txt); plots beside it")
+    s.add_argument("--fnl", type=float, default=None,
+                   help="f_NL of the '+ f_NL' component (default: tracer.fnl of the config)")
     s.set_defaults(func=cmd_theory)
 
     s = sub.add_parser("check", help="validate a config and describe the model")

@@ -22,12 +22,15 @@ from .model import effects_tuple, make_cosmology
 ELLS = (0, 2, 4)
 
 
-def components(cfg, k):
-    """dict name -> (len(ELLS), len(k)) multipoles (no window, no shot noise), and the tracer."""
+def components(cfg, k, fnl=None):
+    """dict name -> (len(ELLS), len(k)) multipoles (no window, no shot noise), and the tracer.
+
+    ``fnl`` overrides the tracer's f_NL for the "+ f_NL" component (default: tracer.fnl)."""
     cosmo = make_cosmology(cfg)
     z = cfg["survey"]["redshift"]
     t = cfg["tracer"]
-    tracer = tr.Tracer(b1=t["b1"], fnl=t["fnl"], p=t["p"], nbar=cfg["survey"]["nbar"], b_e=t["b_e"], s=t["s"])
+    tracer = tr.Tracer(b1=t["b1"], fnl=t["fnl"] if fnl is None else float(fnl), p=t["p"],
+                       nbar=cfg["survey"]["nbar"], b_e=t["b_e"], s=t["s"])
     eff = effects_tuple(cfg)
     rsd = ("rsd",) if "rsd" in eff else ()
     fnl = ("fnl",) if "fnl" in eff else ()
@@ -38,10 +41,11 @@ def components(cfg, k):
     return out, cosmo, tracer, eff
 
 
-def theory_report(cfg, out_path, k=None):
+def theory_report(cfg, out_path, k=None, fnl=None):
     """Write the component table to ``out_path`` and a PNG beside it; return lines to print."""
+    import warnings
     k = np.geomspace(1e-3, 0.2, 60) if k is None else np.asarray(k, float)
-    comps, cosmo, tracer, eff = components(cfg, k)
+    comps, cosmo, tracer, eff = components(cfg, k, fnl)
     z = cfg["survey"]["redshift"]
     fnl_eff = tr.effective_fnl(cosmo, z, tracer, effects=eff)
     cols = ["k"] + [f"{name}_P{l}" for name in comps for l in ELLS]
@@ -64,9 +68,14 @@ def theory_report(cfg, out_path, k=None):
         j = i * max(1, len(k) // 6)
         lines.append(f"  k = {kk:.4f}  P0 newtonian {comps['newtonian'][0, j]:.4g}  +fNL "
                      f"{comps['plus_fnl'][0, j]:.4g}  +projection {comps['plus_projection'][0, j]:.4g}")
+    if tracer.fnl == 0 and "fnl" in eff:
+        lines.append("  (f_NL = 0 in the config: the '+fNL' component equals the Newtonian one; "
+                     "show it with --fnl VALUE)")
     if cfg["effects"]["observer"]:
-        lines += observer_report(cfg, os.path.splitext(out_path)[0] + "_observer.png",
-                                 cosmo, tracer, eff)
+        with warnings.catch_warnings():   # the observer term integrates over the whole theory grid
+            warnings.simplefilter("ignore", tr.PlaneParallelWarning)
+            lines += observer_report(cfg, os.path.splitext(out_path)[0] + "_observer.png",
+                                     cosmo, tracer, eff)
     return lines
 
 
@@ -154,21 +163,31 @@ def plot_observer(k, E, sig_p, k_f, k_f_text, path, title=""):
 
 
 def plot_components(k, comps, path, title=""):
+    """Top row: |P_ℓ(k)| of each component; bottom row: each component relative to the
+    Newtonian one, P_ℓ/P_ℓ^Newt − 1, where the f_NL and projection terms show up."""
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
-    fig, axes = plt.subplots(1, len(ELLS), figsize=(4.2 * len(ELLS), 3.8), sharex=True)
+    fig, axes = plt.subplots(2, len(ELLS), figsize=(4.2 * len(ELLS), 6.4), sharex=True,
+                             gridspec_kw={"height_ratios": [3, 2]})
     styles = {"newtonian": ("0.2", "-"), "plus_fnl": ("tab:orange", "--"),
               "plus_projection": ("tab:purple", ":")}
     names = {"newtonian": "Newtonian (b1 + RSD)", "plus_fnl": "+ f_NL", "plus_projection": "+ projection"}
-    for i, (ax, ell) in enumerate(zip(axes, ELLS)):
+    newt = comps["newtonian"]
+    for i, ell in enumerate(ELLS):
+        top, bot = axes[0, i], axes[1, i]
         for name, pl in comps.items():
             c, ls = styles[name]
-            ax.loglog(k, np.abs(pl[i]), color=c, ls=ls, lw=1.6, label=names[name])
-        ax.set_xlabel(r"$k\ [h\,{\rm Mpc}^{-1}]$")
-        ax.set_title(rf"$|P_{ell}(k)|$")
-    axes[0].set_ylabel(r"$[({\rm Mpc}/h)^3]$")
-    axes[0].legend(fontsize=8)
+            top.loglog(k, np.abs(pl[i]), color=c, ls=ls, lw=1.6, label=names[name])
+            with np.errstate(divide="ignore", invalid="ignore"):
+                rel = np.where(newt[i] != 0, pl[i] / newt[i] - 1.0, 0.0)
+            bot.semilogx(k, rel, color=c, ls=ls, lw=1.6)
+        top.set_title(rf"$|P_{ell}(k)|$")
+        bot.axhline(0.0, color="0.6", lw=0.8)
+        bot.set_xlabel(r"$k\ [h\,{\rm Mpc}^{-1}]$")
+    axes[0, 0].set_ylabel(r"$[({\rm Mpc}/h)^3]$")
+    axes[1, 0].set_ylabel(r"$P_\ell/P_\ell^{\rm Newt} - 1$")
+    axes[0, 0].legend(fontsize=8)
     fig.suptitle(title, fontsize=10)
     fig.tight_layout()
     tmp = path + ".tmp.png"
