@@ -10,6 +10,7 @@ import sys
 import warnings
 
 from .errors import ErgofitError
+from .fileio import write_text
 
 
 def _out_dir(path):
@@ -56,7 +57,6 @@ def _rebuild(run_dir):
 
 
 def cmd_run(args):
-    import shutil
     from .config import load_config
     from .model import build
     from .sampler import run_sampler
@@ -109,10 +109,7 @@ def _write_config_copy(src, dst):
     if "randoms" in geo:
         geo["randoms"] = os.path.abspath(cfg.resolve(geo["randoms"]))
     raw.setdefault("run", cfg.run_name)
-    tmp = dst + ".tmp"
-    with open(tmp, "w", encoding="utf-8") as fh:
-        yaml.safe_dump(raw, fh, sort_keys=False)
-    os.replace(tmp, dst)
+    write_text(dst, yaml.safe_dump(raw, sort_keys=False))
 
 
 def _mpi_pool():

@@ -33,6 +33,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import DataError
+from .fileio import open_atomic
 
 DATA_HEADER = "# ergofit data vector"
 COV_HEADER = "# ergofit covariance"
@@ -153,12 +154,11 @@ class DataVector:
     def save(self, path):
         """Write to ``path`` (``.npz`` or documented plain text), atomically."""
         path = os.fspath(path)
-        tmp = path + ".tmp"
         if path.endswith(".npz"):
-            with open(tmp, "wb") as fh:
-                np.savez(fh, ells=np.array(self.ells), edges=self.edges, k_eff=self.k_eff,
-                         n_modes=self.n_modes, values=self.values,
-                         meta=np.array([f"{k} = {v}" for k, v in self.meta.items()], dtype=str))
+            open_atomic(path, lambda fh: np.savez(
+                fh, ells=np.array(self.ells), edges=self.edges, k_eff=self.k_eff, n_modes=self.n_modes,
+                values=self.values, meta=np.array([f"{k} = {v}" for k, v in self.meta.items()], dtype=str)),
+                binary=True)
         else:
             cols = " ".join(f"P_{l}" for l in self.ells)
             lines = [DATA_HEADER,
@@ -169,10 +169,10 @@ class DataVector:
             lines += [f"# meta: {k} = {v}" for k, v in self.meta.items()]
             table = np.column_stack([self.edges[:-1], self.edges[1:], self.k_eff, self.n_modes,
                                      self.values.T])
-            with open(tmp, "w", encoding="utf-8") as fh:
+            def write(fh):
                 fh.write("\n".join(lines) + "\n")
                 np.savetxt(fh, table, fmt="%.10e")
-        os.replace(tmp, path)
+            open_atomic(path, write)
 
     @classmethod
     def load(cls, path):
@@ -242,16 +242,15 @@ def condition_number(cov):
 
 def save_covariance(path, cov, ells, n_bins):
     path = os.fspath(path)
-    tmp = path + ".tmp"
     if path.endswith(".npz"):
-        with open(tmp, "wb") as fh:
-            np.savez(fh, covariance=cov, ells=np.array(ells), n_bins=n_bins)
+        open_atomic(path, lambda fh: np.savez(fh, covariance=cov, ells=np.array(ells), n_bins=n_bins),
+                    binary=True)
     else:
-        with open(tmp, "w", encoding="utf-8") as fh:
+        def write(fh):
             fh.write(f"{COV_HEADER}\n# units (Mpc/h)^6; rows follow the flat data vector "
                      f"(ell-major)\n# ells: {' '.join(str(l) for l in ells)}\n# n_bins: {n_bins}\n")
             np.savetxt(fh, cov, fmt="%.12e")
-    os.replace(tmp, path)
+        open_atomic(path, write)
 
 
 def load_covariance(path):

@@ -92,7 +92,6 @@ import io
 import json
 import math
 import os
-import uuid
 import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -101,6 +100,7 @@ import numpy as np
 from scipy.linalg import solve_triangular
 
 from .config import FORECAST_NEGLECT, SCHEMA, Config, load_config, validate
+from .fileio import open_atomic, write_text
 from .errors import ConfigError, ErgofitError
 from .params import KNOWN
 
@@ -930,7 +930,7 @@ def mcmc_check(bias, out_dir, settings=None, tolerance=_MCMC_TOLERANCE):
     chain = os.path.join(out_dir, CHAIN_FILENAME)
     if os.path.exists(chain):
         os.remove(chain)
-    _write_text(os.path.join(out_dir, "config.yaml"),
+    write_text(os.path.join(out_dir, "config.yaml"),
                 yaml.safe_dump(_plain(config_to_raw(mcfg)), sort_keys=False))
     with _collect(notes):
         result = run_sampler(lik, settings, out_dir, resume=False)
@@ -959,23 +959,6 @@ def mcmc_check(bias, out_dir, settings=None, tolerance=_MCMC_TOLERANCE):
 # --------------------------------------------------------------------------------------------
 # Output files
 # --------------------------------------------------------------------------------------------
-
-def _atomic(path, write, binary=False):
-    directory, name = os.path.split(os.path.abspath(path))
-    tmp = os.path.join(directory, f".{name}.{os.getpid()}.{uuid.uuid4().hex[:8]}.tmp")
-    try:
-        with open(tmp, "wb" if binary else "w", **({} if binary else {"encoding": "utf-8"})) as fh:
-            write(fh)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.remove(tmp)
-        raise
-
-
-def _write_text(path, text):
-    _atomic(path, lambda fh: fh.write(text))
-
 
 def _plain(obj):
     """JSON/YAML-safe copy: numpy scalars to floats, non-finite floats to None."""
@@ -1023,7 +1006,7 @@ def plot_ellipses(bias, path):
                 g.triangle_plot(dists, names, filled=True,
                                 markers={n: v for n, v in zip(names, f.fiducial)},
                                 legend_labels=[d.label for d in dists])
-            _atomic(path, lambda fh: g.fig.savefig(fh, format="png", dpi=130), binary=True)
+            open_atomic(path, lambda fh: g.fig.savefig(fh, format="png", dpi=130), binary=True)
         finally:
             import matplotlib.pyplot as plt
             plt.close(g.fig)
@@ -1057,7 +1040,7 @@ def plot_scan(scan, path):
     if np.all(x > 0) and x.max() / x.min() > 20:
         bx.set_xscale("log")
     fig.tight_layout()
-    _atomic(path, lambda fh: fig.savefig(fh, format="png", dpi=130), binary=True)
+    open_atomic(path, lambda fh: fig.savefig(fh, format="png", dpi=130), binary=True)
 
 
 _QUANTITY_LABEL = {"redshift": "redshift z", "volume": r"volume [$(h^{-1}{\rm Mpc})^3$]",
@@ -1104,7 +1087,7 @@ def scan_tables(scan):
     where = _ranges_text(scan)
     md += ["", f"**!**: |Δf_NL| > {scan.threshold:g} σ(f_NL). " +
            (f"This happens for {q} = {where}." if where else
-            f"This happens nowhere on the grid.")]
+            "This happens nowhere on the grid.")]
     return buf.getvalue(), "\n".join(md) + "\n"
 
 
@@ -1210,8 +1193,8 @@ def run_forecast(config, out_dir=None, check_mcmc=False, pool=None, scan=True):
     plot_ellipses(bias, os.path.join(out_dir, "ellipses.png"))
     if scan_res is not None:
         csv_text, md_text = scan_tables(scan_res)
-        _write_text(os.path.join(out_dir, "scan.csv"), csv_text)
-        _write_text(os.path.join(out_dir, "scan.md"), md_text)
+        write_text(os.path.join(out_dir, "scan.csv"), csv_text)
+        write_text(os.path.join(out_dir, "scan.md"), md_text)
         plot_scan(scan_res, os.path.join(out_dir, "scan.png"))
         files += ["scan.csv", "scan.md", "scan.png"]
     if mcmc is not None:
@@ -1227,8 +1210,8 @@ def run_forecast(config, out_dir=None, check_mcmc=False, pool=None, scan=True):
                                                   "rows": scan_res.rows},
            "mcmc_check": mcmc,
            "warnings": list(dict.fromkeys(bias.warnings + (scan_res.notes if scan_res else [])))}
-    _write_text(os.path.join(out_dir, "fisher.json"), json.dumps(_plain(doc), indent=1) + "\n")
-    _write_text(os.path.join(out_dir, "forecast.md"),
+    write_text(os.path.join(out_dir, "fisher.json"), json.dumps(_plain(doc), indent=1) + "\n")
+    write_text(os.path.join(out_dir, "forecast.md"),
                 forecast_markdown(bias, scan_res, mcmc, files))
     return {"bias": bias, "scan": scan_res, "mcmc": mcmc, "out_dir": out_dir,
             "files": [os.path.join(out_dir, f) for f in files]}

@@ -34,7 +34,7 @@ from scipy.linalg import cho_solve
 from . import tracer as tr
 from .config import parameter_set
 from .cosmology import Cosmology
-from .data import (DataVector, MockCovariance, check_covariance, condition_number,
+from .data import (DataVector, check_covariance, condition_number,
                    covariance_from_mocks, gaussian_covariance, load_covariance)
 from .errors import ConfigError, DataError
 from .observation import KBins, WindowMatrix, theory_k_grid

@@ -21,6 +21,7 @@ import numpy as np
 from . import tracer as tr
 from .config import load_config
 from .errors import ErgofitError
+from .fileio import write_text
 from .model import Likelihood, effects_tuple
 from .simulate import Mesh, simulate_from_settings, validate
 
@@ -77,11 +78,9 @@ def simulate_cli(args):
             print(f"  {len(mocks)} mocks for {n_data} data points: comparing with the likelihood's "
                   f"{cfg['covariance']['kind']} covariance instead of the mocks' own")
         res = validate(mocks, model, covariance=cov, plot=os.path.join(out, "validation.png"))
-        tmp = os.path.join(out, "validation.json.tmp")
-        with open(tmp, "w", encoding="utf-8") as fh:
-            json.dump({k: (v if not isinstance(v, dict) else {str(a): b for a, b in v.items()})
-                       for k, v in res.items()}, fh, indent=2, default=float)
-        os.replace(tmp, os.path.join(out, "validation.json"))
+        write_text(os.path.join(out, "validation.json"),
+                   json.dumps({k: (v if not isinstance(v, dict) else {str(a): b for a, b in v.items()})
+                               for k, v in res.items()}, indent=2, default=float))
         for l in res["ells"]:
             print(f"  ell = {l}: chi2 = {res['chi2'][l]:.1f} for {res['dof'][l]} bins "
                   f"(p = {res['p_value'][l]:.3f})")

@@ -38,12 +38,12 @@ import io
 import json
 import math
 import os
-import uuid
 import warnings
 from typing import Any, Callable, Sequence
 
 import numpy as np
 
+from .fileio import save_figure, write_text
 from .errors import ErgofitError
 from .sampler import SamplerResult, load_chain
 
@@ -64,35 +64,6 @@ _LIMIT_TYPES = {"two": "two-sided", ">": "upper limit", "<": "lower limit", "non
 # --------------------------------------------------------------------------------------------
 # Atomic file output
 # --------------------------------------------------------------------------------------------
-
-
-def _atomic_write(path: str, write: Callable[[str], None], suffix: str) -> None:
-    """Call ``write(tmp_path)`` on a temporary file beside ``path``, then rename it to ``path``."""
-    directory, name = os.path.split(os.path.abspath(path))
-    # not mkstemp: its 0600 mode would stick to the output file
-    tmp = os.path.join(directory, f".{name}.{os.getpid()}.{uuid.uuid4().hex[:8]}{suffix}")
-    try:
-        write(tmp)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.remove(tmp)
-        raise
-
-
-def _write_text(path: str, text: str) -> None:
-    def write(tmp: str) -> None:
-        with open(tmp, "w", encoding="utf-8") as f:
-            f.write(text)
-
-    _atomic_write(path, write, ".tmp")
-
-
-def _save_figure(fig, path: str, dpi: int = 150, tight: bool = True) -> None:
-    fmt = os.path.splitext(path)[1].lstrip(".").lower()
-    bbox = "tight" if tight else None
-    _atomic_write(path, lambda tmp: fig.savefig(tmp, format=fmt, dpi=dpi, bbox_inches=bbox),
-                  "." + fmt)
 
 
 # --------------------------------------------------------------------------------------------
@@ -381,7 +352,7 @@ def plot_triangle(samples_list: Sequence, out_path: str | os.PathLike,
                             contour_lws=1.8,
                             legend_labels=list(legend_labels) if legend_labels else None)
             for p in paths:
-                _save_figure(g.fig, p, tight=False)  # getdist has laid the figure out
+                save_figure(g.fig, p, tight=False)  # getdist has laid the figure out
     finally:
         plt.close(g.fig)
     return paths
@@ -465,7 +436,7 @@ def plot_multipoles(lik: Any, theta: np.ndarray, out_path: str | os.PathLike,
     if title:
         top.set_title(title, fontsize=10)
     path = os.fspath(out_path)
-    _save_figure(fig, path)
+    save_figure(fig, path)
     return path
 
 
@@ -550,10 +521,10 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
         "notes": notes,
     }
     summary = _clean(summary)
-    _write_text(os.path.join(out_dir, "summary.json"),
+    write_text(os.path.join(out_dir, "summary.json"),
                 json.dumps(summary, indent=2, allow_nan=False) + "\n")
-    _write_text(os.path.join(out_dir, "constraints.md"), _constraints_markdown(summary))
-    _write_text(os.path.join(out_dir, "constraints.tex"), _constraints_tex(summary))
+    write_text(os.path.join(out_dir, "constraints.md"), _constraints_markdown(summary))
+    write_text(os.path.join(out_dir, "constraints.tex"), _constraints_tex(summary))
     plot_triangle([samples], os.path.join(out_dir, "triangle"), params=list(result.parameter_names))
     if can_plot:
         title = f"{label}: best fit, $\\chi^2$ = {chi2:.1f} for {dof} d.o.f." if chi2 is not None \

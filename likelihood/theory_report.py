@@ -17,6 +17,7 @@ import os
 import numpy as np
 
 from . import tracer as tr
+from .fileio import open_atomic, save_figure
 from .model import effects_tuple, make_cosmology
 
 ELLS = (0, 2, 4)
@@ -50,8 +51,7 @@ def theory_report(cfg, out_path, k=None, fnl=None):
     fnl_eff = tr.effective_fnl(cosmo, z, tracer, effects=eff)
     cols = ["k"] + [f"{name}_P{l}" for name in comps for l in ELLS]
     table = np.column_stack([k] + [comps[name][i] for name in comps for i in range(len(ELLS))])
-    tmp = out_path + ".tmp"
-    with open(tmp, "w", encoding="utf-8") as fh:
+    def write(fh):
         fh.write("# ergofit theory multipoles (linear theory, plane-parallel kernel, no window, "
                  "no shot noise)\n")
         fh.write(f"# z = {z:g}, b1 = {tracer.b1:g}, fnl = {tracer.fnl:g}, p = {tracer.p:g}, "
@@ -59,7 +59,7 @@ def theory_report(cfg, out_path, k=None, fnl=None):
         fh.write(f"# effective f_NL of the projection terms: {fnl_eff:.4g}\n")
         fh.write("# units: k in h/Mpc, P in (Mpc/h)^3\n# columns: " + " ".join(cols) + "\n")
         np.savetxt(fh, table, fmt="%.8e")
-    os.replace(tmp, out_path)
+    open_atomic(out_path, write)
     png = os.path.splitext(out_path)[0] + ".png"
     plot_components(k, comps, png, title=f"z = {z:g}, b1 = {tracer.b1:g}, fNL = {tracer.fnl:g}")
     lines = [f"theory multipoles written to {out_path}; plot {png}",
@@ -156,10 +156,8 @@ def plot_observer(k, E, sig_p, k_f, k_f_text, path, title=""):
     axes[0].legend(fontsize=7)
     fig.suptitle(title, fontsize=10)
     fig.tight_layout()
-    tmp = path + ".tmp.png"
-    fig.savefig(tmp, dpi=110)
+    save_figure(fig, path, dpi=110, tight=False)
     plt.close(fig)
-    os.replace(tmp, path)
 
 
 def plot_components(k, comps, path, title=""):
@@ -190,7 +188,5 @@ def plot_components(k, comps, path, title=""):
     axes[0, 0].legend(fontsize=8)
     fig.suptitle(title, fontsize=10)
     fig.tight_layout()
-    tmp = path + ".tmp.png"
-    fig.savefig(tmp, dpi=110)
+    save_figure(fig, path, dpi=110, tight=False)
     plt.close(fig)
-    os.replace(tmp, path)

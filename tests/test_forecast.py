@@ -9,7 +9,6 @@ import csv
 import json
 import math
 import os
-import textwrap
 import warnings
 
 import numpy as np

@@ -20,10 +20,10 @@ import numpy as np
 import pytest
 from scipy import stats
 
+from likelihood.fileio import atomic_write
 from likelihood.errors import ErgofitError
 from likelihood.sampler import ConvergenceWarning, SamplerResult, SamplerSettings, load_chain, run_sampler
 from likelihood.summary import (
-    _atomic_write,
     _decimals,
     _fmt,
     make_samples,
@@ -304,7 +304,7 @@ def test_atomic_write_keeps_old_file_on_failure(tmp_path):
         raise OSError("disk full")
 
     with pytest.raises(OSError):
-        _atomic_write(str(path), failing, ".tmp")
+        atomic_write(str(path), failing, ".tmp")
     assert path.read_text() == "old" and os.listdir(tmp_path) == ["summary.json"]
 
 

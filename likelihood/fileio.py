@@ -1,0 +1,47 @@
+"""Atomic file output: nothing ergofit writes is ever left half-written.
+
+Every writer puts its bytes into a temporary file beside the target (same folder, so the final
+``os.replace`` is an atomic rename on POSIX file systems) and renames it only when writing has
+succeeded; on any error the temporary file is removed and the old target, if any, is untouched.
+"""
+from __future__ import annotations
+
+import os
+import uuid
+
+
+def atomic_write(path, write, suffix=".tmp"):
+    """Call ``write(tmp_path)`` on a temporary file beside ``path``, then rename it to ``path``."""
+    directory, name = os.path.split(os.path.abspath(os.fspath(path)))
+    # not mkstemp: its 0600 mode would stick to the output file
+    tmp = os.path.join(directory, f".{name}.{os.getpid()}.{uuid.uuid4().hex[:8]}{suffix}")
+    try:
+        write(tmp)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+        raise
+
+
+def write_text(path, text):
+    """Write a text file (UTF-8) atomically."""
+    def write(tmp):
+        with open(tmp, "w", encoding="utf-8") as fh:
+            fh.write(text)
+    atomic_write(path, write)
+
+
+def open_atomic(path, write_stream, binary=False):
+    """Atomically write ``path`` through ``write_stream(file_object)``."""
+    def write(tmp):
+        with open(tmp, "wb" if binary else "w", **({} if binary else {"encoding": "utf-8"})) as fh:
+            write_stream(fh)
+    atomic_write(path, write)
+
+
+def save_figure(fig, path, dpi=150, tight=True):
+    """Save a matplotlib figure atomically; the format follows the file extension."""
+    fmt = os.path.splitext(os.fspath(path))[1].lstrip(".").lower() or "png"
+    atomic_write(path, lambda tmp: fig.savefig(tmp, format=fmt, dpi=dpi,
+                                               bbox_inches="tight" if tight else None), "." + fmt)
