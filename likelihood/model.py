@@ -11,11 +11,13 @@ because A = b1 + v α(k) + γ2/k², B = γ1/k and γ1, γ2 are linear in (b_e, �
 Z = Σ_a x_a Z_a, every power spectrum is the quadratic form Σ_ab x_a x_b Re[Z_a Z_b^*] P_m, and the
 observation operator M (window, integral constraint, mode-averaged bins) is linear, so
 
-    model = Σ_{a≤b} c_ab x_a x_b T_ab + (ν² − 1) Σ_{a≤b} c_ab x_a x_b O_ab + (A_sn − s)/n̄ S,
+    model = Σ_{a≤b} c_ab x_a x_b T_ab + (ν² − 1) Σ_{a≤b} c_ab x_a x_b O_ab + A_sn S/n̄ − s e₀/n̄,
 
 with T_ab = M[multipoles of Z_a Z_b^* P_m] (symmetrised), O_ab the observer-term templates
-(the estimator applied to the constrained mean field is quadratic in the kernel), S the
-shot-noise template, c_ab = 1. With the data whitened by the Cholesky factor L of the covariance
+(the estimator applied to the constrained mean field is quadratic in the kernel), S the response
+to white noise (1 in the monopole minus the integral-constraint term W²_ℓ(k)/W²_0(0)), e₀ the
+monopole indicator and s = 1 when the data had the flat Poisson 1/n̄ subtracted from the
+monopole (the usual estimator; the constant −s e₀/n̄ is moved to the data side), c_ab = 1. With the data whitened by the Cholesky factor L of the covariance
 (C = L Lᵀ), χ² = |d_w|² − 2 c·g + cᵀ G c with g = W d_w, G = W Wᵀ, W = L⁻¹ T: an evaluation
 is a handful of tiny dot products. Only b_e and 𝒬 that are sampled get their own coefficient;
 fixed ones are folded into the constant kernel Z_0.
@@ -195,7 +197,11 @@ class Likelihood:
         self.dof = int(self.data.size - len(self.parameter_names))
         self._fixed_floats = {k: float(v[0]) for k, v in self._values({}).items()}
         self._chol_inv = np.linalg.inv(self.chol)   # tiny matrix; matmul beats repeated solves
-        self._d_w = self._chol_inv @ self.data
+        # the estimator subtracts a flat 1/n̄ from the monopole (shot_noise_subtracted); the model
+        # carries A_sn × (noise response incl. the integral constraint) − that flat term, whose
+        # constant part is moved to the data side here so the fast path stays a quadratic form
+        self._sn_shift = self.sn_sub * self._monopole_indicator()[self.mask] / self.nbar
+        self._d_w = self._chol_inv @ (self.data + self._sn_shift)
         self._dd = float(self._d_w @ self._d_w)
         self._templates = self._build_templates(self.cosmo)
 
@@ -237,6 +243,13 @@ class Likelihood:
                           f"{tr.PLANE_PARALLEL_KCHI:g} at z = {self.z:g}: the plane-parallel projection "
                           "terms miss wide-angle corrections of order 1/(k chi) there",
                           tr.PlaneParallelWarning, stacklevel=3)
+        if self.window is not None and self.operator.ic == "none" and \
+                any(e in self.effects for e in ("fnl", "potential")):
+            warnings.warn("integral_constraint: none with f_NL or potential terms: the window-convolved "
+                          "power of these k^-3..k^-4 terms is infrared divergent without the "
+                          "data-estimated mean, so the result depends on the lowest k of the theory "
+                          "grid (1e-6 h/Mpc, a stand-in for the horizon); use integral_constraint: global",
+                          UserWarning, stacklevel=3)
         if k_used[-1] > 0.1:
             warnings.warn(f"data k_max = {k_used[-1]:.3g} h/Mpc: the model is linear theory "
                           "(no non-linear damping or loop corrections); keep k_max <~ 0.1 h/Mpc at z ~ 1",
@@ -282,7 +295,10 @@ class Likelihood:
     def _make_mock(self, cov_full):
         m = self.config["data"]["mock"]
         truth = {k: np.atleast_1d(v) for k, v in self.fiducial.items()}
-        mean = self._model_full(truth, direct=True)[0]
+        # cosmological values in the mock truth define the mock's cosmology too
+        keys = [k for k in COSMO_PARAMS if k in m["truth"] or k in self.cosmo_free
+                or k in self.config["fixed"]]
+        mean = self._model_full(truth, direct=True, cosmo_keys=keys)[0]
         if m["noise"]:
             rng = np.random.default_rng(m["seed"])
             mean = mean + np.linalg.cholesky(cov_full) @ rng.standard_normal(mean.size)
@@ -366,6 +382,10 @@ class Likelihood:
         return dict(pairs=np.array(pairs), n_pairs=len(pairs), pair_list=pairs, T=T, W=W, G=G, g=g,
                     sigma8=cosmo.sigma8, growth=cosmo.growth_factor(self.z) / cosmo.growth_factor(0.0))
 
+    def _monopole_indicator(self):
+        """1 on the ℓ = 0 entries of the full data vector, 0 elsewhere."""
+        return np.repeat(np.array([l == 0 for l in self.data_full.ells], float), self.data_full.n_bins)
+
     def _shot_template(self):
         """Model response to a unit white-noise monopole (constant in k), including the
         integral-constraint subtraction when a window is present."""
@@ -381,7 +401,7 @@ class Likelihood:
         out[:, :npair] = c
         if self.observer is not None:
             out[:, npair:2 * npair] = c * (np.reshape(values["nu_obs"], (-1, 1)) ** 2 - 1.0)
-        out[:, -1] = values["shot_noise"] - self.sn_sub
+        out[:, -1] = values["shot_noise"]
         return out
 
     # --- evaluation -----------------------------------------------------------------------------
@@ -436,7 +456,7 @@ class Likelihood:
         if self.observer is not None:
             w = vals["nu_obs"] ** 2 - 1.0
             c += [w * ci for ci in c]
-        c.append(vals["shot_noise"] - self.sn_sub)
+        c.append(vals["shot_noise"])
         c = np.array(c)
         chi2 = self._dd - 2.0 * (c @ tpl["g"]) + c @ (tpl["G"] @ c)
         res = lp + float(self._loglike_from_chi2(chi2))
@@ -482,18 +502,20 @@ class Likelihood:
         vals = self._values(params)
         return float(self._loglike_from_chi2(self._chi2(vals))[0])
 
-    def _model_full(self, values, direct=False):
-        """Full (unmasked) model vector(s) by the direct path."""
+    def _model_full(self, values, direct=False, cosmo_keys=None):
+        """Full (unmasked) model vector(s) by the direct path. The cosmology takes the values of
+        ``cosmo_keys`` (default: the sampled and fixed cosmological parameters) from ``values``."""
         with warnings.catch_warnings():
             # the fine theory grid reaches k chi << 1 by construction; the data range is
             # checked once in __init__ (_warn_regime)
             warnings.simplefilter("ignore", tr.PlaneParallelWarning)
-            return self._model_full_quiet(values)
+            return self._model_full_quiet(values, cosmo_keys)
 
-    def _model_full_quiet(self, values):
+    def _model_full_quiet(self, values, cosmo_keys=None):
+        if cosmo_keys is None:
+            cosmo_keys = [k for k in COSMO_PARAMS if k in self.cosmo_free or k in self.config["fixed"]]
         cosmo = make_cosmology(self.config, {k: float(np.atleast_1d(values[k])[0])
-                                             for k in COSMO_PARAMS if k in values and
-                                             (k in self.cosmo_free or k in self.config["fixed"])})
+                                             for k in cosmo_keys if k in values})
         out = []
         n = len(np.atleast_1d(values["b1"]))
         for i in range(n):
@@ -501,8 +523,9 @@ class Likelihood:
             pl = tr.multipoles(cosmo, self.z, self.k_theory, t, effects=self.effects,
                                ells=self.ells_theory, shot_noise=False)
             model = self.operator(pl)
-            amp = float(np.atleast_1d(values["shot_noise"])[i]) - self.sn_sub
-            model = model + amp * white_noise_response(self.operator) / self.nbar
+            amp = float(np.atleast_1d(values["shot_noise"])[i])
+            model = model + (amp * white_noise_response(self.operator)
+                             - self.sn_sub * self._monopole_indicator()) / self.nbar
             if self.observer is not None:
                 nu = float(np.atleast_1d(values["nu_obs"])[i])
                 kern = tr.kernel(cosmo, self.z, self.k_theory, t, effects=self.effects)
@@ -519,7 +542,7 @@ class Likelihood:
         c = self._design(vals, tpl)
         full_T = np.vstack([tpl["T"]] + ([self.observer_templates] if self.observer is not None else [])
                            + [self._shot_template()[None]])
-        return (c @ full_T)[0]
+        return (c @ full_T)[0] - self._sn_shift
 
     @property
     def observer_templates(self):
@@ -567,17 +590,30 @@ class Likelihood:
         vals = self._theta_values(theta)
         names = self.derived_names
         out = np.empty((theta.shape[0], len(names)))
-        if "fnl_eff" in names:
-            cache = {}
-            for i in range(theta.shape[0]):
+        cosmos = {}
+
+        def cosmo_of(i):
+            """The sample's own cosmology when cosmological parameters are sampled."""
+            if not self.cosmo_free:
+                return self.cosmo
+            key = tuple(float(vals[k][i]) for k in self.cosmo_free)
+            if key not in cosmos:
+                cosmos[key] = make_cosmology(self.config, dict(zip(self.cosmo_free, key)))
+            return cosmos[key]
+
+        cache = {}
+        for i in range(theta.shape[0]):
+            cosmo = cosmo_of(i)
+            if "fnl_eff" in names:
                 t = self._tracer(vals, i)
-                key = (t.b1, t.b_e, t.s)
+                key = (id(cosmo), t.b1, t.b_e, t.s)
                 if key not in cache:
-                    cache[key] = tr.effective_fnl(self.cosmo, self.z, t, effects=self.effects)
+                    cache[key] = tr.effective_fnl(cosmo, self.z, t, effects=self.effects)
                 out[i, names.index("fnl_eff")] = cache[key]
-        if "b1_sigma8" in names:
-            tpl = self._templates
-            out[:, names.index("b1_sigma8")] = vals["b1"] * tpl["sigma8"] * tpl["growth"]
+            if "b1_sigma8" in names:
+                b1 = vals["b1"][i] if np.ndim(vals["b1"]) else vals["b1"]
+                out[i, names.index("b1_sigma8")] = (b1 * cosmo.sigma8 * cosmo.growth_factor(self.z)
+                                                    / cosmo.growth_factor(0.0))
         return out
 
     def observables(self):

@@ -413,7 +413,10 @@ class _MeshPath:
         self.edges = bins.edges
 
     def quadratic(self, r, m):
-        field = np.interp(np.log(np.maximum(self.radius, r[0])), np.log(r), m)
+        # the observer's own cell (r = 0) takes m at half a cell: m is flat there, while the
+        # FFTLog grid's first points (r ~ 1/k_max) carry edge ringing
+        rr = np.maximum(self.radius, max(r[0], 0.5 * self.mesh.cell))
+        field = np.interp(np.log(rr), np.log(r), m)
         dv = self.sim.measure_multipoles(self.mesh, field, self.mask, self.edges, self.ells,
                                          subtract_mean=self.ic == "global")
         return dv.values.ravel()
