@@ -97,6 +97,10 @@ def _ells(val, where):
         raise ConfigError(f"{where}: expected a list of multipoles like [0, 2], got {val!r}")
     if any(v < 0 or v > 4 for v in val) or len(set(val)) != len(val):
         raise ConfigError(f"{where}: multipoles must be distinct integers in 0..4, got {val}")
+    if any(v % 2 for v in val):
+        raise ConfigError(f"{where}: odd multipoles {[v for v in val if v % 2]} need the cross spectrum "
+                          "of two tracers, which the likelihood does not fit yet; use even ones "
+                          "(0, 2, 4)")
     return sorted(val)
 
 

@@ -53,9 +53,7 @@ Validity. Linear response: the shift is accurate while Δθ is small compared to
 shift degrades once f_NL (b1 − p) α(k_min) is no longer small next to b1 over the range
 fiducial ± (σ + |Δ|); when |Δf_NL| ≳ σ(f_NL), confirm with ``--check-mcmc``. The model itself is
 linear theory with a plane-parallel kernel and local projection terms only (see
-:mod:`likelihood.tracer`); the Fisher matrix inherits those limits. (Caveat: a parameter fixed
-to a value different from ``data.mock.truth`` is read differently by the fast and the direct
-model paths of :mod:`likelihood.model` at the time of writing; avoid that combination.)
+:mod:`likelihood.tracer`); the Fisher matrix inherits those limits.
 
 Scans
 -----

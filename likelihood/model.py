@@ -658,8 +658,9 @@ class Likelihood:
                  + (f"; {self.n_mocks} mocks, "
                     + ("Sellentin-Heavens t-likelihood" if self.t_likelihood else
                        f"Hartlap factor {self.precision_scale:.3f}")
-                    + f"; Percival m1 = {self.percival_m1:.3f} (inflate parameter errors by "
-                      f"{np.sqrt(self.percival_m1):.3f})" if self.mock_cov is not None else ""),
+                    + ("" if self.t_likelihood else
+                       f"; Percival m1 = {self.percival_m1:.3f} (inflate parameter errors by "
+                       f"{np.sqrt(self.percival_m1):.3f})") if self.mock_cov is not None else ""),
                  "sampled parameters:"]
         for p in self.params.free:
             lines.append(f"  {p.name:<10s} {p.prior.describe():<30s} start {p.start:g}")
