@@ -57,6 +57,15 @@ def _rebuild(run_dir):
 
 
 def cmd_run(args):
+    pool = _mpi_pool() if args.mpi else None   # worker ranks serve the pool and exit there
+    try:
+        return _run(args, pool)
+    finally:
+        if pool is not None:
+            pool.close()
+
+
+def _run(args, pool):
     from .config import load_config
     from .model import build
     from .sampler import run_sampler
@@ -69,19 +78,15 @@ def cmd_run(args):
         raise ErgofitError(f"{args.config}: sampling.walkers must be at least {lik.n_walkers_min()} "
                            f"(twice the {len(lik.parameter_names)} sampled parameters)")
     print(lik.describe())
-    pool = None
-    if args.mpi:
-        pool = _mpi_pool()
-    elif args.processes and args.processes > 1:
+    if pool is None and args.processes and args.processes > 1:
         import multiprocessing
         import signal
-        pool = multiprocessing.get_context("fork").Pool(
-            args.processes, initializer=signal.signal, initargs=(signal.SIGINT, signal.SIG_IGN))
-    try:
+        with multiprocessing.get_context("fork").Pool(
+                args.processes, initializer=signal.signal,
+                initargs=(signal.SIGINT, signal.SIG_IGN)) as local_pool:
+            result = run_sampler(lik, settings, out, resume=args.resume, pool=local_pool)
+    else:
         result = run_sampler(lik, settings, out, resume=args.resume, pool=pool)
-    finally:
-        if pool is not None:
-            pool.close()
     cfg_copy = os.path.join(out, "config.yaml")
     if os.path.abspath(args.config) != os.path.abspath(cfg_copy):
         _write_config_copy(args.config, cfg_copy)
@@ -117,7 +122,11 @@ def _mpi_pool():
         from schwimmbad import MPIPool
     except ImportError:
         raise ErgofitError("--mpi needs the optional extra: pip install 'ergofit[mpi]'") from None
-    pool = MPIPool()
+    try:
+        pool = MPIPool()
+    except (ValueError, RuntimeError, OSError) as exc:
+        raise ErgofitError(f"--mpi: cannot start an MPI pool ({str(exc).splitlines()[0]}); "
+                           "run under mpiexec -n N with N >= 2") from None
     if not pool.is_master():
         pool.wait()
         sys.exit(0)

@@ -363,6 +363,7 @@ def validate(raw, src="<memory>", base_dir="."):
     _check_keys(raw, TOP, src)
     cfg = Config()
     cfg.path, cfg.base_dir = src, base_dir
+    cfg.raw = copy.deepcopy(raw)   # what validate() read: lets pool workers rebuild the model
     run = raw.get("run", os.path.splitext(os.path.basename(src))[0] or "run")
     cfg["run"] = _str(str(run), f"{src}: run")
     for name in SCHEMA:

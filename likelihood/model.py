@@ -556,6 +556,12 @@ class Likelihood:
         chi2 = float(r @ cho_solve((self.chol, True), r))
         return float(self._loglike_from_chi2(np.array([chi2]))[0])
 
+    def __reduce__(self):
+        """Pickle as "the model of this config": process/MPI pools send the config (a few kB)
+        and each worker rebuilds the likelihood once (window matrix from the disk cache)."""
+        cfg = self.config
+        return (_rebuild_in_worker, (cfg.raw, cfg.path, cfg.base_dir, self.config_hash))
+
     # --- helpers for the sampler/summary -------------------------------------------------------
     def n_walkers_min(self):
         return 2 * len(self.parameter_names)
@@ -667,6 +673,27 @@ class Likelihood:
         if self.params.fixed:
             lines.append("fixed: " + ", ".join(f"{k} = {v:g}" for k, v in self.params.fixed.items()))
         return "\n".join(lines)
+
+
+#: Per-process memo used only when a pickled Likelihood arrives in a pool worker (see
+#: ``Likelihood.__reduce__``): each worker rebuilds the model once from its config instead of
+#: receiving megabytes of matrices with every task.
+_WORKER_MODELS = {}
+
+
+def _rebuild_in_worker(raw, src, base_dir, config_hash):
+    from .config import validate
+    lik = _WORKER_MODELS.get(config_hash)
+    if lik is None:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")       # the master has shown them already
+            lik = Likelihood(validate(raw, src=src, base_dir=base_dir))
+        if lik.config_hash != config_hash:
+            raise DataError(f"{src}: the input files changed while the run was going "
+                            "(pool worker rebuilt a different model)")
+        _WORKER_MODELS.clear()
+        _WORKER_MODELS[config_hash] = lik
+    return lik
 
 
 def build(config):

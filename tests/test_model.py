@@ -179,3 +179,15 @@ def test_shot_noise_with_integral_constraint_matches_poisson_mocks(write_config)
     assert np.all(np.abs(z) < 4.5), z
     # the integral-constraint part is resolved: the first monopole bin is clearly below zero
     assert model[0, 0] < -4 * err[0, 0] and mean[0, 0] < -2 * err[0, 0]
+
+
+def test_pickles_as_its_config(write_config):
+    """Pools send the likelihood to workers: it pickles to its config (kB, not the matrices) and
+    the worker's rebuilt copy gives identical values."""
+    import pickle
+    lik = build(write_config())
+    blob = pickle.dumps(lik)
+    assert len(blob) < 20000
+    other = pickle.loads(blob)
+    th = lik.start + 0.01
+    assert other.log_prob(th) == lik.log_prob(th)
