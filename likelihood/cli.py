@@ -10,18 +10,12 @@ import sys
 import warnings
 
 from .errors import ErgofitError
-from .fileio import write_text
+from .fileio import ensure_folder, write_text
+from .pools import mpi_pool
 
 
 def _out_dir(path):
-    """Create (if needed) and check that an output folder is writable."""
-    try:
-        os.makedirs(path, exist_ok=True)
-    except OSError as exc:
-        raise ErgofitError(f"{path}: cannot create output folder ({exc.strerror})") from None
-    if not os.access(path, os.W_OK):
-        raise ErgofitError(f"{path}: output folder is not writable; choose another with output.folder")
-    return path
+    return ensure_folder(path, "choose another with output.folder or --out")
 
 
 def cmd_check(args):
@@ -57,7 +51,7 @@ def _rebuild(run_dir):
 
 
 def cmd_run(args):
-    pool = _mpi_pool() if args.mpi else None   # worker ranks serve the pool and exit there
+    pool = mpi_pool() if args.mpi else None   # worker ranks serve the pool and exit there
     try:
         return _run(args, pool)
     finally:
@@ -115,22 +109,6 @@ def _write_config_copy(src, dst):
         geo["randoms"] = os.path.abspath(cfg.resolve(geo["randoms"]))
     raw.setdefault("run", cfg.run_name)
     write_text(dst, yaml.safe_dump(raw, sort_keys=False))
-
-
-def _mpi_pool():
-    try:
-        from schwimmbad import MPIPool
-    except ImportError:
-        raise ErgofitError("--mpi needs the optional extra: pip install 'ergofit[mpi]'") from None
-    try:
-        pool = MPIPool()
-    except (ValueError, RuntimeError, OSError) as exc:
-        raise ErgofitError(f"--mpi: cannot start an MPI pool ({str(exc).splitlines()[0]}); "
-                           "run under mpiexec -n N with N >= 2") from None
-    if not pool.is_master():
-        pool.wait()
-        sys.exit(0)
-    return pool
 
 
 def cmd_summarize(args):

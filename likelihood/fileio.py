@@ -45,3 +45,15 @@ def save_figure(fig, path, dpi=150, tight=True):
     fmt = os.path.splitext(os.fspath(path))[1].lstrip(".").lower() or "png"
     atomic_write(path, lambda tmp: fig.savefig(tmp, format=fmt, dpi=dpi,
                                                bbox_inches="tight" if tight else None), "." + fmt)
+
+
+def ensure_folder(path, hint="choose another output folder"):
+    """Create ``path`` if needed and check it is writable; one-line ErgofitError otherwise."""
+    from .errors import ErgofitError
+    try:
+        os.makedirs(path, exist_ok=True)
+    except OSError as exc:
+        raise ErgofitError(f"{path}: cannot create output folder ({exc.strerror})") from None
+    if not os.access(path, os.W_OK):
+        raise ErgofitError(f"{path}: output folder is not writable; {hint}")
+    return path

@@ -98,7 +98,8 @@ import numpy as np
 from scipy.linalg import solve_triangular
 
 from .config import FORECAST_NEGLECT, SCHEMA, Config, load_config, validate
-from .fileio import open_atomic, write_text
+from .fileio import ensure_folder, open_atomic, write_text
+from .pools import mpi_pool
 from .errors import ConfigError, ErgofitError
 from .params import KNOWN
 
@@ -1173,12 +1174,7 @@ def run_forecast(config, out_dir=None, check_mcmc=False, pool=None, scan=True):
     """
     cfg = config if isinstance(config, Config) else load_config(config)
     out_dir = out_dir or os.path.join(cfg.output_folder, "forecast")
-    try:
-        os.makedirs(out_dir, exist_ok=True)
-    except OSError as exc:
-        raise ErgofitError(f"{out_dir}: cannot create the output folder ({exc.strerror})") from None
-    if not os.access(out_dir, os.W_OK):
-        raise ErgofitError(f"{out_dir}: output folder is not writable; choose another with --out")
+    ensure_folder(out_dir, "choose another with --out")
     fs = forecast_settings(cfg)
     bias = bias_forecast(cfg)
     scan_res = None
@@ -1215,23 +1211,6 @@ def run_forecast(config, out_dir=None, check_mcmc=False, pool=None, scan=True):
             "files": [os.path.join(out_dir, f) for f in files]}
 
 
-def _mpi_pool():
-    try:
-        from schwimmbad import MPIPool
-    except ImportError:
-        raise ErgofitError("--mpi needs the optional extra (mpi4py, schwimmbad): "
-                           "pip install 'ergofit[mpi]'") from None
-    try:
-        pool = MPIPool()
-    except (ValueError, RuntimeError, ImportError, OSError) as exc:
-        raise ErgofitError(f"--mpi: cannot start an MPI pool ({str(exc).splitlines()[0]}); run "
-                           "under mpiexec -n N with N >= 2") from None
-    if not pool.is_master():
-        pool.wait()
-        raise SystemExit(0)
-    return pool
-
-
 def forecast_cli(args):
     """``ergofit forecast CONFIG [--out DIR] [--check-mcmc] [--mpi] [--processes N]``."""
     processes = int(getattr(args, "processes", 0) or 0)
@@ -1240,7 +1219,7 @@ def forecast_cli(args):
     cfg = load_config(args.config)
     pool = None
     if getattr(args, "mpi", False):
-        pool = _mpi_pool()
+        pool = mpi_pool()
     elif processes > 1 and forecast_settings(cfg)["scan"]:
         import multiprocessing
         pool = multiprocessing.get_context("fork").Pool(processes)
