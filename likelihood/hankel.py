@@ -82,6 +82,23 @@ def _check_ell(ell):
     return int(ell)
 
 
+def _signed_fht(x, y, ell, offset, bias, names):
+    """Shared body of both directions: y(x) on a log grid → (x', sign_ℓ x'^(-3/2) FHT[y x^(3/2)])
+    on the conjugate grid x' = e^offset / x (reversed); the 2π^(3/2) factor is the caller's."""
+    ell = _check_ell(ell)
+    x = np.asarray(x, dtype=float)
+    dln = log_step(x, names[1])
+    y = np.asarray(y, dtype=float)
+    if y.shape[-1] != x.size:
+        raise ErgofitError(f"{names[0]}: {names[2]} has {y.shape[-1]} points along its last axis, "
+                           f"{names[1]} has {x.size}")
+    if offset is None:
+        offset = fftlog_offset(dln, ell)
+    xo = conjugate_grid(x, offset)
+    a = _fft.fht(y * x ** 1.5, dln, ell + 0.5, offset=offset, bias=bias)
+    return xo, ell_sign(ell) * a * xo ** -1.5
+
+
 def xi_from_pk(k, pk, ell, offset=None, bias=0.0):
     """Correlation multipole ξ_ℓ(s) from the power multipole P_ℓ(k) (odd ℓ: input Π_ℓ).
 
@@ -97,18 +114,8 @@ def xi_from_pk(k, pk, ell, offset=None, bias=0.0):
     s : (n,) log-spaced separations [Mpc/h], s_j = exp(offset) / k_{n-1-j}
     xi : (..., n) real ξ_ℓ(s) (dimensionless)
     """
-    ell = _check_ell(ell)
-    k = np.asarray(k, dtype=float)
-    dln = log_step(k, "k")
-    pk = np.asarray(pk, dtype=float)
-    if pk.shape[-1] != k.size:
-        raise ErgofitError(f"xi_from_pk: pk has {pk.shape[-1]} points along its last axis, "
-                           f"k has {k.size}")
-    if offset is None:
-        offset = fftlog_offset(dln, ell)
-    s = conjugate_grid(k, offset)
-    a = _fft.fht(pk * k ** 1.5, dln, ell + 0.5, offset=offset, bias=bias)
-    return s, ell_sign(ell) * a * s ** -1.5 / _TWO_PI_32
+    s, a = _signed_fht(k, pk, ell, offset, bias, ("xi_from_pk", "k", "pk"))
+    return s, a / _TWO_PI_32
 
 
 def pk_from_xi(s, xi, ell, offset=None, bias=0.0):
@@ -128,15 +135,5 @@ def pk_from_xi(s, xi, ell, offset=None, bias=0.0):
     k : (n,) log-spaced wavenumbers [h/Mpc], k_j = exp(offset) / s_{n-1-j}
     pk : (..., n) real P_ℓ(k) (Π_ℓ for odd ℓ) [(Mpc/h)^3]
     """
-    ell = _check_ell(ell)
-    s = np.asarray(s, dtype=float)
-    dln = log_step(s, "s")
-    xi = np.asarray(xi, dtype=float)
-    if xi.shape[-1] != s.size:
-        raise ErgofitError(f"pk_from_xi: xi has {xi.shape[-1]} points along its last axis, "
-                           f"s has {s.size}")
-    if offset is None:
-        offset = fftlog_offset(dln, ell)
-    k = conjugate_grid(s, offset)
-    a = _fft.fht(xi * s ** 1.5, dln, ell + 0.5, offset=offset, bias=bias)
-    return k, ell_sign(ell) * a * k ** -1.5 * _TWO_PI_32
+    k, a = _signed_fht(s, xi, ell, offset, bias, ("pk_from_xi", "s", "xi"))
+    return k, a * _TWO_PI_32
