@@ -273,12 +273,7 @@ def _constraints_markdown(summary: dict) -> str:
               "|:--|:--|:--|:--|:--|"]
     for name, e in summary["parameters"].items():
         label = f"${e['label']}$" + (" (derived)" if e["derived"] else "")
-        if e["limit_type68"] == "two-sided":
-            m, up, down = _central(e)
-            central = f"{m} ± {up}" if up == down else f"{m} +{up} / -{down}"
-        else:
-            central = _one_sided(e, "68", tex=False)
-        lines.append(f"| {label} `{name}` | {central} | {_interval(e, '68', False)} | "
+        lines.append(f"| {label} `{name}` | {_central_text(e, tex=False)} | {_interval(e, '68', False)} | "
                      f"{_interval(e, '95', False)} | {_best(e)} |")
     lines.append("")
     for note in summary["notes"]:
@@ -287,6 +282,16 @@ def _constraints_markdown(summary: dict) -> str:
     lines.append("Limits: getdist marginal limits at 68% and 95% credibility; best fit: "
                  "highest-posterior sample of the chain.")
     return "\n".join(lines) + "\n"
+
+
+def _central_text(e: dict, tex: bool) -> str:
+    """Mean with its 68% limits (Markdown or LaTeX), or the one-sided limit."""
+    if e["limit_type68"] != "two-sided":
+        return _one_sided(e, "68", tex=tex)
+    m, up, down = _central(e)
+    if up == down:
+        return rf"{m} \pm {up}" if tex else f"{m} ± {up}"
+    return rf"{m}^{{+{up}}}_{{-{down}}}" if tex else f"{m} +{up} / -{down}"
 
 
 def _constraints_tex(summary: dict) -> str:
@@ -300,12 +305,7 @@ def _constraints_tex(summary: dict) -> str:
         r"\hline",
     ]
     for e in summary["parameters"].values():
-        if e["limit_type68"] == "two-sided":
-            m, up, down = _central(e)
-            central = rf"{m} \pm {up}" if up == down else rf"{m}^{{+{up}}}_{{-{down}}}"
-        else:
-            central = _one_sided(e, "68", tex=True)
-        lines.append(rf"${e['label']}$ & ${central}$ & ${_interval(e, '95', True)}$ & "
+        lines.append(rf"${e['label']}$ & ${_central_text(e, tex=True)}$ & ${_interval(e, '95', True)}$ & "
                      rf"${_best(e)}$ \\")
     lines += [r"\hline", r"\end{tabular}"]
     return "\n".join(lines) + "\n"
