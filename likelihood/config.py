@@ -336,8 +336,10 @@ class Config(dict):
     def hash(self):
         """Hash of everything that defines the posterior: the settings and the *contents* of the
         input files (so a moved or re-pathed data file keeps its hash, an edited one does not).
-        Forecast studies and the output place stay out."""
-        core = {k: copy.deepcopy(v) for k, v in self.items() if k not in ("forecast", "output", "run")}
+        Sampler settings (more steps for a resumed run), forecast studies and the output place
+        stay out: they do not change the posterior."""
+        core = {k: copy.deepcopy(v) for k, v in self.items()
+                if k not in ("forecast", "output", "run", "sampling")}
         for sec, key in self.INPUT_FILES:
             if key in core.get(sec, {}):
                 core[sec][key] = self._file_digest(core[sec][key])

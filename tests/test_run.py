@@ -85,3 +85,14 @@ def test_mpi_pool_run(write_config, tmp_path):
     summ = json.loads((out / "summary.json").read_text())
     assert summ["n_steps"] == 100
     assert np.isfinite(summ["parameters"]["fnl"]["mean"])
+
+
+def test_resume_with_more_steps(write_config, tmp_path):
+    """The not-converged advice works: raise sampling.max_steps and resume the same chain."""
+    out = tmp_path / "run"
+    short = dict(SMALL, sampling=dict(SMALL["sampling"], max_steps=150))
+    assert main(["run", write_config(short), "--out", str(out), "--quiet"]) == 0
+    longer = dict(SMALL, sampling=dict(SMALL["sampling"], max_steps=300))
+    assert main(["run", write_config(longer, "longer.yaml"), "--out", str(out), "--resume", "--quiet"]) == 0
+    summ = json.loads((out / "summary.json").read_text())
+    assert summ["n_steps"] == 300
