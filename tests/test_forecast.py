@@ -556,7 +556,7 @@ def test_scan_over_mpi_ranks_matches_serial(tmp_path):
                      forecast="  neglect: [doppler, potential]\n"
                               "  scan: {quantity: b_e, values: [-2.0, 4.0]}")
     out = tmp_path / "mpi"
-    proc = subprocess.run(["mpiexec", "-n", "3", sys.executable, "-m", "likelihood.cli", "forecast",
+    proc = subprocess.run(["mpiexec", "-n", "2", sys.executable, "-m", "likelihood.cli", "forecast",
                            path, "--out", str(out), "--mpi"], capture_output=True, text=True,
                           timeout=300, cwd=os.path.join(HERE, os.pardir))
     assert proc.returncode == 0, proc.stderr
