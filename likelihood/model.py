@@ -171,6 +171,7 @@ class Likelihood:
         self.operator = WindowMatrix(self.k_theory, self.ells_theory, self.bins, self.data_full.ells,
                                      window=self.window, ic=cfg["effects"]["integral_constraint"]
                                      if self.window is not None else "none")
+        self._white_noise = white_noise_response(self.operator)   # fixed by the operator alone
         d = cfg["data"]
         self.mask = self.data_full.mask(self.ells, d.get("k_min"), d.get("k_max"))
         self.observer = self._make_observer()
@@ -370,26 +371,21 @@ class Likelihood:
             if a != b:
                 pab = pab + tr.pair_multipoles(basis[b][1], basis[a][1], pm, self.ells_theory)
             rows.append(self.operator(pab)[self.mask])
-        T = np.array(rows)
-        extra = []
+        stack = [np.array(rows)]
         if self.observer is not None:
-            O = self.observer.templates(cosmo, self.z, self.k_theory, [z for _, z in basis], pairs)[:, self.mask]
-            extra.append(O)
-        S = self._shot_template()
-        W = np.vstack([T] + extra + [S[None]]) @ self._chol_inv.T
+            stack.append(self.observer.templates(cosmo, self.z, self.k_theory, [z for _, z in basis],
+                                                 pairs)[:, self.mask])
+        stack.append(self._white_noise[self.mask][None] / self.nbar)
+        M = np.vstack(stack)                       # unwhitened templates, rows as in _design
+        W = M @ self._chol_inv.T
         G = W @ W.T
         g = W @ self._d_w
-        return dict(pairs=np.array(pairs), n_pairs=len(pairs), pair_list=pairs, T=T, W=W, G=G, g=g,
+        return dict(pairs=np.array(pairs), n_pairs=len(pairs), pair_list=pairs, M=M, W=W, G=G, g=g,
                     sigma8=cosmo.sigma8, growth=cosmo.growth_factor(self.z) / cosmo.growth_factor(0.0))
 
     def _monopole_indicator(self):
         """1 on the ℓ = 0 entries of the full data vector, 0 elsewhere."""
         return np.repeat(np.array([l == 0 for l in self.data_full.ells], float), self.data_full.n_bins)
-
-    def _shot_template(self):
-        """Model response to a unit white-noise monopole (constant in k), including the
-        integral-constraint subtraction when a window is present."""
-        return white_noise_response(self.operator)[self.mask] / self.nbar
 
     def _design(self, values, tpl):
         """(n, n_templates) coefficients multiplying the whitened templates."""
@@ -524,7 +520,7 @@ class Likelihood:
                                ells=self.ells_theory, shot_noise=False)
             model = self.operator(pl)
             amp = float(np.atleast_1d(values["shot_noise"])[i])
-            model = model + (amp * white_noise_response(self.operator)
+            model = model + (amp * self._white_noise
                              - self.sn_sub * self._monopole_indicator()) / self.nbar
             if self.observer is not None:
                 nu = float(np.atleast_1d(values["nu_obs"])[i])
@@ -539,16 +535,7 @@ class Likelihood:
         if direct:
             return self._model_full(vals)[0][self.mask]
         tpl = self._templates
-        c = self._design(vals, tpl)
-        full_T = np.vstack([tpl["T"]] + ([self.observer_templates] if self.observer is not None else [])
-                           + [self._shot_template()[None]])
-        return (c @ full_T)[0] - self._sn_shift
-
-    @property
-    def observer_templates(self):
-        basis = self._basis(self.cosmo, self.k_theory)
-        return self.observer.templates(self.cosmo, self.z, self.k_theory, [z for _, z in basis],
-                                       [tuple(p) for p in self._templates["pairs"]])[:, self.mask]
+        return (self._design(vals, tpl) @ tpl["M"])[0] - self._sn_shift
 
     def log_likelihood_direct(self, params):
         """Log likelihood by full recomputation (reference for the fast path)."""

@@ -121,8 +121,7 @@ class Parameter:
 class ParameterSet:
     """Ordered sampled parameters plus fixed values of all the others.
 
-    ``values(theta)`` maps an (n, n_dim) array to a dict name -> (n,) array over every known
-    parameter (fixed ones broadcast), which is what the model consumes.
+    The model maps theta to parameter values itself (fixed and fiducial values included).
     """
 
     def __init__(self, free, fixed):
@@ -172,14 +171,6 @@ class ParameterSet:
         else:
             lp = np.zeros(theta.shape[0])
         return np.where(inside, lp, -np.inf)
-
-    def values(self, theta):
-        """Dict name -> (n,) array for sampled parameters and float for fixed ones."""
-        theta = np.atleast_2d(np.asarray(theta, float))
-        out = {name: float(v) for name, v in self.fixed.items()}
-        for i, p in enumerate(self.free):
-            out[p.name] = theta[:, i]
-        return out
 
     def is_free(self, name):
         return name in self.names
