@@ -710,7 +710,8 @@ def bias_forecast(config, neglect=None, parameters=None, priors=None, step_rtol=
                            f"the truth model {truth.data.size}; they must share the data vector")
     with _collect(notes):
         fisher = likelihood_fisher(analysis, parameters, priors, step_rtol)
-        mu_t = truth.model_vector(dict(truth.fiducial), direct=True)
+        mu_t = truth.model_vector({k: v for k, v in truth.fiducial.items()
+                                      if k in truth.varied_names}, direct=True)
         mu_a = analysis.model_vector({n: analysis.fiducial[n] for n in fisher.names}, direct=True)
         delta = fisher.bias(mu_t - mu_a)
         chi2_t, chi2_r = fisher.chi2_of(mu_t - mu_a)

@@ -482,15 +482,40 @@ class Likelihood:
             vals[name] = theta[:, i]
         return vals
 
+    @property
+    def varied_names(self):
+        """Parameters a call to ``log_likelihood``/``model_vector`` may set: the sampled ones plus
+        those that enter the fast path's coefficients whether sampled or not (b1, shot_noise,
+        f_NL when its effect is on, ν when the observer term is on)."""
+        names = set(self.parameter_names) | {"b1", "shot_noise"}
+        if "fnl" in self.effects:
+            names.add("fnl")
+        if self.observer is not None:
+            names.add("nu_obs")
+        return names
+
     def _values(self, params):
+        """Parameter arrays for a dict of values; the others at their fixed/fiducial values.
+
+        A parameter this likelihood cannot vary (a fixed b_e or s is folded into the templates, a
+        cosmological parameter that is not sampled fixes the templates' cosmology) is refused by
+        name unless it equals the value held, so no value is ever silently dropped.
+        """
         vals = {k: np.atleast_1d(float(v)) for k, v in self.fiducial.items()}
         for k in self.params.fixed:
             vals[k] = np.atleast_1d(float(self.params.fixed[k]))
+        varied = self.varied_names
         for k, v in params.items():
             if k not in KNOWN:
                 from .params import suggest
                 raise ConfigError(f"unknown parameter '{k}'{suggest(k, KNOWN)}")
-            vals[k] = np.atleast_1d(float(v))
+            x = np.atleast_1d(np.asarray(v, float))
+            if k not in varied and not np.all(x == self._fixed_floats[k]):
+                why = {"fnl": " (effects.fnl is off)", "nu_obs": " (effects.observer is off)"}.get(
+                    k, f"; sample it (parameters.{k}) to vary it")
+                raise ConfigError(f"parameter '{k}' = {float(x[0]):g} cannot be varied by this "
+                                  f"likelihood: it is held at {self._fixed_floats[k]:g}{why}")
+            vals[k] = x
         return vals
 
     def log_likelihood(self, params):

@@ -191,3 +191,35 @@ def test_pickles_as_its_config(write_config):
     other = pickle.loads(blob)
     th = lik.start + 0.01
     assert other.log_prob(th) == lik.log_prob(th)
+
+
+@pytest.mark.parametrize("name, value", [("b_e", 1e3), ("s", 5.0), ("h", 0.7),
+                                         ("omega_cdm", 0.13), ("sigma8", 0.9)])
+def test_parameter_that_cannot_vary_is_refused(write_config, name, value):
+    """A value the fast path would fold away (fixed b_e, s) or that fixes the templates'
+    cosmology is refused by name, by every evaluation path, never silently dropped (issue 15)."""
+    lik = build(write_config())
+    for call in (lik.log_likelihood, lik.log_likelihood_direct, lik.model_vector):
+        with pytest.raises(ConfigError, match=f"'{name}' = .* cannot be varied"):
+            call({name: value})
+    # the value the likelihood holds is accepted and changes nothing
+    held = lik._fixed_floats[name]
+    assert lik.log_likelihood({name: held}) == lik.log_likelihood({})
+
+
+def test_sampled_b_e_is_honoured_by_both_paths(write_config):
+    """Once b_e is sampled both paths vary it and agree (fast = direct to 1e-10, model.py contract)."""
+    lik = build(write_config({"parameters": {"b1": {"flat": [0.5, 5.0], "start": 2.0},
+                                             "b_e": {"flat": [-2e3, 2e3], "start": 0.5}}}))
+    d = {"b1": 2.0, "b_e": 1e3}
+    assert lik.log_likelihood(d) == pytest.approx(lik.log_likelihood_direct(d), rel=1e-10)
+    assert lik.log_likelihood(d) < lik.log_likelihood({"b1": 2.0, "b_e": 0.5}) - 1e3
+
+
+def test_fnl_and_nu_refused_when_their_effect_is_off(write_config):
+    lik = build(write_config({"effects": {"fnl": False},
+                              "parameters": {"b1": {"flat": [0.5, 5.0], "start": 2.0}}}))
+    with pytest.raises(ConfigError, match="effects.fnl is off"):
+        lik.log_likelihood({"fnl": 10.0})
+    with pytest.raises(ConfigError, match="effects.observer is off"):
+        lik.log_likelihood({"nu_obs": 2.0})
