@@ -1,4 +1,4 @@
-"""Timings of likelihood.cosmology for a cosmology-varying likelihood call.
+"""Timings of likelihood.theory.cosmology for a cosmology-varying likelihood call.
 
 Run: python bench/cosmology.py
 Prints median wall-clock times (single thread) of: construction, power on 2000 log-spaced k,
@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from likelihood.cosmology import Cosmology  # noqa: E402
+from likelihood.theory.cosmology import Cosmology  # noqa: E402
 
 K = np.logspace(-4, 0, 2000)  # h/Mpc
 Z = 1.2

@@ -1,4 +1,4 @@
-"""Timings and accuracy figures of likelihood.forecast on the demo config (configs/fnl_bias.yaml).
+"""Timings and accuracy figures of likelihood.forecast.bias on the demo config (configs/fnl_bias.yaml).
 
 Run: python bench/forecast.py [--processes N]
 Prints: the wall-clock time of one bias forecast (two model builds + Fisher + shift), the

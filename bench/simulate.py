@@ -4,7 +4,7 @@
     python bench/simulate.py [--n 256] [--box 4000] [--float64]
 
 Target (project): <= 20 s on 2 cores for n = 256 in float32. The spectrum is the project's
-Planck 2018 cosmology at z = 1 if ``likelihood.cosmology`` is importable, otherwise an invented
+Planck 2018 cosmology at z = 1 if ``likelihood.theory.cosmology`` is importable, otherwise an invented
 smooth spectrum; the window is a spherical shell around the observer (r in [0.1, 0.45] L).
 """
 import argparse
@@ -17,7 +17,7 @@ import numpy as np
 
 sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), ".."))
 
-from likelihood.simulate import (Mesh, gaussian_field, measure_multipoles,  # noqa: E402
+from likelihood.simulate.mocks import (Mesh, gaussian_field, measure_multipoles,  # noqa: E402
                                  observed_field, poisson_sample)
 
 
@@ -31,7 +31,7 @@ def main():
 
     mesh = Mesh(args.n, args.box, dtype="float64" if args.float64 else "float32")
     try:
-        from likelihood.cosmology import Cosmology
+        from likelihood.theory.cosmology import Cosmology
         cosmo = Cosmology.from_preset("planck2018")
         pk = lambda k: cosmo.power(k, 1.0)  # noqa: E731
         f = float(cosmo.growth_rate(1.0))

@@ -5,11 +5,11 @@ Public Python surface: :class:`Cosmology` (background, growth, linear power, σ8
 YAML) and :func:`build` (the likelihood: ``log_prob(theta)`` vectorised over walkers,
 ``log_likelihood(params)``, ``parameter_names``).
 """
-from .config import load_config
-from .cosmology import Cosmology
+from .config.schema import load_config
+from .theory.cosmology import Cosmology
 from .errors import ConfigError, DataError, ErgofitError
-from .model import build
-from .tracer import PlaneParallelWarning, Tracer
+from .model.likelihood import build
+from .theory.tracer import PlaneParallelWarning, Tracer
 
 __version__ = "0.1.0"
 

@@ -33,7 +33,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import DataError
-from .fileio import open_atomic
+from .io import open_atomic
 
 DATA_HEADER = "# ergofit data vector"
 COV_HEADER = "# ergofit covariance"

@@ -85,7 +85,7 @@ def test_window_command_from_randoms(tmp_path, capsys):
     np.savetxt(rfile, x, header="columns: x y z", comments="# ")
     out = tmp_path / "win" / "window.txt"
     assert main(["window", str(rfile), "--out", str(out)]) == 0
-    from likelihood.window import WindowMultipoles
+    from likelihood.observation.window import WindowMultipoles
     wm = WindowMultipoles.load(out)
     s = np.array([100.0, 300.0, 500.0])
     ref = 1 - 3 * s / (4 * R) + s ** 3 / (16 * R ** 3)

@@ -1,4 +1,4 @@
-"""Tests of likelihood.cosmology against outside sources (named beside each check).
+"""Tests of likelihood.theory.cosmology against outside sources (named beside each check).
 
 Outside references used: astropy.cosmology (PyPI package ``astropy``), colossus (PyPI package
 ``colossus``, its Eisenstein & Hu 1998 transfer functions), scipy.integrate (independent
@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from scipy.integrate import quad, solve_ivp
 
-from likelihood.cosmology import (C_KMS, HUBBLE_DISTANCE, PRESETS, PUBLISHED_DERIVED,
+from likelihood.theory.cosmology import (C_KMS, HUBBLE_DISTANCE, PRESETS, PUBLISHED_DERIVED,
                                   Cosmology, eh98_parameters, eh98_sound_horizon_fit,
                                   tophat_window)
 from likelihood.errors import DataError, ErgofitError
@@ -72,7 +72,7 @@ def test_radiation_neglect_cost_in_docstring():
     # planck2018. Check with Omega_r h^2 = 2.4728e-5 (1 + 0.2271*3.046) (photons at 2.7255 K
     # plus massless neutrinos with rho_nu/rho_gamma = 0.2271 N_eff; common practice, values
     # from memory).
-    import likelihood.cosmology as mod
+    import likelihood.theory.cosmology as mod
     c = Cosmology.from_preset("planck2018")
     omega_r = 2.4728e-5 * (1 + 0.2271 * 3.046) / c.h**2
     z = 3.0

@@ -1,4 +1,4 @@
-"""Tests of likelihood.forecast: Fisher matrices, biases from neglected effects, scans, MCMC check.
+"""Tests of likelihood.forecast.bias: Fisher matrices, biases from neglected effects, scans, MCMC check.
 
 Each check names the outside source of its reference value.
 """
@@ -15,11 +15,11 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize
 
-from likelihood import forecast as fc
+from likelihood.forecast import bias as fc
 from likelihood.config import load_config, validate
 from likelihood.errors import ConfigError, ErgofitError
-from likelihood.model import build
-from likelihood.sampler import SamplerSettings
+from likelihood.model.likelihood import build
+from likelihood.sampling.driver import SamplerSettings
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 DEMO = os.path.join(HERE, os.pardir, "configs", "fnl_bias.yaml")
@@ -270,7 +270,7 @@ def test_neglected_observer_term_bias_scales_as_nu_squared_minus_one(tmp_path):
     """Hoffman & Ribak (1991) conditioning: the expected multipoles given the observer's value
     shift by (ν² − 1) E[m] (design document, observer section), so neglecting the observer term
     gives no bias at ν = 1 and a bias ∝ ν² − 1 otherwise: Δ(ν=3)/Δ(ν=2) = 8/3."""
-    pytest.importorskip("likelihood.observer")
+    pytest.importorskip("likelihood.observation.observer")
     deltas = {}
     for nu in (1.0, 2.0, 3.0):
         p = tmp_path / f"obs{nu}.yaml"
@@ -284,7 +284,7 @@ def test_neglected_observer_term_bias_scales_as_nu_squared_minus_one(tmp_path):
 def test_observer_nuisance_at_zero_is_prior_only(tmp_path):
     """At ν = 0 the model depends on ν only through ν² (zero first derivative): the Fisher
     error of nu_obs is its N(0, 1) prior width (common practice), with a warning, not an error."""
-    pytest.importorskip("likelihood.observer")
+    pytest.importorskip("likelihood.observation.observer")
     p = tmp_path / "obs0.yaml"
     p.write_text(OBS.format(nu=0.0, extra="  nu_obs: {gauss: [0, 1], start: 0.0}\n", neglect=""))
     res = fc.bias_forecast(str(p))

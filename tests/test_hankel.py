@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from likelihood.errors import ErgofitError
-from likelihood.hankel import ell_sign, pk_from_xi, xi_from_pk
+from likelihood.numerics.hankel import ell_sign, pk_from_xi, xi_from_pk
 
 
 def _gauss_transform(x_out, ell, a):

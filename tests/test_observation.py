@@ -9,9 +9,9 @@ from scipy import integrate
 from scipy.special import spherical_jn
 
 from likelihood.errors import ConfigError, DataError, ErgofitError
-from likelihood.observation import (KBins, WindowMatrix, coupling_coefficients, theory_k_grid,
+from likelihood.observation.matrix import (KBins, WindowMatrix, coupling_coefficients, theory_k_grid,
                                     wigner3j_zero_sq)
-from likelihood.window import SphereWindow
+from likelihood.observation.window import SphereWindow
 
 R = 1000.0
 V = 4.0 * np.pi * R ** 3 / 3.0
@@ -263,8 +263,8 @@ def test_odd_multipole_large_window_limit(grid):
 def _red_theory(k, fnl):
     """Kaiser + f_NL + projection multipoles (ℓ = 0, 2, 4): a spectrum rising as k^(n_s - 3..4)."""
     import warnings as _w
-    from likelihood import tracer as tr
-    from likelihood.cosmology import Cosmology
+    from likelihood.theory import tracer as tr
+    from likelihood.theory.cosmology import Cosmology
     cos = Cosmology.from_preset("planck2018")
     with _w.catch_warnings():
         _w.simplefilter("ignore")
@@ -295,7 +295,7 @@ def test_red_spectrum_against_direct_quadrature():
     convolution (ξ_ℓ by Simpson in ln k, the 3j coupling, P̂_ℓ by Simpson in s), < 0.1 %."""
     from scipy.integrate import simpson
     from scipy.special import spherical_jn
-    from likelihood.observation import coupling_coefficients
+    from likelihood.observation.matrix import coupling_coefficients
     R = 1000.0
     kout = np.array([0.0015, 0.003, 0.006, 0.012])
     k = theory_k_grid()

@@ -1,7 +1,7 @@
-"""The observer term (likelihood.observer) against outside references.
+"""The observer term (likelihood.observation.observer) against outside references.
 
 Each check names its source: the Hoffman & Ribak (1991) construction simulated on a mesh with the
-mock machinery of likelihood.simulate (an independent FFT estimator), scipy quadrature of the
+mock machinery of likelihood.simulate.mocks (an independent FFT estimator), scipy quadrature of the
 defining integrals, the plane-wave expansion, closed forms of the primordial potential variance and
 of the top-hat transform, and the plain-volume limit of the shared design.
 """
@@ -15,15 +15,15 @@ import yaml
 from scipy import integrate, stats
 from scipy.special import spherical_jn
 
-from likelihood import simulate as sim
-from likelihood import tracer as tr
-from likelihood.cosmology import Cosmology
+from likelihood.simulate import mocks as sim
+from likelihood.theory import tracer as tr
+from likelihood.theory.cosmology import Cosmology
 from likelihood.errors import ErgofitError
-from likelihood.observation import KBins, theory_k_grid
-from likelihood.observer import (K_IR_DEFAULT, ObserverMeshWarning, ObserverTerm, _Radial,
+from likelihood.observation.matrix import KBins, theory_k_grid
+from likelihood.observation.observer import (K_IR_DEFAULT, ObserverMeshWarning, ObserverTerm, _Radial,
                                  constraint_kernel, cross_correlation, sigma_c, sigma_c_table,
                                  smoothing_filter)
-from likelihood.window import CapShellWindow, ShellWindow, SphereWindow
+from likelihood.observation.window import CapShellWindow, ShellWindow, SphereWindow
 
 ALL = ("rsd", "fnl", "doppler", "potential")
 
@@ -133,7 +133,7 @@ def test_angular_average_of_the_kernel():
 
 @pytest.mark.parametrize("field,smoothing", [("potential", None), ("density", 20.0)])
 def test_xi_gc_fftlog_against_quadrature(cosmo, kgrid, field, smoothing):
-    # Eq. (2) of likelihood.observer by direct quadrature (scipy.integrate.simpson on 2e5 points
+    # Eq. (2) of likelihood.observation.observer by direct quadrature (scipy.integrate.simpson on 2e5 points
     # in ln k, sharp IR cut at k_IR, upper end 10 h/Mpc like the grid), all effects on.
     z = 1.0
     kern = full_kernel(cosmo, z, kgrid)
@@ -224,7 +224,7 @@ def lattice_modes(n, box, edges):
 
 
 def test_radial_formula_against_mock_estimator(cosmo, kgrid):
-    # Independent estimator: likelihood.simulate.measure_multipoles applied to m on a mesh (the
+    # Independent estimator: likelihood.simulate.mocks.measure_multipoles applied to m on a mesh (the
     # mock FFT estimator, end-point line of sight, data-estimated mean, lattice mode average).
     # Eq. (3) is averaged over the same lattice modes (enumerated here) to compare like with like;
     # the remaining difference is the mesh's cell size (a few per cent at the bins' top).
@@ -430,7 +430,7 @@ def test_correction_vanishes_for_unit_nu(tmp_path):
                    output={"folder": str(tmp_path / f"o{on}")})
         paths[on] = tmp_path / f"c{on}.yaml"
         paths[on].write_text(yaml.safe_dump(cfg))
-    from likelihood.model import build
+    from likelihood.model.likelihood import build
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         lon, loff = build(str(paths[True])), build(str(paths[False]))
@@ -465,7 +465,7 @@ def test_likelihood_fast_path_equals_direct_with_observer(tmp_path, geometry):
                output={"folder": str(tmp_path / "out")})
     path = tmp_path / "c.yaml"
     path.write_text(yaml.safe_dump(cfg))
-    from likelihood.model import build
+    from likelihood.model.likelihood import build
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         lik = build(str(path))
@@ -524,7 +524,7 @@ def test_bad_call_arguments(cosmo, kgrid):
 def test_theory_report_writes_observer_plot(tmp_path):
     # ergofit theory with effects.observer: PNG next to the table and sigma_c with its cut-offs.
     from likelihood.config import load_config
-    from likelihood.theory_report import theory_report
+    from likelihood.report.theory import theory_report
     cfg = dict(BASE_CONFIG, effects={"observer": True}, output={"folder": str(tmp_path / "o")})
     path = tmp_path / "c.yaml"
     path.write_text(yaml.safe_dump(cfg))

@@ -13,7 +13,7 @@ from scipy.special import eval_legendre, gamma, hyp1f1, spherical_jn
 
 from likelihood.data import DataVector, load_covariance
 from likelihood.errors import ConfigError, ErgofitError
-from likelihood.simulate import (Mesh, ObserverConstraint, constrain_at_origin,
+from likelihood.simulate.mocks import (Mesh, ObserverConstraint, constrain_at_origin,
                                  constraint_mean_field, constraint_sigma, gaussian_field,
                                  harmonic_terms, measure_multipoles, observed_field,
                                  poisson_sample, simulate_from_settings, simulate_mocks, to_fourier,
@@ -234,9 +234,9 @@ def test_estimator_on_radial_field_matches_analytic_multipoles():
 def test_estimator_on_window_matches_window_module_multipoles():
     # Cross-module convention check (odd ell included): for F = W with W = 1 inside a sphere,
     # <F_ell F_0^*>_angles (2ell+1)/I2 = (-i)^ell 4 pi int s^2 j_ell(ks) Q_ell(s) ds, with Q_ell of
-    # likelihood.window (s = x1 - x2, line of sight x1^). Derivation: the k-direction average of
+    # likelihood.observation.window (s = x1 - x2, line of sight x1^). Derivation: the k-direction average of
     # e^{-ik.s} L_ell(k^.x1^) is (-i)^ell j_ell(ks) L_ell(s^.x1^) (addition theorem).
-    window = pytest.importorskip("likelihood.window")
+    window = pytest.importorskip("likelihood.observation.window")
     from scipy.integrate import simpson
 
     R = 100.0
@@ -258,9 +258,9 @@ def test_estimator_on_window_matches_window_module_multipoles():
 
 
 def test_cross_spectrum_dipole_sign_matches_tracer_convention():
-    # likelihood.tracer.pair_multipoles: P_ab(k, mu) from <Delta_a Delta_b^*>, odd ell stored as
+    # likelihood.theory.tracer.pair_multipoles: P_ab(k, mu) from <Delta_a Delta_b^*>, odd ell stored as
     # Pi_ell with P_ell = i Pi_ell (McDonald 2009 dipole from the Doppler term). Distant observer.
-    from likelihood.tracer import Kernel, pair_multipoles
+    from likelihood.theory.tracer import Kernel, pair_multipoles
 
     mesh = Mesh(32, 1000.0, observer=(0.0, 0.0, -1e8))
     edges = np.linspace(0.01, 0.09, 5)
@@ -470,13 +470,13 @@ def test_constrained_mocks_shift_the_power_by_nu_squared():
 @pytest.mark.slow
 def test_mocks_in_a_shell_match_the_window_convolved_theory():
     # End to end: local-LOS mocks in a shell (with the data-estimated mean) against the Kaiser
-    # multipoles (Kaiser 1987; Hamilton 1992) convolved by likelihood.observation.WindowMatrix
+    # multipoles (Kaiser 1987; Hamilton 1992) convolved by likelihood.observation.matrix.WindowMatrix
     # (Wilson et al. 2017 convolution, global integral constraint). Not modelled by that theory:
     # wide-angle terms (order s/r; they dominate the small hexadecapole at low k and reach ~5% in
     # the quadrupole at the lowest k) and the node-sampled window (~0.5% in the monopole); the
     # allowances below are set by these, the checks catch normalisation, sign and IC errors.
-    observation = pytest.importorskip("likelihood.observation")
-    window = pytest.importorskip("likelihood.window")
+    observation = pytest.importorskip("likelihood.observation.matrix")
+    window = pytest.importorskip("likelihood.observation.window")
     b, f = 2.0, 0.7
     mesh = Mesh(64, 1600.0)
     shell = window.ShellWindow(300.0, 700.0)
@@ -527,8 +527,8 @@ def test_validate_pvalues_are_uniform_under_the_null(tmp_path):
 
 
 def test_simulate_from_settings_writes_loadable_files(tmp_path):
-    from likelihood.cosmology import Cosmology
-    from likelihood.tracer import Tracer, multipoles
+    from likelihood.theory.cosmology import Cosmology
+    from likelihood.theory.tracer import Tracer, multipoles
 
     cosmo = Cosmology.from_preset("planck2018")
     tracer = Tracer(b1=1.8, nbar=5e-4)

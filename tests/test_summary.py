@@ -1,4 +1,4 @@
-"""Tests of likelihood.summary: posterior statistics, tables, figures, re-summary and overlay.
+"""Tests of likelihood.report.summary: posterior statistics, tables, figures, re-summary and overlay.
 
 Target: a linear Gaussian model d = M theta + noise with flat priors, whose posterior is exactly
 Gaussian with mean (A^T A)^{-1} A^T b and covariance (A^T A)^{-1}, A = M / sigma, b = d / sigma
@@ -20,10 +20,10 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from likelihood.fileio import atomic_write
+from likelihood.io import atomic_write
 from likelihood.errors import ErgofitError
-from likelihood.sampler import ConvergenceWarning, SamplerResult, SamplerSettings, load_chain, run_sampler
-from likelihood.summary import (
+from likelihood.sampling.driver import ConvergenceWarning, SamplerResult, SamplerSettings, load_chain, run_sampler
+from likelihood.report.summary import (
     _decimals,
     _fmt,
     make_samples,

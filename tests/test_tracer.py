@@ -9,13 +9,13 @@ from numpy.polynomial import legendre as npleg
 from scipy import integrate
 from scipy.special import eval_legendre
 
-from likelihood.cosmology import Cosmology
+from likelihood.theory.cosmology import Cosmology
 from likelihood.errors import ErgofitError
-from likelihood.tracer import (DELTA_C, EFFECTS, PROJECTION_TERMS, Kernel, PlaneParallelWarning,
+from likelihood.theory.tracer import (DELTA_C, EFFECTS, PROJECTION_TERMS, Kernel, PlaneParallelWarning,
                                Tracer, cross_multipoles, effective_fnl, fnl_alpha, gamma1,
                                gamma2, kernel, legendre_moment, multipoles, pair_multipoles)
 
-pytestmark = pytest.mark.filterwarnings("ignore::likelihood.tracer.PlaneParallelWarning")
+pytestmark = pytest.mark.filterwarnings("ignore::likelihood.theory.tracer.PlaneParallelWarning")
 
 
 @pytest.fixture(scope="module")

@@ -7,7 +7,7 @@ from scipy import integrate
 from scipy.special import eval_legendre
 
 from likelihood.errors import ConfigError, DataError
-from likelihood.window import (CapShellWindow, ShellWindow, SphereWindow, WindowMultipoles,
+from likelihood.observation.window import (CapShellWindow, ShellWindow, SphereWindow, WindowMultipoles,
                                load_randoms, radec_to_cartesian, window_from_randoms)
 
 R = 1000.0

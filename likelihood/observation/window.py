@@ -50,7 +50,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .errors import ConfigError, DataError
+from ..errors import ConfigError, DataError
 
 __all__ = ["N_ELL", "WindowMultipoles", "SphereWindow", "ShellWindow", "CapShellWindow",
            "window_from_randoms", "radec_to_cartesian", "load_randoms"]

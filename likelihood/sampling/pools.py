@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import sys
 
-from .errors import ErgofitError
+from ..errors import ErgofitError
 
 
 def mpi_pool():

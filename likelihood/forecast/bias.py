@@ -97,11 +97,11 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.linalg import solve_triangular
 
-from .config import FORECAST_NEGLECT, SCHEMA, Config, load_config, validate
-from .fileio import ensure_folder, open_atomic, write_text
-from .pools import mpi_pool
-from .errors import ConfigError, ErgofitError
-from .params import KNOWN
+from ..config.schema import FORECAST_NEGLECT, SCHEMA, Config, load_config, validate
+from ..io import ensure_folder, open_atomic, write_text
+from ..sampling.pools import mpi_pool
+from ..errors import ConfigError, ErgofitError
+from ..config.parameters import KNOWN
 
 __all__ = ["Fisher", "fisher_from_derivatives", "derivative", "likelihood_fisher", "BiasForecast",
            "bias_forecast", "analysis_config", "scan_config", "ScanResult", "bias_scan",
@@ -388,7 +388,7 @@ def likelihood_fisher(lik, names=None, priors=None, step_rtol=1e-3):
     Tracer, observer and noise parameters use the exact polynomial fast path; cosmological ones
     the direct path.
     """
-    from .model import COSMO_PARAMS
+    from ..model.likelihood import COSMO_PARAMS
     names = list(lik.parameter_names if names is None else names)
     if not names:
         raise ConfigError("forecast.parameters: empty; list at least one sampled parameter")
@@ -542,7 +542,7 @@ def _shell_of_volume(geo, r_c, volume, what):
 
 def scan_config(cfg, quantity, value, redshift_geometry="recentre", bias_evolution="constant"):
     """The config at one scan point: (validated Config, list of notes). See the module docstring."""
-    from .model import make_cosmology
+    from ..model.likelihood import make_cosmology
     raw = config_to_raw(cfg)
     geo = raw["survey"]["geometry"]
     shape = geo["shape"]
@@ -666,7 +666,7 @@ def _describe_model(lik):
 
 
 def _effective_fnl(lik, terms):
-    from . import tracer as tr
+    from ..theory import tracer as tr
     terms = [t for t in terms if t in lik.effects]
     if not terms:
         return 0.0
@@ -686,7 +686,7 @@ def bias_forecast(config, neglect=None, parameters=None, priors=None, step_rtol=
     neglect, parameters, priors, step_rtol default to the config's ``forecast`` section (and then
     to :data:`DEFAULTS`). Returns a :class:`BiasForecast`.
     """
-    from .model import build
+    from ..model.likelihood import build
     cfg = config if isinstance(config, Config) else load_config(config)
     fs = forecast_settings(cfg)
     neglect = list(fs["neglect"] if neglect is None else neglect)
@@ -816,7 +816,7 @@ def bias_scan(config, scan=None, neglect=None, parameters=None, priors=None, ste
     bias_evolution}``), validated the same way; pool: optional object with ``map`` (process
     pool, MPI pool) over which the grid points are spread. Returns a :class:`ScanResult`.
     """
-    from .config import _forecast_scan
+    from ..config.schema import _forecast_scan
     cfg = config if isinstance(config, Config) else load_config(config)
     fs = forecast_settings(cfg)
     if scan is not None:
@@ -855,8 +855,8 @@ def bias_scan(config, scan=None, neglect=None, parameters=None, priors=None, ste
 
 def _mcmc_config(bias, folder):
     """Analysis config whose data are the noiseless truth mock (files written into ``folder``)."""
-    from .data import DataVector, save_covariance
-    from .model import COSMO_PARAMS, build
+    from ..data import DataVector, save_covariance
+    from ..model.likelihood import COSMO_PARAMS, build
     acfg = bias.analysis_config
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -910,8 +910,8 @@ def mcmc_check(bias, out_dir, settings=None, tolerance=_MCMC_TOLERANCE):
     no progress bar).
     """
     import yaml
-    from .model import build
-    from .sampler import CHAIN_FILENAME, SamplerSettings, run_sampler
+    from ..model.likelihood import build
+    from ..sampling.driver import CHAIN_FILENAME, SamplerSettings, run_sampler
     os.makedirs(out_dir, exist_ok=True)
     mcfg = _mcmc_config(bias, out_dir)
     notes = []

@@ -16,9 +16,9 @@ import os
 
 import numpy as np
 
-from . import tracer as tr
-from .fileio import open_atomic, save_figure
-from .model import effects_tuple, make_cosmology
+from ..theory import tracer as tr
+from ..io import open_atomic, save_figure
+from ..model.likelihood import effects_tuple, make_cosmology
 
 ELLS = (0, 2, 4)
 
@@ -89,10 +89,10 @@ def observer_report(cfg, png, cosmo, tracer, eff):
     for a plain volume; up to max(0.05, 8 k_F) h/Mpc (0.05 for windows without spherical
     symmetry, whose correction is measured on a mesh).
     """
-    from .errors import ErgofitError
-    from .model import make_geometry
-    from .observation import KBins, theory_k_grid
-    from .observer import ObserverTerm
+    from ..errors import ErgofitError
+    from ..model.likelihood import make_geometry
+    from ..observation.matrix import KBins, theory_k_grid
+    from ..observation.observer import ObserverTerm
 
     z = cfg["survey"]["redshift"]
     o = cfg["observer"]

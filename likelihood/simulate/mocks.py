@@ -39,8 +39,8 @@ from typing import Callable, Mapping
 import numpy as np
 import scipy.fft as sfft
 
-from .data import DataVector, MockCovariance, check_covariance, save_covariance
-from .errors import ConfigError, ErgofitError
+from ..data import DataVector, MockCovariance, check_covariance, save_covariance
+from ..errors import ConfigError, ErgofitError
 
 __all__ = [
     "Mesh", "gaussian_field", "to_real", "to_fourier", "observed_field", "constraint_sigma",
@@ -1051,7 +1051,7 @@ def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells,
     ``# ergofit covariance``, ``# ells:``, ``# n_bins:``, then the matrix in the ℓ-major order).
     Returns (list of DataVector, MockCovariance).
     """
-    from .tracer import kernel as tracer_kernel
+    from ..theory.tracer import kernel as tracer_kernel
 
     try:
         zf = float(z)

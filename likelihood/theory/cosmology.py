@@ -29,7 +29,7 @@ from functools import cached_property
 import numpy as np
 from scipy.special import hyp2f1
 
-from .errors import DataError, ErgofitError
+from ..errors import DataError, ErgofitError
 
 __all__ = ["C_KMS", "HUBBLE_DISTANCE", "PRESETS", "PUBLISHED_DERIVED", "Cosmology",
            "eh98_parameters", "eh98_transfer", "eh98_nowiggle_transfer",

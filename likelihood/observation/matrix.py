@@ -47,8 +47,8 @@ from math import factorial
 import numpy as np
 from scipy.interpolate import CubicSpline
 
-from . import hankel
-from .errors import ConfigError, DataError, ErgofitError
+from ..numerics import hankel
+from ..errors import ConfigError, DataError, ErgofitError
 from .window import N_ELL, WindowMultipoles
 
 __all__ = ["wigner3j_zero_sq", "coupling_coefficients", "KBins", "theory_k_grid",

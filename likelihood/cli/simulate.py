@@ -18,12 +18,12 @@ import warnings
 
 import numpy as np
 
-from . import tracer as tr
-from .config import load_config
-from .errors import ErgofitError
-from .fileio import write_text
-from .model import Likelihood, effects_tuple
-from .simulate import Mesh, simulate_from_settings, validate
+from ..theory import tracer as tr
+from ..config.schema import load_config
+from ..errors import ErgofitError
+from ..io import write_text
+from ..model.likelihood import Likelihood, effects_tuple
+from ..simulate.mocks import Mesh, simulate_from_settings, validate
 
 
 def choose_mesh(lik, n_mesh=None):

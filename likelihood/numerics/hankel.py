@@ -28,7 +28,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import fft as _fft
 
-from .errors import ErgofitError
+from ..errors import ErgofitError
 
 __all__ = ["log_step", "fftlog_offset", "ell_sign", "xi_from_pk", "pk_from_xi",
            "conjugate_grid"]

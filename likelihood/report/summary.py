@@ -43,9 +43,9 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from .fileio import save_figure, write_text
-from .errors import ErgofitError
-from .sampler import SamplerResult, load_chain
+from ..io import save_figure, write_text
+from ..errors import ErgofitError
+from ..sampling.driver import SamplerResult, load_chain
 
 __all__ = [
     "make_samples",

@@ -34,7 +34,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .cosmology import HUBBLE_DISTANCE
-from .errors import ErgofitError
+from ..errors import ErgofitError
 
 __all__ = ["DELTA_C", "PROJECTION_TERMS", "EFFECTS", "DEFAULT_EFFECTS", "PLANE_PARALLEL_KCHI",
            "PlaneParallelWarning", "Tracer", "Kernel", "gamma1", "gamma2", "fnl_alpha",

@@ -11,7 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import ConfigError
+from ..errors import ConfigError
 
 
 @dataclass(frozen=True)

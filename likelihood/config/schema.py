@@ -38,8 +38,8 @@ import os
 import numpy as np
 import yaml
 
-from .errors import ConfigError
-from .params import KNOWN, ParameterSet, parse_parameter, suggest
+from ..errors import ConfigError
+from .parameters import KNOWN, ParameterSet, parse_parameter, suggest
 
 _NUM = (int, float)
 

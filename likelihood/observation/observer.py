@@ -90,10 +90,10 @@ import numpy as np
 from scipy.interpolate import CubicSpline
 from scipy.special import spherical_jn
 
-from . import hankel
-from .cosmology import HUBBLE_DISTANCE
-from .errors import ErgofitError
-from .tracer import Kernel
+from ..numerics import hankel
+from ..theory.cosmology import HUBBLE_DISTANCE
+from ..errors import ErgofitError
+from ..theory.tracer import Kernel
 
 __all__ = ["FIELDS", "FILTERS", "K_IR_DEFAULT", "ObserverMeshWarning", "smoothing_filter",
            "constraint_kernel", "ir_weight", "sigma_c", "sigma_c_table", "cross_correlation",
@@ -393,7 +393,7 @@ class _MeshPath:
     """E_ℓ[m] measured on a mesh with the mock estimator (windows without spherical symmetry)."""
 
     def __init__(self, window, bins, ells, ic, mesh_n=None, padding=1.5):
-        from . import simulate as sim
+        from ..simulate import mocks as sim
         self.sim, self.ells, self.ic = sim, ells, ic
         r_max = float(window.r_max)
         k_top = float(bins.edges[-1])
@@ -450,7 +450,7 @@ class ObserverTerm:
     def __init__(self, field="potential", smoothing=None, k_ir=None, window=None, volume=None,
                  bins=None, ells=(0, 2, 4), ic="global", k_min_data=None, filter_kind="tophat",
                  method="auto", mesh_n=None, mesh_padding=1.5):
-        from .observation import KBins
+        from .matrix import KBins
         self.field, self.smoothing, self.filter_kind, self.k_ir = _check_settings(
             field, smoothing, filter_kind, k_ir)
         if k_min_data is not None:

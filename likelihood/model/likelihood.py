@@ -33,14 +33,14 @@ import warnings
 import numpy as np
 from scipy.linalg import cho_solve
 
-from . import tracer as tr
-from .config import parameter_set
-from .cosmology import Cosmology
-from .data import (DataVector, check_covariance, condition_number,
+from ..theory import tracer as tr
+from ..config.schema import parameter_set
+from ..theory.cosmology import Cosmology
+from ..data import (DataVector, check_covariance, condition_number,
                    covariance_from_mocks, gaussian_covariance, load_covariance)
-from .errors import ConfigError, DataError
-from .observation import KBins, WindowMatrix, theory_k_grid
-from .params import KNOWN
+from ..errors import ConfigError, DataError
+from ..observation.matrix import KBins, WindowMatrix, theory_k_grid
+from ..config.parameters import KNOWN
 
 COSMO_PARAMS = ("h", "omega_cdm", "omega_b", "n_s", "ln10As", "sigma8")
 TRACER_PARAMS = ("b1", "fnl", "b_e", "s")
@@ -91,7 +91,7 @@ def randoms_volume(positions, weights=None, n_mesh=64):
 
 def make_geometry(cfg, cosmo=None):
     """(window object or None, effective volume in (Mpc/h)^3)."""
-    from . import window as win
+    from ..observation import window as win
     geo = cfg["survey"]["geometry"]
     shape = geo["shape"]
     if shape == "box":
@@ -259,7 +259,7 @@ class Likelihood:
     def _make_observer(self):
         if not self.observer_on:
             return None
-        from .observer import ObserverTerm
+        from ..observation.observer import ObserverTerm
         o = self.config["observer"]
         return ObserverTerm(field=o["field"], smoothing=o.get("smoothing"), k_ir=o.get("k_ir"),
                             window=self.window, volume=self.volume, bins=self.bins,
@@ -507,7 +507,7 @@ class Likelihood:
         varied = self.varied_names
         for k, v in params.items():
             if k not in KNOWN:
-                from .params import suggest
+                from ..config.parameters import suggest
                 raise ConfigError(f"unknown parameter '{k}'{suggest(k, KNOWN)}")
             x = np.atleast_1d(np.asarray(v, float))
             if k not in varied and not np.all(x == self._fixed_floats[k]):
@@ -599,7 +599,7 @@ class Likelihood:
 
     @property
     def derived_labels(self):
-        from .params import DERIVED
+        from ..config.parameters import DERIVED
         return [DERIVED[n].label for n in self.derived_names]
 
     def derived(self, theta):
@@ -694,7 +694,7 @@ _WORKER_MODELS = {}
 
 
 def _rebuild_in_worker(raw, src, base_dir, config_hash):
-    from .config import validate
+    from ..config.schema import validate
     lik = _WORKER_MODELS.get(config_hash)
     if lik is None:
         with warnings.catch_warnings():
@@ -710,7 +710,7 @@ def _rebuild_in_worker(raw, src, base_dir, config_hash):
 
 def build(config):
     """Build the likelihood of a validated config (or a path to a YAML file)."""
-    from .config import Config, load_config
+    from ..config.schema import Config, load_config
     if not isinstance(config, Config):
         config = load_config(config)
     return Likelihood(config)

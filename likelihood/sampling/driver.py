@@ -48,7 +48,7 @@ import emcee
 import h5py
 import numpy as np
 
-from .errors import ConfigError, ErgofitError
+from ..errors import ConfigError, ErgofitError
 
 __all__ = [
     "CHAIN_FILENAME",

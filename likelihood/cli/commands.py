@@ -9,9 +9,9 @@ import os
 import sys
 import warnings
 
-from .errors import ErgofitError
-from .fileio import ensure_folder, write_text
-from .pools import mpi_pool
+from ..errors import ErgofitError
+from ..io import ensure_folder, write_text
+from ..sampling.pools import mpi_pool
 
 
 def _out_dir(path):
@@ -19,7 +19,7 @@ def _out_dir(path):
 
 
 def cmd_check(args):
-    from .model import build
+    from ..model.likelihood import build
     lik = build(args.config)
     print(lik.describe())
     print("config OK")
@@ -27,8 +27,8 @@ def cmd_check(args):
 
 
 def cmd_theory(args):
-    from .theory_report import theory_report
-    from .config import load_config
+    from ..report.theory import theory_report
+    from ..config.schema import load_config
     cfg = load_config(args.config)
     out = args.out or os.path.join(cfg.output_folder, "theory.txt")
     _out_dir(os.path.dirname(os.path.abspath(out)))
@@ -38,7 +38,7 @@ def cmd_theory(args):
 
 
 def _settings(cfg, args):
-    from .sampler import SamplerSettings
+    from ..sampling.driver import SamplerSettings
     s = cfg["sampling"]
     return SamplerSettings(n_walkers=s["walkers"], max_steps=s["max_steps"], check_every=s["check_every"],
                            tau_factor=s["tau_factor"], tau_rtol=s["tau_rtol"], seed=s["seed"],
@@ -46,7 +46,7 @@ def _settings(cfg, args):
 
 
 def _rebuild(run_dir):
-    from .model import build
+    from ..model.likelihood import build
     return build(os.path.join(run_dir, "config.yaml"))
 
 
@@ -60,10 +60,10 @@ def cmd_run(args):
 
 
 def _run(args, pool):
-    from .config import load_config
-    from .model import build
-    from .sampler import run_sampler
-    from .summary import write_summary
+    from ..config.schema import load_config
+    from ..model.likelihood import build
+    from ..sampling.driver import run_sampler
+    from ..report.summary import write_summary
     cfg = load_config(args.config)
     out = _out_dir(args.out or cfg.output_folder)
     lik = build(cfg)
@@ -96,7 +96,7 @@ def _run(args, pool):
 def _write_config_copy(src, dst):
     """Copy the config next to the chain with input paths made absolute (so it can be rebuilt)."""
     import yaml
-    from .config import load_config
+    from ..config.schema import load_config
     cfg = load_config(src)
     with open(src, encoding="utf-8") as fh:
         raw = yaml.safe_load(fh)
@@ -112,7 +112,7 @@ def _write_config_copy(src, dst):
 
 
 def cmd_summarize(args):
-    from .summary import summarize
+    from ..report.summary import summarize
     for d in args.run_dirs:
         if not os.path.isfile(os.path.join(d, "chain.h5")):
             raise ErgofitError(f"{d}: no chain.h5 in this folder; give run folders written by 'ergofit run'")
@@ -129,8 +129,8 @@ def cmd_summarize(args):
 
 
 def cmd_window(args):
-    from .cosmology import Cosmology
-    from .window import load_randoms, window_from_randoms
+    from ..theory.cosmology import Cosmology
+    from ..observation.window import load_randoms, window_from_randoms
     pos, wts = load_randoms(args.randoms, cosmo=Cosmology.from_preset(args.preset))
     _out_dir(os.path.dirname(os.path.abspath(args.out)))
     wm = window_from_randoms(pos, wts, s_max=args.s_max, name=args.randoms)
@@ -142,12 +142,12 @@ def cmd_window(args):
 
 
 def cmd_forecast(args):
-    from .forecast import forecast_cli
+    from ..forecast.bias import forecast_cli
     return forecast_cli(args)
 
 
 def cmd_simulate(args):
-    from .simulate_cli import simulate_cli
+    from .simulate import simulate_cli
     return simulate_cli(args)
 
 
@@ -230,6 +230,3 @@ def main(argv=None):
               file=sys.stderr)
         return 130
 
-
-if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())

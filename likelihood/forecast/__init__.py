@@ -1,0 +1,1 @@
+"""Fisher forecasts and f_NL bias studies (``ergofit forecast``)."""

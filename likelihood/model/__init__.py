@@ -1,0 +1,1 @@
+"""The likelihood model: one factory per config section, and the thin Gaussian likelihood."""

@@ -1,0 +1,1 @@
+"""Numerical building blocks with no physics of their own: Hankel transforms (FFTLog)."""

@@ -1,0 +1,1 @@
+"""Posterior summaries and figures; the theory report."""

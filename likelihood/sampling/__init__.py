@@ -1,0 +1,1 @@
+"""Sampling: the emcee driver, the HDF5 chain, process/MPI pools."""

@@ -1,0 +1,1 @@
+"""Gaussian mocks on a mesh and the FFT multipole estimator (``ergofit simulate``)."""

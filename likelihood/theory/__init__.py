@@ -1,0 +1,1 @@
+"""Theory: cosmology (background, growth, linear power) and the tracer kernel and multipoles."""
