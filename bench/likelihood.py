@@ -13,7 +13,7 @@ import numpy as np
 
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), ".."))
 from likelihood.config import validate, load_config  # noqa: E402
-from likelihood.model.likelihood import build  # noqa: E402
+from likelihood.model import build  # noqa: E402
 
 
 def per_call(fn, n, *args):

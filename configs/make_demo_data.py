@@ -6,7 +6,7 @@ import os
 import warnings
 
 from likelihood.data import save_covariance
-from likelihood.model.likelihood import build
+from likelihood.model import build
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 

@@ -8,10 +8,10 @@ YAML) and :func:`build` (the likelihood: ``log_prob(theta)`` vectorised over wal
 from .config.schema import load_config
 from .theory.cosmology import Cosmology
 from .errors import ConfigError, DataError, ErgofitError
-from .model.likelihood import build
+from .model import Likelihood, build
 from .theory.tracer import PlaneParallelWarning, Tracer
 
 __version__ = "0.1.0"
 
-__all__ = ["Cosmology", "Tracer", "load_config", "build", "ErgofitError", "ConfigError",
+__all__ = ["Cosmology", "Tracer", "Likelihood", "load_config", "build", "ErgofitError", "ConfigError",
            "DataError", "PlaneParallelWarning", "__version__"]

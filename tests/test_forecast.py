@@ -18,7 +18,7 @@ from scipy import integrate, optimize
 from likelihood.forecast import bias as fc
 from likelihood.config import load_config, validate
 from likelihood.errors import ConfigError, ErgofitError
-from likelihood.model.likelihood import build
+from likelihood.model import build
 from likelihood.sampling.driver import SamplerSettings
 
 HERE = os.path.dirname(os.path.abspath(__file__))

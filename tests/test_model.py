@@ -7,7 +7,7 @@ import pytest
 
 from likelihood.theory import tracer as tr
 from likelihood.errors import ConfigError, DataError
-from likelihood.model.likelihood import build
+from likelihood.model import build
 
 warnings.simplefilter("ignore", tr.PlaneParallelWarning)
 

@@ -430,7 +430,7 @@ def test_correction_vanishes_for_unit_nu(tmp_path):
                    output={"folder": str(tmp_path / f"o{on}")})
         paths[on] = tmp_path / f"c{on}.yaml"
         paths[on].write_text(yaml.safe_dump(cfg))
-    from likelihood.model.likelihood import build
+    from likelihood.model import build
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         lon, loff = build(str(paths[True])), build(str(paths[False]))
@@ -465,7 +465,7 @@ def test_likelihood_fast_path_equals_direct_with_observer(tmp_path, geometry):
                output={"folder": str(tmp_path / "out")})
     path = tmp_path / "c.yaml"
     path.write_text(yaml.safe_dump(cfg))
-    from likelihood.model.likelihood import build
+    from likelihood.model import build
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         lik = build(str(path))

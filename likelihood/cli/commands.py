@@ -19,7 +19,7 @@ def _out_dir(path):
 
 
 def cmd_check(args):
-    from ..model.likelihood import build
+    from ..model import build
     lik = build(args.config)
     print(lik.describe())
     print("config OK")
@@ -46,7 +46,7 @@ def _settings(cfg, args):
 
 
 def _rebuild(run_dir):
-    from ..model.likelihood import build
+    from ..model import build
     return build(os.path.join(run_dir, "config.yaml"))
 
 
@@ -61,7 +61,7 @@ def cmd_run(args):
 
 def _run(args, pool):
     from ..config.schema import load_config
-    from ..model.likelihood import build
+    from ..model import build
     from ..sampling.driver import run_sampler
     from ..report.summary import write_summary
     cfg = load_config(args.config)

@@ -22,7 +22,8 @@ from ..theory import tracer as tr
 from ..config.schema import load_config
 from ..errors import ErgofitError
 from ..io import write_text
-from ..model.likelihood import Likelihood, effects_tuple
+from ..model import build
+from ..model.fiducial import make_tracer
 from ..simulate.mocks import Mesh, simulate_from_settings, validate
 
 
@@ -48,11 +49,11 @@ def simulate_cli(args):
     cfg = load_config(args.config)
     if args.n < 2:
         raise ErgofitError(f"--n {args.n}: need at least 2 mocks for a covariance")
-    lik = Likelihood(cfg)
+    lik = build(cfg)
     mesh = choose_mesh(lik, args.mesh)
     out = args.out or os.path.join(cfg.output_folder, "mocks")
     fid = lik.fiducial
-    tracer = tr.Tracer(b1=fid["b1"], fnl=fid["fnl"], p=lik.p, nbar=lik.nbar, b_e=fid["b_e"], s=fid["s"])
+    tracer = make_tracer(fid, lik.p, lik.nbar)
     observer = dict(cfg["observer"]) if cfg["effects"]["observer"] else None
     print(f"simulate: {args.n} mocks on a {mesh.n}^3 mesh, box {mesh.box:.0f} Mpc/h "
           f"(k_Nyquist = {mesh.k_nyquist:.3g} h/Mpc), writing into {out}/")
@@ -62,7 +63,7 @@ def simulate_cli(args):
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", tr.PlaneParallelWarning)
-        mocks, mc = simulate_from_settings(lik.cosmo, lik.z, tracer, effects_tuple(cfg), mesh, lik.window,
+        mocks, mc = simulate_from_settings(lik.cosmo, lik.z, tracer, lik.effects, mesh, lik.window,
                                            lik.data_full.edges, lik.data_full.ells, args.n,
                                            cfg["data"].get("mock", {}).get("seed", 0), nbar=None,
                                            observer=observer, out_dir=out, progress=progress)
@@ -70,7 +71,7 @@ def simulate_cli(args):
     if args.validate:
         truth = {k: np.atleast_1d(v) for k, v in fid.items()}
         truth["shot_noise"] = np.atleast_1d(lik.sn_sub)   # mocks are not Poisson sampled: no noise
-        model = lik._model_full(truth)[0].reshape(lik.data_full.values.shape)
+        model = lik.model_full(truth)[0].reshape(lik.data_full.values.shape)
         n_data = model.size
         cov = None
         if len(mocks) <= n_data + 2:

@@ -152,7 +152,8 @@ class ParameterSet:
     def start_scale(self):
         return np.array([p.scale for p in self.free], float)
 
-    def _prior_arrays(self):
+    def prior_arrays(self):
+        """(lower bounds, upper bounds, Gaussian means, 1/σ or 0 for flat, any Gaussian), cached."""
         if not hasattr(self, "_pa"):
             lo, hi = self.bounds.T.copy()
             gauss = np.array([p.prior.kind == "gauss" for p in self.free])
@@ -164,7 +165,7 @@ class ParameterSet:
     def log_prior(self, theta):
         """Sum of log prior densities for (n, n_dim) theta; −inf outside the bounds, never NaN."""
         theta = np.atleast_2d(theta)
-        lo, hi, mean, inv_sig, any_gauss = self._prior_arrays()
+        lo, hi, mean, inv_sig, any_gauss = self.prior_arrays()
         inside = np.all((theta >= lo) & (theta <= hi), axis=1)
         if any_gauss:
             lp = -0.5 * np.sum(((np.where(inside[:, None], theta, mean) - mean) * inv_sig) ** 2, axis=1)

@@ -388,7 +388,7 @@ def likelihood_fisher(lik, names=None, priors=None, step_rtol=1e-3):
     Tracer, observer and noise parameters use the exact polynomial fast path; cosmological ones
     the direct path.
     """
-    from ..model.likelihood import COSMO_PARAMS
+    from ..model.fiducial import COSMO_PARAMS
     names = list(lik.parameter_names if names is None else names)
     if not names:
         raise ConfigError("forecast.parameters: empty; list at least one sampled parameter")
@@ -542,7 +542,7 @@ def _shell_of_volume(geo, r_c, volume, what):
 
 def scan_config(cfg, quantity, value, redshift_geometry="recentre", bias_evolution="constant"):
     """The config at one scan point: (validated Config, list of notes). See the module docstring."""
-    from ..model.likelihood import make_cosmology
+    from ..model.factories import cosmology as make_cosmology
     raw = config_to_raw(cfg)
     geo = raw["survey"]["geometry"]
     shape = geo["shape"]
@@ -686,7 +686,7 @@ def bias_forecast(config, neglect=None, parameters=None, priors=None, step_rtol=
     neglect, parameters, priors, step_rtol default to the config's ``forecast`` section (and then
     to :data:`DEFAULTS`). Returns a :class:`BiasForecast`.
     """
-    from ..model.likelihood import build
+    from ..model import build
     cfg = config if isinstance(config, Config) else load_config(config)
     fs = forecast_settings(cfg)
     neglect = list(fs["neglect"] if neglect is None else neglect)
@@ -856,7 +856,8 @@ def bias_scan(config, scan=None, neglect=None, parameters=None, priors=None, ste
 def _mcmc_config(bias, folder):
     """Analysis config whose data are the noiseless truth mock (files written into ``folder``)."""
     from ..data import DataVector, save_covariance
-    from ..model.likelihood import COSMO_PARAMS, build
+    from ..model import build
+    from ..model.fiducial import COSMO_PARAMS
     acfg = bias.analysis_config
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -910,7 +911,7 @@ def mcmc_check(bias, out_dir, settings=None, tolerance=_MCMC_TOLERANCE):
     no progress bar).
     """
     import yaml
-    from ..model.likelihood import build
+    from ..model import build
     from ..sampling.driver import CHAIN_FILENAME, SamplerSettings, run_sampler
     os.makedirs(out_dir, exist_ok=True)
     mcfg = _mcmc_config(bias, out_dir)

@@ -388,6 +388,23 @@ class WindowMatrix:
                 M[o * n_b:(o + 1) * n_b, i * n_k:(i + 1) * n_k] = blk
         return M
 
+    def white_noise_response(self):
+        """Data vector of a unit white-noise monopole (P(k) = 1, e.g. shot noise per 1/n̄).
+
+        Convolving a constant with the window normalised by I₂ returns the constant in ℓ = 0 and
+        zero in ℓ > 0 (end-point line of sight, ∫|W̃|² d³k/(2π)³ = I₂); the global integral
+        constraint then subtracts P̂_0(0) W²_ℓ(k)/W²_0(0) = W²_ℓ(k)/W²_0(0)
+        (Peacock & Nicholson 1991; see the module docstring).
+        """
+        n_b = self.bins.n
+        out = np.zeros(len(self.ells_out) * n_b)
+        for o, l in enumerate(self.ells_out):
+            if l == 0:
+                out[o * n_b:(o + 1) * n_b] = 1.0
+            if self.window is not None and self.ic == "global":
+                out[o * n_b:(o + 1) * n_b] -= self._avg @ self._W2[l] / self._w2_zero
+        return out
+
     # -- cache ----------------------------------------------------------------------------------
     def cache_key(self):
         """sha256 of everything the matrix depends on."""

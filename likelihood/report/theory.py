@@ -18,7 +18,9 @@ import numpy as np
 
 from ..theory import tracer as tr
 from ..io import open_atomic, save_figure
-from ..model.likelihood import effects_tuple, make_cosmology
+from ..model import factories
+from ..model.fiducial import config_tracer
+from ..observation.geometry import effects_tuple
 
 ELLS = (0, 2, 4)
 
@@ -27,11 +29,10 @@ def components(cfg, k, fnl=None):
     """dict name -> (len(ELLS), len(k)) multipoles (no window, no shot noise), and the tracer.
 
     ``fnl`` overrides the tracer's f_NL for the "+ f_NL" component (default: tracer.fnl)."""
-    cosmo = make_cosmology(cfg)
+    cosmo = factories.cosmology(cfg)
     z = cfg["survey"]["redshift"]
     t = cfg["tracer"]
-    tracer = tr.Tracer(b1=t["b1"], fnl=t["fnl"] if fnl is None else float(fnl), p=t["p"],
-                       nbar=cfg["survey"]["nbar"], b_e=t["b_e"], s=t["s"])
+    tracer = config_tracer(cfg, dict(t, fnl=t["fnl"] if fnl is None else float(fnl)))
     eff = effects_tuple(cfg)
     rsd = ("rsd",) if "rsd" in eff else ()
     fnl = ("fnl",) if "fnl" in eff else ()
@@ -90,27 +91,20 @@ def observer_report(cfg, png, cosmo, tracer, eff):
     symmetry, whose correction is measured on a mesh).
     """
     from ..errors import ErgofitError
-    from ..model.likelihood import make_geometry
     from ..observation.matrix import KBins, theory_k_grid
-    from ..observation.observer import ObserverTerm
 
     z = cfg["survey"]["redshift"]
     o = cfg["observer"]
     try:
-        window, volume = make_geometry(cfg, cosmo)
-        if not cfg["effects"]["window"]:
-            window = None
-        ic = cfg["effects"]["integral_constraint"] if window is not None else "none"
-        probe = ObserverTerm(field=o["field"], smoothing=o.get("smoothing"), k_ir=o.get("k_ir"),
-                             window=window, volume=volume, ic=ic, ells=(0, 2))
+        srv = factories.survey(cfg, cosmo)
+        probe = factories.observer(cfg, srv, None, (0, 2), srv.ic)
     except ErgofitError as exc:
         return [f"observer term: not computed ({exc})"]
     k_f, k_f_text = probe.fundamental_mode()
     k_top = 0.05 if probe.method == "mesh" else max(0.05, 8.0 * k_f)
     edges = k_f * (0.5 + np.arange(int(np.floor(k_top / k_f - 0.5)) + 1))
-    bins = KBins.from_edges(edges, volume=volume)
-    obs = ObserverTerm(field=o["field"], smoothing=o.get("smoothing"), k_ir=o.get("k_ir"),
-                       window=window, volume=volume, bins=bins, ells=(0, 2), ic=ic)
+    bins = KBins.from_edges(edges, volume=srv.volume)
+    obs = factories.observer(cfg, srv, bins, (0, 2), srv.ic)
     k_th = theory_k_grid()
     kern = tr.kernel(cosmo, z, k_th, tracer, effects=eff)
     E = obs.correction(cosmo, z, k_th, kern).reshape(2, -1)
