@@ -17,8 +17,9 @@ import numpy as np
 
 sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), ".."))
 
-from likelihood.simulate.mocks import (Mesh, gaussian_field, measure_multipoles,  # noqa: E402
-                                 observed_field, poisson_sample)
+from likelihood.numerics.mesh import Mesh  # noqa: E402
+from likelihood.observation.estimator import measure_multipoles  # noqa: E402
+from likelihood.simulate.fields import gaussian_field, observed_field, poisson_sample  # noqa: E402
 
 
 def main():

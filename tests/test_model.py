@@ -157,7 +157,9 @@ def test_shot_noise_with_integral_constraint_matches_poisson_mocks(write_config)
     monopole: the FFT estimator (Bianchi et al. 2015 / Scoccimarro 2015 form, validated against
     FKP 1994 in test_simulate) measures (1/n̄)[resp_ℓ(k) − δ_ℓ0], with resp including the
     integral constraint −W²_ℓ(k)/W²_0(0) (Peacock & Nicholson 1991). The model must agree."""
-    from likelihood.simulate.mocks import Mesh, measure_multipoles, poisson_sample, window_mask
+    from likelihood.numerics.mesh import Mesh
+    from likelihood.observation.estimator import measure_multipoles, window_mask
+    from likelihood.simulate.fields import poisson_sample
     from likelihood.observation.window import SphereWindow
     R, nbar = 300.0, 2e-4
     over = {"survey": {"nbar": nbar, "geometry": {"shape": "sphere", "radius": R, "r_min": None,

@@ -15,7 +15,9 @@ import yaml
 from scipy import integrate, stats
 from scipy.special import spherical_jn
 
-from likelihood.simulate import mocks as sim
+from likelihood.numerics.mesh import Mesh
+from likelihood.observation.estimator import measure_multipoles, window_mask
+from likelihood.simulate import fields
 from likelihood.theory import tracer as tr
 from likelihood.theory.cosmology import Cosmology
 from likelihood.errors import ErgofitError
@@ -314,7 +316,7 @@ def monte_carlo(cosmo, n, box, radius, n_real, field, ells, n_bins, seed0=0):
     theory on the same lattice (method "mesh", continuum m) and the continuum theory (radial).
     """
     z = 1.0
-    mesh = sim.Mesh(n, box)
+    mesh = Mesh(n, box)
     rs = 2.5 * mesh.cell
     pk = mesh.on_grid(lambda k: cosmo.power(k, z))
     kern_of = lambda k: full_kernel(cosmo, z, k, fnl=0.0)  # noqa: E731
@@ -326,18 +328,18 @@ def monte_carlo(cosmo, n, box, radius, n_real, field, ells, n_bins, seed0=0):
     else:
         ck = mesh.on_grid(lambda k: -1.0 / k ** 2)
     window = SphereWindow(radius)
-    mask = sim.window_mask(mesh, window)
+    mask = window_mask(mesh, window)
     edges = np.arange(1, n_bins + 2) * np.pi / radius
-    sig = sim.constraint_sigma(mesh, pk, ck)
+    sig = fields.constraint_sigma(mesh, pk, ck)
     nus = (0.0, 3.0)
     diffs = {nu: [] for nu in nus}
     for s in range(seed0, seed0 + n_real):
-        dk = sim.gaussian_field(mesh, pk, s)
-        p_std = sim.measure_multipoles(mesh, sim.observed_field(mesh, dk, A, B, F), mask, edges,
+        dk = fields.gaussian_field(mesh, pk, s)
+        p_std = measure_multipoles(mesh, fields.observed_field(mesh, dk, A, B, F), mask, edges,
                                        ells).flat
         for nu in nus:
-            dc = sim.constrain_at_origin(mesh, dk, ck, nu * sig, pk)[0]
-            diffs[nu].append(sim.measure_multipoles(mesh, sim.observed_field(mesh, dc, A, B, F),
+            dc = fields.constrain_at_origin(mesh, dk, ck, nu * sig, pk)[0]
+            diffs[nu].append(measure_multipoles(mesh, fields.observed_field(mesh, dc, A, B, F),
                                                     mask, edges, ells).flat - p_std)
     kth = theory_k_grid()
     kern = kern_of(kth)

@@ -13,11 +13,13 @@ from scipy.special import eval_legendre, gamma, hyp1f1, spherical_jn
 
 from likelihood.data import DataVector, load_covariance
 from likelihood.errors import ConfigError, ErgofitError
-from likelihood.simulate.mocks import (Mesh, ObserverConstraint, constrain_at_origin,
-                                 constraint_mean_field, constraint_sigma, gaussian_field,
-                                 harmonic_terms, measure_multipoles, observed_field,
-                                 poisson_sample, simulate_from_settings, simulate_mocks, to_fourier,
-                                 to_real, validate, window_mask)
+from likelihood.numerics.mesh import Mesh, to_fourier, to_real
+from likelihood.observation.estimator import harmonic_terms, measure_multipoles, window_mask
+from likelihood.simulate.fields import (ObserverConstraint, constrain_at_origin,
+                                        constraint_mean_field, constraint_sigma, gaussian_field,
+                                        observed_field, poisson_sample)
+from likelihood.simulate.mocks import simulate_from_settings, simulate_mocks
+from likelihood.simulate.validation import validate
 
 
 def pk_test(k):

@@ -24,7 +24,9 @@ from ..errors import ErgofitError
 from ..io import write_text
 from ..model import build
 from ..model.fiducial import make_tracer
-from ..simulate.mocks import Mesh, simulate_from_settings, validate
+from ..numerics.mesh import Mesh
+from ..simulate.mocks import simulate_from_settings
+from ..simulate.validation import validate
 
 
 def choose_mesh(lik, n_mesh=None):

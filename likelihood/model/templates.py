@@ -32,7 +32,7 @@ import warnings
 import numpy as np
 
 from ..theory import tracer as tr
-from .fiducial import COSMO_PARAMS, make_tracer
+from .fiducial import make_tracer
 
 
 class ForwardModel:

@@ -50,7 +50,7 @@ The estimator applied to m
 --------------------------
 The measured field is F(x) = W(x)[m(x) − m̄_W], m̄_W = ∫W m/∫W, when the mean is estimated from the
 data (``ic="global"``: the mean field's own survey mean is subtracted too), else F = W m. With the
-end-point line of sight estimator of :func:`likelihood.simulate.measure_multipoles`,
+end-point line of sight estimator of :func:`likelihood.observation.estimator.measure_multipoles`,
 F_ℓ(k) = ∫d³x F e^{−ik·x} Lₗ(k̂·x̂) and P̂ₗ = (2ℓ+1)/I₂ <F_ℓ F₀*>, I₂ = ∫W².
 
 * Spherically symmetric window (sphere, full-sky shell): F is radial, so with
@@ -68,7 +68,7 @@ F_ℓ(k) = ∫d³x F e^{−ik·x} Lₗ(k̂·x̂) and P̂ₗ = (2ℓ+1)/I₂ <F_�
   P_gc/σ_c, P_gc = A C P, and (3) reduces to E₀ = P_gc(k)²/(σ_c² V) (the shared design's limit);
   valid when V is much larger than the range of m (otherwise the box's own modes matter).
 * Other windows (polar cap): E_ℓ is measured on a mesh by the mock estimator
-  (:func:`likelihood.simulate.measure_multipoles` applied to m on the mesh, window mask, same mean
+  (:func:`likelihood.observation.estimator.measure_multipoles` applied to m on the mesh, window mask, same mean
   subtraction), with lattice mode averages: a few per cent from the cell size, and in the first
   bins the lattice's sparse modes differ from the continuous-shell average by up to ~20 %. Every
   new cosmology costs n_basis(n_basis+1)/2 mesh estimates (polarisation; ~3 s each for 190³):
@@ -91,9 +91,11 @@ from scipy.interpolate import CubicSpline
 from scipy.special import spherical_jn
 
 from ..numerics import hankel
+from ..numerics.mesh import Mesh
 from ..theory.cosmology import HUBBLE_DISTANCE
 from ..errors import ErgofitError
 from ..theory.tracer import Kernel
+from .estimator import measure_multipoles, window_mask
 
 __all__ = ["FIELDS", "FILTERS", "K_IR_DEFAULT", "ObserverMeshWarning", "smoothing_filter",
            "constraint_kernel", "ir_weight", "sigma_c", "sigma_c_table", "cross_correlation",
@@ -393,8 +395,7 @@ class _MeshPath:
     """E_ℓ[m] measured on a mesh with the mock estimator (windows without spherical symmetry)."""
 
     def __init__(self, window, bins, ells, ic, mesh_n=None, padding=1.5):
-        from ..simulate import mocks as sim
-        self.sim, self.ells, self.ic = sim, ells, ic
+        self.ells, self.ic = ells, ic
         r_max = float(window.r_max)
         k_top = float(bins.edges[-1])
         box = 2.0 * padding * r_max
@@ -407,8 +408,8 @@ class _MeshPath:
                                    f"{r_max:g} Mpc/h; lower the data k_max or give mesh_n")
         n = int(mesh_n)
         box = max(box, 2.0 * r_max + 4.0 * box / n)
-        self.mesh = sim.Mesh(n, box)
-        self.mask = sim.window_mask(self.mesh, window)
+        self.mesh = Mesh(n, box)
+        self.mask = window_mask(self.mesh, window)
         self.radius = self.mesh.radius()
         self.edges = bins.edges
 
@@ -417,8 +418,8 @@ class _MeshPath:
         # FFTLog grid's first points (r ~ 1/k_max) carry edge ringing
         rr = np.maximum(self.radius, max(r[0], 0.5 * self.mesh.cell))
         field = np.interp(np.log(rr), np.log(r), m)
-        dv = self.sim.measure_multipoles(self.mesh, field, self.mask, self.edges, self.ells,
-                                         subtract_mean=self.ic == "global")
+        dv = measure_multipoles(self.mesh, field, self.mask, self.edges, self.ells,
+                                subtract_mean=self.ic == "global")
         return dv.values.ravel()
 
 

@@ -1,1 +1,2 @@
-"""Gaussian mocks on a mesh and the FFT multipole estimator (``ergofit simulate``)."""
+"""Gaussian mocks on a mesh (``ergofit simulate``): random fields (:mod:`.fields`), mock surveys
+measured with the FFT estimator (:mod:`.mocks`) and their validation (:mod:`.validation`)."""
