@@ -59,7 +59,7 @@ def main():
             with multiprocessing.get_context("fork").Pool(args.processes) as pool:
                 _, t_pool = timed(lambda: fc.bias_scan(cfg, pool=pool))
             print(f"redshift scan, {n} points, {args.processes} processes, warm cache: {t_pool:.1f} s")
-        print(f"  shift > {scan.threshold:g} sigma at redshift = {fc._ranges_text(scan) or 'none'}")
+        print(f"  shift > {scan.threshold:g} sigma at redshift = {fc.ranges_text(scan) or 'none'}")
 
     # cosmological parameters: direct path, derivative stability
     raw = fc.config_to_raw(cfg)

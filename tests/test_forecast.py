@@ -15,6 +15,7 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize
 
+from likelihood.cli.commands import cmd_forecast
 from likelihood.forecast import bias as fc
 from likelihood.config import load_config, validate
 from likelihood.errors import ConfigError, ErgofitError
@@ -395,7 +396,7 @@ def test_forecast_cli_writes_consistent_outputs(tmp_path, capsys):
                      forecast="  neglect: [doppler, potential]\n  threshold: 0.05\n"
                               "  scan: {quantity: redshift, values: [1.0, 2.0]}")
     out = tmp_path / "fc"
-    assert fc.forecast_cli(_args(path, out)) == 0
+    assert cmd_forecast(_args(path, out)) == 0
     for name in ("fisher.json", "forecast.md", "ellipses.png", "scan.csv", "scan.md", "scan.png"):
         assert (out / name).stat().st_size > 0
     doc = json.loads((out / "fisher.json").read_text())
@@ -537,7 +538,7 @@ def test_forecast_parameters_must_be_sampled(tmp_path):
 def test_mpi_outside_mpiexec_is_a_clear_error(tmp_path):
     """--mpi without the optional extra, or outside mpiexec (one rank): one-line error."""
     with pytest.raises(ErgofitError) as exc:
-        fc.forecast_cli(_args(write_box(tmp_path), tmp_path / "o", mpi=True))
+        cmd_forecast(_args(write_box(tmp_path), tmp_path / "o", mpi=True))
     assert "--mpi" in _one_line(exc)
 
 

@@ -11,7 +11,7 @@ import warnings
 
 from ..errors import ErgofitError
 from ..io import ensure_folder, write_text
-from ..sampling.pools import mpi_pool
+from ..sampling.pools import pool_for
 
 
 def _out_dir(path):
@@ -51,12 +51,8 @@ def _rebuild(run_dir):
 
 
 def cmd_run(args):
-    pool = mpi_pool() if args.mpi else None   # worker ranks serve the pool and exit there
-    try:
+    with pool_for(args.processes, args.mpi) as pool:
         return _run(args, pool)
-    finally:
-        if pool is not None:
-            pool.close()
 
 
 def _run(args, pool):
@@ -72,15 +68,7 @@ def _run(args, pool):
         raise ErgofitError(f"{args.config}: sampling.walkers must be at least {lik.n_walkers_min()} "
                            f"(twice the {len(lik.parameter_names)} sampled parameters)")
     print(lik.describe())
-    if pool is None and args.processes and args.processes > 1:
-        import multiprocessing
-        import signal
-        with multiprocessing.get_context("fork").Pool(
-                args.processes, initializer=signal.signal,
-                initargs=(signal.SIGINT, signal.SIG_IGN)) as local_pool:
-            result = run_sampler(lik, settings, out, resume=args.resume, pool=local_pool)
-    else:
-        result = run_sampler(lik, settings, out, resume=args.resume, pool=pool)
+    result = run_sampler(lik, settings, out, resume=args.resume, pool=pool)
     cfg_copy = os.path.join(out, "config.yaml")
     if os.path.abspath(args.config) != os.path.abspath(cfg_copy):
         _write_config_copy(args.config, cfg_copy)
@@ -142,13 +130,27 @@ def cmd_window(args):
 
 
 def cmd_forecast(args):
-    from ..forecast.bias import forecast_cli
-    return forecast_cli(args)
+    """``ergofit forecast CONFIG [--out DIR] [--check-mcmc] [--mpi] [--processes N]``."""
+    from ..config import load_config
+    from ..forecast.bias import forecast_lines, forecast_settings, run_forecast
+    cfg = load_config(args.config)
+    processes = int(getattr(args, "processes", 0) or 0)
+    if processes > 0 and not forecast_settings(cfg)["scan"]:
+        processes = 0                          # nothing to spread over a pool
+    with pool_for(processes, getattr(args, "mpi", False)) as pool:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")   # collected and written to forecast.md instead
+            res = run_forecast(cfg, getattr(args, "out", None),
+                               check_mcmc=getattr(args, "check_mcmc", False), pool=pool)
+    for line in forecast_lines(cfg, res):
+        print(line)
+    return 0
 
 
 def cmd_simulate(args):
-    from .simulate import simulate_cli
-    return simulate_cli(args)
+    from ..simulate.survey import simulate_survey
+    simulate_survey(args.config, args.n, out=args.out, mesh_n=args.mesh, check=args.validate)
+    return 0
 
 
 def make_parser():

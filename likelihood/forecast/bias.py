@@ -99,13 +99,12 @@ from scipy.linalg import solve_triangular
 
 from ..config.schema import FORECAST_NEGLECT, SCHEMA, Config, load_config, validate
 from ..io import ensure_folder, open_atomic, write_text
-from ..sampling.pools import mpi_pool
 from ..errors import ConfigError, ErgofitError
 from ..config.parameters import KNOWN
 
 __all__ = ["Fisher", "fisher_from_derivatives", "derivative", "likelihood_fisher", "BiasForecast",
            "bias_forecast", "analysis_config", "scan_config", "ScanResult", "bias_scan",
-           "mcmc_check", "run_forecast", "forecast_cli", "config_to_raw", "forecast_settings",
+           "mcmc_check", "run_forecast", "config_to_raw", "forecast_settings",
            "plot_ellipses", "plot_scan", "scan_tables", "forecast_markdown", "DEFAULTS"]
 
 #: Defaults of the config's ``forecast`` section.
@@ -982,7 +981,7 @@ def _g(x, digits=4):
     return "—" if x is None or (isinstance(x, float) and not math.isfinite(x)) else f"{x:.{digits}g}"
 
 
-def _neglect_text(neglect):
+def neglect_text(neglect):
     return ", ".join(neglect) if neglect else "nothing (truth = analysis)"
 
 
@@ -1030,7 +1029,7 @@ def plot_scan(scan, path):
         ax.axhline(sgn * scan.threshold, color="0.45", ls="--", lw=1,
                    label=rf"$\pm {scan.threshold:g}\sigma$" if sgn == 1 else None)
     ax.axhline(0.0, color="0.3", lw=0.8)
-    ax.plot(x, ratio, "o-", color="C3", label="without " + _neglect_text(scan.neglect))
+    ax.plot(x, ratio, "o-", color="C3", label="without " + neglect_text(scan.neglect))
     ax.set_ylabel(r"$\Delta f_{\rm NL} / \sigma(f_{\rm NL})$")
     ax.legend(fontsize=8, loc="best")
     bx.plot(x, sig, "s-", color="C0", label=r"$\sigma(f_{\rm NL})$")
@@ -1051,7 +1050,7 @@ _QUANTITY_LABEL = {"redshift": "redshift z", "volume": r"volume [$(h^{-1}{\rm Mp
                    "k_min": r"$k_{\rm min}$ [$h\,{\rm Mpc}^{-1}$]"}
 
 
-def _ranges_text(scan):
+def ranges_text(scan):
     """'0.5–1.0, 2.5' style list of the grid intervals where |Δ/σ| exceeds the threshold."""
     q = scan.quantity
     flags = [abs(r["delta_fnl_over_sigma"]) > scan.threshold for r in scan.rows]
@@ -1077,7 +1076,7 @@ def scan_tables(scan):
                     for c in cols])
     q = scan.quantity
     md = [f"# f_NL bias scan over {q}", "",
-          f"Analysis model neglects: {_neglect_text(scan.neglect)}. Δf_NL: first-order shift of the "
+          f"Analysis model neglects: {neglect_text(scan.neglect)}. Δf_NL: first-order shift of the "
           "best fit (Fisher); σ(f_NL): marginalised Fisher error.", "",
           f"| {q} | b1 | σ(f_NL) | Δf_NL | Δf_NL/σ | f_NL^eff (neglected) |",
           "|---:|---:|---:|---:|---:|---:|"]
@@ -1085,7 +1084,7 @@ def scan_tables(scan):
         flag = " **!**" if abs(r["delta_fnl_over_sigma"]) > scan.threshold else ""
         md.append(f"| {r[q]:g} | {r['b1']:.3g} | {_g(r['sigma_fnl'], 3)} | {_g(r['delta_fnl'], 3)} | "
                   f"{r['delta_fnl_over_sigma']:+.2f}{flag} | {_g(r['fnl_eff_neglected'], 3)} |")
-    where = _ranges_text(scan)
+    where = ranges_text(scan)
     md += ["", f"**!**: |Δf_NL| > {scan.threshold:g} σ(f_NL). " +
            (f"This happens for {q} = {where}." if where else
             "This happens nowhere on the grid.")]
@@ -1105,7 +1104,7 @@ def forecast_markdown(bias, scan=None, mcmc=None, files=()):
              f"{'on' if info['truth_model']['window'] else 'off'}; integral constraint "
              f"{info['truth_model']['integral_constraint']}; observer term "
              f"{'on' if info['truth_model']['observer'] else 'off'}.",
-             f"- Analysis model neglects: {_neglect_text(bias.neglect)}.", "",
+             f"- Analysis model neglects: {neglect_text(bias.neglect)}.", "",
              "## Errors and shifts", "",
              "| parameter | fiducial | σ marginalised | σ conditional | Δ (bias) | Δ/σ |",
              "|---|---:|---:|---:|---:|---:|"]
@@ -1138,7 +1137,7 @@ def forecast_markdown(bias, scan=None, mcmc=None, files=()):
                   f"{'yes' if mcmc['converged'] else 'no'} ({mcmc['n_steps']} steps)."]
         lines += [f"- {n}" for n in mcmc["notes"]]
     if scan is not None:
-        where = _ranges_text(scan)
+        where = ranges_text(scan)
         lines += ["", f"## Scan over {scan.quantity}", "",
                   f"See `scan.md`, `scan.csv` and `scan.png`. |Δf_NL|/σ(f_NL) exceeds "
                   f"{scan.threshold:g} for {scan.quantity} = {where}." if where else
@@ -1213,45 +1212,27 @@ def run_forecast(config, out_dir=None, check_mcmc=False, pool=None, scan=True):
             "files": [os.path.join(out_dir, f) for f in files]}
 
 
-def forecast_cli(args):
-    """``ergofit forecast CONFIG [--out DIR] [--check-mcmc] [--mpi] [--processes N]``."""
-    processes = int(getattr(args, "processes", 0) or 0)
-    if processes < 0:
-        raise ErgofitError(f"--processes {processes}: expected 0 (serial) or a positive number")
-    cfg = load_config(args.config)
-    pool = None
-    if getattr(args, "mpi", False):
-        pool = mpi_pool()
-    elif processes > 1 and forecast_settings(cfg)["scan"]:
-        import multiprocessing
-        pool = multiprocessing.get_context("fork").Pool(processes)
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")   # collected and written to forecast.md instead
-            res = run_forecast(cfg, getattr(args, "out", None),
-                               check_mcmc=getattr(args, "check_mcmc", False), pool=pool)
-    finally:
-        if pool is not None:
-            pool.close()
+def forecast_lines(cfg, res):
+    """Lines the ``forecast`` command prints for the result of :func:`run_forecast`."""
     bias = res["bias"]
     f = bias.fisher
-    print(f"forecast for {cfg['run']}: analysis neglects {_neglect_text(bias.neglect)}")
+    lines = [f"forecast for {cfg['run']}: analysis neglects {neglect_text(bias.neglect)}"]
     for i, n in enumerate(f.names):
-        print(f"  {n:<10s} fiducial {f.fiducial[i]:<9.4g} sigma {f.errors[i]:<9.3g} "
-              f"shift {bias.delta[i]:+9.3g} ({bias.delta_over_sigma[i]:+.2f} sigma)")
+        lines.append(f"  {n:<10s} fiducial {f.fiducial[i]:<9.4g} sigma {f.errors[i]:<9.3g} "
+                     f"shift {bias.delta[i]:+9.3g} ({bias.delta_over_sigma[i]:+.2f} sigma)")
     if res["scan"] is not None:
-        where = _ranges_text(res["scan"])
-        print(f"scan over {res['scan'].quantity}: |shift(f_NL)| > {res['scan'].threshold:g} sigma "
-              + (f"for {res['scan'].quantity} = {where}" if where else "nowhere on the grid"))
+        where = ranges_text(res["scan"])
+        lines.append(f"scan over {res['scan'].quantity}: |shift(f_NL)| > {res['scan'].threshold:g} sigma "
+                     + (f"for {res['scan'].quantity} = {where}" if where else "nowhere on the grid"))
     if res["mcmc"] is not None:
         m = res["mcmc"]
-        print(f"MCMC check: {'agrees' if m['agree'] else 'DISAGREES'} with the Fisher shift "
-              f"within {m['tolerance']:g} sigma"
-              + ("" if m["converged"] else " (chain not converged: raise sampling.max_steps)"))
+        lines.append(f"MCMC check: {'agrees' if m['agree'] else 'DISAGREES'} with the Fisher shift "
+                     f"within {m['tolerance']:g} sigma"
+                     + ("" if m["converged"] else " (chain not converged: raise sampling.max_steps)"))
     n_warn = len(bias.warnings) + (len(res["scan"].notes) if res["scan"] is not None else 0) \
         + (len(res["mcmc"]["notes"]) if res["mcmc"] is not None else 0)
     if n_warn:
-        print(f"{n_warn} warnings/notes: see forecast.md")
-    print(f"outputs in {res['out_dir']}/: " + ", ".join(os.path.basename(p.rstrip('/')) or p
-                                                         for p in res["files"]))
-    return 0
+        lines.append(f"{n_warn} warnings/notes: see forecast.md")
+    lines.append(f"outputs in {res['out_dir']}/: " + ", ".join(os.path.basename(p.rstrip('/')) or p
+                                                               for p in res["files"]))
+    return lines

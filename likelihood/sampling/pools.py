@@ -1,10 +1,12 @@
-"""Process pools for the command line: an MPI pool (optional extra: mpi4py, mpich, schwimmbad).
+"""Process pools for the command line: a local process pool or an MPI pool (optional extra:
+mpi4py, mpich, schwimmbad). One place creates them for every command (``run``, ``forecast``).
 
 Worker ranks serve the master's tasks inside :func:`mpi_pool` and exit there, so code after the
 call runs on the master only.
 """
 from __future__ import annotations
 
+import contextlib
 import sys
 
 from ..errors import ErgofitError
@@ -26,3 +28,26 @@ def mpi_pool():
         pool.wait()
         sys.exit(0)
     return pool
+
+
+@contextlib.contextmanager
+def pool_for(processes=0, mpi=False):
+    """``with pool_for(n, mpi) as pool``: an MPI pool (``mpi``), a forked pool of ``processes``
+    local workers that ignore Ctrl-C (the master handles it), or None (serial) for n <= 1."""
+    processes = int(processes or 0)
+    if processes < 0:
+        raise ErgofitError(f"--processes {processes}: expected 0 (serial) or a positive number")
+    if mpi:
+        pool = mpi_pool()   # worker ranks serve the pool and exit there
+        try:
+            yield pool
+        finally:
+            pool.close()
+    elif processes > 1:
+        import multiprocessing
+        import signal
+        with multiprocessing.get_context("fork").Pool(
+                processes, initializer=signal.signal, initargs=(signal.SIGINT, signal.SIG_IGN)) as pool:
+            yield pool
+    else:
+        yield None
