@@ -6,8 +6,11 @@ succeeded; on any error the temporary file is removed and the old target, if any
 """
 from __future__ import annotations
 
+import math
 import os
 import uuid
+
+import numpy as np
 
 
 def atomic_write(path, write, suffix=".tmp"):
@@ -57,3 +60,22 @@ def ensure_folder(path, hint="choose another output folder"):
     if not os.access(path, os.W_OK):
         raise ErgofitError(f"{path}: output folder is not writable; {hint}")
     return path
+
+
+def plain_data(obj):
+    """JSON/YAML-safe copy: numpy scalars to floats, non-finite floats to None."""
+    if isinstance(obj, dict):
+        return {str(k): plain_data(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [plain_data(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return plain_data(obj.tolist())
+    if isinstance(obj, (bool, np.bool_)):
+        return bool(obj)
+    if isinstance(obj, (int, np.integer)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        return float(obj) if math.isfinite(obj) else None
+    return obj
+
+

@@ -16,7 +16,7 @@ import pytest
 from scipy import integrate, optimize
 
 from likelihood.cli.commands import cmd_forecast
-from likelihood.forecast import bias as fc
+from likelihood import forecast as fc
 from likelihood.config import load_config, validate
 from likelihood.errors import ConfigError, ErgofitError
 from likelihood.model import build

@@ -132,7 +132,7 @@ def cmd_window(args):
 def cmd_forecast(args):
     """``ergofit forecast CONFIG [--out DIR] [--check-mcmc] [--mpi] [--processes N]``."""
     from ..config import load_config
-    from ..forecast.bias import forecast_lines, forecast_settings, run_forecast
+    from ..forecast import forecast_lines, forecast_settings, run_forecast
     cfg = load_config(args.config)
     processes = int(getattr(args, "processes", 0) or 0)
     if processes > 0 and not forecast_settings(cfg)["scan"]:

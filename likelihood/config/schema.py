@@ -147,7 +147,7 @@ def _forecast_priors(val, where):
     return out
 
 
-def _forecast_scan(val, where):
+def forecast_scan(val, where):
     """Validate forecast.scan and normalise it to {quantity, values, redshift_geometry, bias_evolution}."""
     allowed = ("quantity", "values", "range", "spacing", "redshift_geometry", "bias_evolution")
     _mapping(val, where)
@@ -266,7 +266,7 @@ SCHEMA = {
         "priors": (_forecast_priors, None),
         "threshold": (_num(0.0, lo_open=True), None),
         "step_rtol": (_num(0.0, 0.1, lo_open=True), None),
-        "scan": (_forecast_scan, None),
+        "scan": (forecast_scan, None),
     },
 }
 
