@@ -20,7 +20,7 @@ from likelihood import forecast as fc
 from likelihood.config import load_config, validate
 from likelihood.errors import ConfigError, ErgofitError
 from likelihood.model import build
-from likelihood.sampling.driver import SamplerSettings
+from likelihood.sampling import SamplerSettings
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 DEMO = os.path.join(HERE, os.pardir, "configs", "fnl_bias.yaml")

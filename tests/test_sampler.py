@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 
 from likelihood.errors import ConfigError, ErgofitError
-from likelihood.sampling.driver import (
+from likelihood.sampling import (
     CHAIN_FILENAME,
     ConvergenceWarning,
     SamplerSettings,
@@ -313,7 +313,7 @@ CHILD = textwrap.dedent(
     import sys
     sys.path[:0] = [{root!r}, {here!r}]
     from test_sampler import ToyGaussian
-    from likelihood.sampling.driver import SamplerSettings, run_sampler
+    from likelihood.sampling import SamplerSettings, run_sampler
     lik = ToyGaussian(delay=0.003, marker={marker!r}, marker_after=200)
     settings = SamplerSettings(n_walkers=16, max_steps=400, check_every=10**6, seed=11,
                                progress=False, flush_every={flush_every}, flush_seconds=1e6)
@@ -387,7 +387,7 @@ def test_repeated_kills_never_corrupt(tmp_path):
         import sys
         sys.path[:0] = [{ROOT!r}, {HERE!r}]
         from test_sampler import ToyGaussian
-        from likelihood.sampling.driver import SamplerSettings, run_sampler
+        from likelihood.sampling import SamplerSettings, run_sampler
         s = SamplerSettings(n_walkers=16, max_steps=3000, check_every=10**6, seed=11,
                             progress=False, flush_every=1)
         run_sampler(ToyGaussian(), s, {out!r}, resume=True)

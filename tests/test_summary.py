@@ -22,7 +22,7 @@ from scipy import stats
 
 from likelihood.io import atomic_write
 from likelihood.errors import ErgofitError
-from likelihood.sampling.driver import ConvergenceWarning, SamplerResult, SamplerSettings, load_chain, run_sampler
+from likelihood.sampling import ConvergenceWarning, SamplerResult, SamplerSettings, load_chain, run_sampler
 from likelihood.report.summary import (
     _decimals,
     _fmt,

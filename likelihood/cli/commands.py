@@ -38,7 +38,7 @@ def cmd_theory(args):
 
 
 def _settings(cfg, args):
-    from ..sampling.driver import SamplerSettings
+    from ..sampling import SamplerSettings
     s = cfg["sampling"]
     return SamplerSettings(n_walkers=s["walkers"], max_steps=s["max_steps"], check_every=s["check_every"],
                            tau_factor=s["tau_factor"], tau_rtol=s["tau_rtol"], seed=s["seed"],
@@ -58,7 +58,7 @@ def cmd_run(args):
 def _run(args, pool):
     from ..config.schema import load_config
     from ..model import build
-    from ..sampling.driver import run_sampler
+    from ..sampling import run_sampler
     from ..report.summary import write_summary
     cfg = load_config(args.config)
     out = _out_dir(args.out or cfg.output_folder)

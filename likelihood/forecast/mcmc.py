@@ -75,7 +75,7 @@ def mcmc_check(bias, out_dir, settings=None, tolerance=_MCMC_TOLERANCE):
     """
     import yaml
     from ..model import build
-    from ..sampling.driver import CHAIN_FILENAME, SamplerSettings, run_sampler
+    from ..sampling import CHAIN_FILENAME, SamplerSettings, run_sampler
     os.makedirs(out_dir, exist_ok=True)
     mcfg = _mcmc_config(bias, out_dir)
     notes = []

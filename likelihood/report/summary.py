@@ -45,7 +45,7 @@ import numpy as np
 
 from ..io import save_figure, write_text
 from ..errors import ErgofitError
-from ..sampling.driver import SamplerResult, load_chain
+from ..sampling import SamplerResult, load_chain
 
 __all__ = [
     "make_samples",

@@ -26,187 +26,29 @@ Foreman-Mackey et al. 2013). This module adds what a long inference run needs:
 * **Burn-in and thinning** of the returned samples: ``burn_in = int(2 max tau)`` and
   ``thin = max(1, int(min tau / 2))``, the choice of the same emcee tutorial (common practice).
 
-Public API: :class:`SamplerSettings`, :func:`run_sampler`, :func:`load_chain`,
-:class:`SamplerResult`, :class:`ConvergenceWarning`, :data:`CHAIN_FILENAME`.
+Settings and results: :mod:`.settings`; the chain file: :mod:`.backend`.
 """
-
 from __future__ import annotations
 
-import dataclasses
 import json
-import math
 import os
 import signal
 import threading
-import time
-import uuid
 import warnings
-from dataclasses import dataclass, field
 from typing import Any
 
 import emcee
-import h5py
 import numpy as np
 
 from ..errors import ConfigError, ErgofitError
+from .backend import (CHAIN_FILENAME, ChainWriter, RunLock, StoredChain, create_chain_file, read_chain,
+                      set_root_attrs)
+from .settings import ConvergenceWarning, SamplerResult, SamplerSettings
 
-__all__ = [
-    "CHAIN_FILENAME",
-    "ConvergenceWarning",
-    "SamplerResult",
-    "SamplerSettings",
-    "load_chain",
-    "run_sampler",
-]
+__all__ = ["load_chain", "run_sampler"]
 
-#: Name of the chain file inside a run's output folder.
-CHAIN_FILENAME = "chain.h5"
-
-_GROUP = "mcmc"  # emcee's HDFBackend default group name
-_FORMAT_VERSION = 1
 _MAX_BALL_ROUNDS = 100
 
-
-class ConvergenceWarning(UserWarning):
-    """The autocorrelation stop rule was not met before ``max_steps``."""
-
-
-# --------------------------------------------------------------------------------------------
-# Settings and result
-# --------------------------------------------------------------------------------------------
-
-
-@dataclass
-class SamplerSettings:
-    """Settings of one sampling run.
-
-    n_walkers: number of walkers (even, at least 2 x the number of sampled parameters).
-    max_steps: total number of ensemble steps of the run (a resumed run counts the stored ones).
-    check_every: steps between two autocorrelation-time checks.
-    tau_factor: stop when ``n_steps > tau_factor * max(tau)`` ...
-    tau_rtol: ... and ``max |delta tau / tau| < tau_rtol`` since the previous check.
-    seed: seed of the initial ball and of emcee's random state; ``None`` draws one from the OS
-        (it is stored in the chain file, so the run can still be repeated).
-    progress: show a tqdm progress bar with the current tau estimate and acceptance fraction.
-    flush_every, flush_seconds: write buffered steps to disk after this many steps or seconds.
-    ball: the initial walkers are drawn from N(start, (ball * start_scale)^2), redrawing those
-        outside the prior.
-    """
-
-    n_walkers: int = 32
-    max_steps: int = 20000
-    check_every: int = 200
-    tau_factor: float = 50.0
-    tau_rtol: float = 0.01
-    seed: int | None = 0
-    progress: bool = True
-    flush_every: int = 50
-    flush_seconds: float = 10.0
-    ball: float = 1.0
-
-    def __post_init__(self) -> None:
-        def _int(name: str, minimum: int) -> None:
-            value = getattr(self, name)
-            if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
-                raise ConfigError(
-                    f"sampler setting '{name}' = {value!r}: expected an integer >= {minimum}"
-                )
-            setattr(self, name, int(value))
-
-        def _pos(name: str) -> None:
-            value = getattr(self, name)
-            if isinstance(value, bool) or not isinstance(value, (int, float, np.number)) or not (
-                math.isfinite(float(value)) and float(value) > 0
-            ):
-                raise ConfigError(
-                    f"sampler setting '{name}' = {value!r}: expected a finite number > 0"
-                )
-            setattr(self, name, float(value))
-
-        _int("n_walkers", 4)
-        if self.n_walkers % 2:
-            raise ConfigError(
-                f"sampler setting 'n_walkers' = {self.n_walkers}: expected an even number"
-            )
-        _int("max_steps", 1)
-        _int("check_every", 1)
-        _int("flush_every", 1)
-        for name in ("tau_factor", "tau_rtol", "flush_seconds", "ball"):
-            _pos(name)
-        if self.seed is not None:
-            if isinstance(self.seed, bool) or not isinstance(self.seed, (int, np.integer)) or (
-                self.seed < 0
-            ):
-                raise ConfigError(
-                    f"sampler setting 'seed' = {self.seed!r}: expected a non-negative integer or null"
-                )
-            self.seed = int(self.seed)
-        if not isinstance(self.progress, bool):
-            raise ConfigError(f"sampler setting 'progress' = {self.progress!r}: expected true or false")
-
-    @classmethod
-    def from_dict(cls, values: dict | None, where: str = "sampler") -> SamplerSettings:
-        """Build settings from a config mapping; unknown keys raise a one-line ConfigError."""
-        if values is None:
-            return cls()
-        if not isinstance(values, dict):
-            raise ConfigError(f"config key '{where}': expected a mapping of sampler settings")
-        known = {f.name for f in dataclasses.fields(cls)}
-        unknown = sorted(set(values) - known)
-        if unknown:
-            raise ConfigError(
-                f"config key '{where}.{unknown[0]}' is not a sampler setting; "
-                f"expected one of: {', '.join(sorted(known))}"
-            )
-        return cls(**values)
-
-    def to_dict(self) -> dict:
-        return dataclasses.asdict(self)
-
-
-@dataclass
-class SamplerResult:
-    """Outcome of a run, read back from its chain file.
-
-    samples: (n_samples, n_dim) burnt-in, thinned, flattened samples (emcee's
-        ``get_chain(discard=burn_in, thin=thin, flat=True)`` ordering).
-    log_prob: (n_samples,) log posterior of those samples.
-    n_steps: stored ensemble steps; tau: (n_dim,) integrated autocorrelation time in steps,
-        estimated over the whole stored chain; acceptance_fraction: mean over walkers.
-    best_fit / best_log_prob: the highest-posterior sample of the whole stored chain.
-    status: "converged", "max_steps" (finished, stop rule not met) or "running" (interrupted).
-    notes: human-readable warnings about this result.
-    """
-
-    samples: np.ndarray
-    log_prob: np.ndarray
-    parameter_names: list[str]
-    labels: list[str]
-    prior_bounds: np.ndarray
-    n_steps: int
-    n_walkers: int
-    tau: np.ndarray
-    acceptance_fraction: float
-    converged: bool
-    burn_in: int
-    thin: int
-    chain_path: str
-    config_hash: str
-    best_fit: np.ndarray
-    best_log_prob: float
-    status: str
-    seed: str
-    settings: dict = field(default_factory=dict)
-    notes: list[str] = field(default_factory=list)
-
-    @property
-    def n_dim(self) -> int:
-        return len(self.parameter_names)
-
-
-# --------------------------------------------------------------------------------------------
-# Likelihood interface checks and log-probability wrappers
-# --------------------------------------------------------------------------------------------
 
 
 def _check_likelihood(lik: Any) -> tuple[list[str], list[str], np.ndarray, np.ndarray, np.ndarray]:
@@ -290,274 +132,6 @@ class _PerWalkerLogProb:
 
 # --------------------------------------------------------------------------------------------
 # Chain file: emcee HDF5 layout plus ergofit metadata
-# --------------------------------------------------------------------------------------------
-
-
-def _h5(path: str, mode: str) -> h5py.File:
-    """Open without HDF5's file lock: a reader (a notebook, a summary) holding the chain open
-    must never make the running sampler fail. Writers are serialised by :class:`_RunLock`."""
-    return h5py.File(path, mode, locking=False)
-
-
-class _RunLock:
-    """Exclusive lock on the output folder for the duration of a run (``flock`` on the folder).
-
-    The kernel releases it when the process ends, however it ends. No-op where ``fcntl`` is
-    unavailable.
-    """
-
-    def __init__(self, out_dir: str):
-        self.out_dir = out_dir
-        self.fd: int | None = None
-
-    def __enter__(self) -> _RunLock:
-        try:
-            import fcntl
-        except ImportError:  # pragma: no cover - not POSIX
-            return self
-        self.fd = os.open(self.out_dir, os.O_RDONLY)
-        try:
-            fcntl.flock(self.fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except OSError:
-            os.close(self.fd)
-            self.fd = None
-            raise ErgofitError(
-                f"another process is running the sampler in {self.out_dir}; wait for it to end "
-                "or choose a new output folder"
-            ) from None
-        return self
-
-    def __exit__(self, *exc) -> None:
-        if self.fd is not None:
-            os.close(self.fd)  # releases the flock
-            self.fd = None
-
-
-def _chain_error(path: str, reason: str) -> ErgofitError:
-    reason = " ".join(str(reason).split())
-    return ErgofitError(
-        f"cannot read chain file {path}: {reason}; remove it or choose a new output folder"
-    )
-
-
-def _decode(value: Any) -> Any:
-    if isinstance(value, bytes):
-        return value.decode()
-    if isinstance(value, np.ndarray) and value.dtype.kind in "OSU":
-        return [v.decode() if isinstance(v, bytes) else str(v) for v in value.tolist()]
-    return value
-
-
-@dataclass
-class _Stored:
-    """Everything a resume or a load needs from a chain file."""
-
-    iteration: int
-    n_walkers: int
-    n_dim: int
-    names: list[str]
-    labels: list[str]
-    bounds: np.ndarray
-    config_hash: str
-    status: str
-    seed: str
-    settings: dict
-    initial_coords: np.ndarray
-    initial_log_prob: np.ndarray
-    chain: np.ndarray  # (iteration, n_walkers, n_dim)
-    log_prob: np.ndarray  # (iteration, n_walkers)
-    random_state: tuple | None  # emcee RandomState state after step `iteration`, if consistent
-
-
-def _read_chain(path: str, with_arrays: bool = True, attempts: int = 3) -> _Stored:
-    """Read a chain file; retried briefly, since a running sampler may be mid-flush."""
-    for attempt in range(attempts):
-        try:
-            return _read_chain_once(path, with_arrays)
-        except ErgofitError:
-            if attempt == attempts - 1:
-                raise
-            time.sleep(0.1)
-    raise AssertionError("unreachable")
-
-
-def _read_chain_once(path: str, with_arrays: bool) -> _Stored:
-    try:
-        with _h5(path, "r") as f:
-            a = f.attrs
-            if "ergofit_format" not in a or _GROUP not in f:
-                raise _chain_error(path, "not an ergofit chain (missing ergofit attributes)")
-            g = f[_GROUP]
-            iteration = int(g.attrs["iteration"])
-            n_walkers, n_dim = int(g.attrs["nwalkers"]), int(g.attrs["ndim"])
-            names = _decode(a["parameter_names"])
-            stored = _Stored(
-                iteration=iteration,
-                n_walkers=n_walkers,
-                n_dim=n_dim,
-                names=list(names),
-                labels=list(_decode(a["labels"])),
-                bounds=np.asarray(a["prior_bounds"], dtype=float).reshape(n_dim, 2),
-                config_hash=str(_decode(a["config_hash"])),
-                status=str(_decode(a["status"])),
-                seed=str(_decode(a["seed"])),
-                settings=json.loads(_decode(a["settings"])),
-                initial_coords=np.array(f["initial_coords"], dtype=float),
-                initial_log_prob=np.array(f["initial_log_prob"], dtype=float),
-                chain=np.empty((0, n_walkers, n_dim)),
-                log_prob=np.empty((0, n_walkers)),
-                random_state=None,
-            )
-            if g["chain"].shape[0] < iteration or g["log_prob"].shape[0] < iteration:
-                raise _chain_error(path, f"datasets shorter than iteration {iteration}")
-            if with_arrays and iteration > 0:
-                stored.chain = np.array(g["chain"][:iteration], dtype=float)
-                stored.log_prob = np.array(g["log_prob"][:iteration], dtype=float)
-            if int(g.attrs.get("ergofit_rng_iteration", -1)) == iteration:
-                items = sorted((k, v) for k, v in g.attrs.items() if k.startswith("random_state_"))
-                if len(items) == 5:
-                    v = [item[1] for item in items]
-                    stored.random_state = (
-                        str(_decode(v[0])), np.asarray(v[1], dtype=np.uint32), int(v[2]),
-                        int(v[3]), float(v[4]),
-                    )
-    except ErgofitError:
-        raise
-    except (OSError, KeyError, ValueError, TypeError, json.JSONDecodeError) as exc:
-        raise _chain_error(path, f"corrupt or not an ergofit chain ({exc})") from None
-    if len(stored.names) != n_dim or stored.initial_coords.shape != (n_walkers, n_dim):
-        raise _chain_error(path, "inconsistent shapes in the chain file")
-    return stored
-
-
-def _create_chain_file(path: str, names, labels, bounds, config_hash: str, settings: dict,
-                       seed: str, coords: np.ndarray, log_prob: np.ndarray,
-                       random_state: tuple) -> None:
-    """Write a new, empty chain file atomically (temp file + rename)."""
-    n_walkers, n_dim = coords.shape
-    directory, name = os.path.split(os.path.abspath(path))
-    # a fresh unique name (not mkstemp, whose 0600 mode would stick to the chain file)
-    tmp = os.path.join(directory, f".{name}.{os.getpid()}.{uuid.uuid4().hex[:8]}.tmp")
-    try:
-        with _h5(tmp, "x") as f:
-            f.attrs["ergofit_format"] = _FORMAT_VERSION
-            f.attrs["config_hash"] = config_hash
-            f.attrs["parameter_names"] = np.array(names, dtype=h5py.string_dtype())
-            f.attrs["labels"] = np.array(labels, dtype=h5py.string_dtype())
-            f.attrs["prior_bounds"] = np.asarray(bounds, dtype=float)
-            f.attrs["settings"] = json.dumps(settings)
-            f.attrs["seed"] = seed
-            f.attrs["status"] = "running"
-            f.create_dataset("initial_coords", data=coords)
-            f.create_dataset("initial_log_prob", data=log_prob)
-            g = f.create_group(_GROUP)
-            g.attrs["version"] = emcee.__version__
-            g.attrs["nwalkers"] = n_walkers
-            g.attrs["ndim"] = n_dim
-            g.attrs["has_blobs"] = False
-            g.attrs["iteration"] = 0
-            rows = int(max(1, min(256, 2**18 // (8 * n_walkers * n_dim))))
-            g.create_dataset("accepted", data=np.zeros(n_walkers))
-            g.create_dataset("chain", (0, n_walkers, n_dim), maxshape=(None, n_walkers, n_dim),
-                             dtype=float, chunks=(rows, n_walkers, n_dim))
-            g.create_dataset("log_prob", (0, n_walkers), maxshape=(None, n_walkers),
-                             dtype=float, chunks=(rows, n_walkers))
-            _write_random_state(g, random_state, 0)
-        _fsync(tmp)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.remove(tmp)
-        raise
-
-
-def _write_random_state(g: h5py.Group, random_state: tuple, iteration: int) -> None:
-    for i, v in enumerate(random_state):
-        key = f"random_state_{i}"
-        if key in g.attrs:
-            g.attrs.modify(key, v)
-        else:
-            g.attrs[key] = v
-    if "ergofit_rng_iteration" in g.attrs:
-        g.attrs.modify("ergofit_rng_iteration", np.int64(iteration))
-    else:
-        g.attrs["ergofit_rng_iteration"] = np.int64(iteration)
-
-
-def _fsync(path: str) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
-def _set_root_attrs(path: str, **attrs: Any) -> None:
-    with _h5(path, "a") as f:
-        for key, value in attrs.items():
-            f.attrs[key] = value
-    _fsync(path)
-
-
-class _ChainWriter:
-    """Buffers steps and appends them to the chain file in crash-safe order."""
-
-    def __init__(self, path: str, iteration: int, accepted: np.ndarray, settings: SamplerSettings):
-        self.path = path
-        self.iteration = iteration  # steps on disk
-        self.accepted = accepted.astype(float)  # per-walker accepted counts, incl. buffer
-        self.flush_every = settings.flush_every
-        self.flush_seconds = settings.flush_seconds
-        self.coords: list[np.ndarray] = []
-        self.log_prob: list[np.ndarray] = []
-        self.random_state: tuple | None = None
-        self.last_flush = time.monotonic()
-
-    def add(self, coords, log_prob, accepted, random_state) -> None:
-        self.coords.append(np.array(coords, dtype=float))
-        self.log_prob.append(np.array(log_prob, dtype=float))
-        self.accepted += accepted
-        self.random_state = random_state
-
-    def due(self) -> bool:
-        return len(self.coords) >= self.flush_every or (
-            self.coords and time.monotonic() - self.last_flush >= self.flush_seconds
-        )
-
-    def ensure_capacity(self, n_total: int) -> None:
-        with _h5(self.path, "a") as f:
-            g = f[_GROUP]
-            for name in ("chain", "log_prob"):
-                if g[name].shape[0] < n_total:
-                    g[name].resize(n_total, axis=0)
-        _fsync(self.path)
-
-    def flush(self) -> None:
-        """Write the buffer: rows first (forced to disk), the iteration counter last."""
-        if not self.coords:
-            return
-        m = len(self.coords)
-        start, stop = self.iteration, self.iteration + m
-        with _h5(self.path, "a") as f:
-            g = f[_GROUP]
-            for name in ("chain", "log_prob"):
-                if g[name].shape[0] < stop:
-                    g[name].resize(stop, axis=0)
-            g["chain"][start:stop] = np.stack(self.coords)
-            g["log_prob"][start:stop] = np.stack(self.log_prob)
-            g["accepted"][:] = self.accepted
-            f.flush()
-            _write_random_state(g, self.random_state, stop)
-            g.attrs.modify("iteration", np.int64(stop))
-        _fsync(self.path)
-        self.iteration = stop
-        self.coords.clear()
-        self.log_prob.clear()
-        self.last_flush = time.monotonic()
-
-
-# --------------------------------------------------------------------------------------------
-# Signals: defer SIGINT/SIGTERM to the end of the current step
 # --------------------------------------------------------------------------------------------
 
 
@@ -649,7 +223,7 @@ def _acceptance(initial: np.ndarray, chain: np.ndarray) -> np.ndarray:
     return np.any(chain != previous, axis=2).sum(axis=0).astype(float)
 
 
-def _result_from(stored: _Stored, path: str, notes: list[str] | None = None) -> SamplerResult:
+def _result_from(stored: StoredChain, path: str, notes: list[str] | None = None) -> SamplerResult:
     notes = list(notes or [])
     n = stored.iteration
     if n == 0:
@@ -704,7 +278,7 @@ def load_chain(out_dir: str | os.PathLike) -> SamplerResult:
     path = _chain_path(out_dir)
     if not os.path.isfile(path):
         raise ErgofitError(f"no chain file {path}; run the sampler first")
-    return _result_from(_read_chain(path), path)
+    return _result_from(read_chain(path), path)
 
 
 # --------------------------------------------------------------------------------------------
@@ -772,7 +346,7 @@ def run_sampler(lik: Any, settings: SamplerSettings | None, out_dir: str | os.Pa
     if os.path.exists(out_dir) and not os.path.isdir(out_dir):
         raise ErgofitError(f"output folder {out_dir} exists and is not a folder")
     os.makedirs(out_dir, exist_ok=True)
-    with _RunLock(out_dir):
+    with RunLock(out_dir):
         return _run_locked(lik, settings, out_dir, resume, pool, names, labels, bounds, start,
                            scale)
 
@@ -789,7 +363,7 @@ def _run_locked(lik, settings: SamplerSettings, out_dir: str, resume: bool, pool
         )
 
     if os.path.exists(path):
-        stored = _read_chain(path)
+        stored = read_chain(path)
         if stored.config_hash != lik.config_hash:
             raise ErgofitError(
                 f"chain file {path} was made with config hash {stored.config_hash}, this config has "
@@ -829,14 +403,14 @@ def _run_locked(lik, settings: SamplerSettings, out_dir: str, resume: bool, pool
                                  settings)
         if already:
             if stored.status != "converged":
-                _set_root_attrs(path, status="converged")
-            return _result_from(_read_chain(path), path, notes + ["run had converged already"])
+                set_root_attrs(path, status="converged")
+            return _result_from(read_chain(path), path, notes + ["run had converged already"])
         if stored.status == "converged":
             notes.append(f"continued a chain that had converged under other settings at {n0} steps")
         accepted = _acceptance(stored.initial_coords, stored.chain)
         store_settings = dict(stored.settings, **{k: v for k, v in settings.to_dict().items()
                                                   if k not in ("seed", "n_walkers")})
-        _set_root_attrs(path, settings=json.dumps(store_settings), status="running")
+        set_root_attrs(path, settings=json.dumps(store_settings), status="running")
     else:
         ss = np.random.SeedSequence(settings.seed)
         seed = str(ss.entropy)
@@ -844,19 +418,19 @@ def _run_locked(lik, settings: SamplerSettings, out_dir: str, resume: bool, pool
         coords, log_prob = _initial_ball(lik, start, scale, bounds, names, settings, rng)
         random_state = _emcee_state_from_seed(rng)
         store_settings = settings.to_dict()
-        _create_chain_file(path, names, labels, bounds, lik.config_hash, store_settings, seed,
+        create_chain_file(path, names, labels, bounds, lik.config_hash, store_settings, seed,
                            coords, log_prob, random_state)
         n0, tau_prev, accepted = 0, None, np.zeros(settings.n_walkers)
 
     if n0 >= settings.max_steps:
-        _set_root_attrs(path, status="max_steps")
-        result = _result_from(_read_chain(path), path, notes)
+        set_root_attrs(path, status="max_steps")
+        result = _result_from(read_chain(path), path, notes)
         warnings.warn(f"{path}: " + result.notes[-1], ConvergenceWarning, stacklevel=3)
         return result
 
     converged = _sample(lik, settings, path, pool, coords, log_prob, random_state, n0, tau_prev,
                         accepted, first=n0 == 0)
-    result = _result_from(_read_chain(path), path, notes)
+    result = _result_from(read_chain(path), path, notes)
     if not converged:
         warnings.warn(f"{path}: " + result.notes[-1], ConvergenceWarning, stacklevel=3)
     return result
@@ -873,7 +447,7 @@ def _sample(lik, settings: SamplerSettings, path: str, pool, coords, log_prob, r
             raise ErgofitError(f"pool: expected an object with a map method, got {type(pool).__name__}")
         sampler = emcee.EnsembleSampler(n_walkers, n_dim, _PerWalkerLogProb(lik), pool=pool)
     state = emcee.State(np.array(coords), log_prob=np.array(log_prob), random_state=random_state)
-    writer = _ChainWriter(path, n0, accepted, settings)
+    writer = ChainWriter(path, n0, accepted, settings)
     writer.ensure_capacity(settings.max_steps)
     bar = _progress_bar(settings, n0)
     converged = False
@@ -896,7 +470,7 @@ def _sample(lik, settings: SamplerSettings, path: str, pool, coords, log_prob, r
                         if check or writer.due() or it == settings.max_steps:
                             writer.flush()
                         if check:
-                            tau = _tau(_read_chain(path).chain)
+                            tau = _tau(read_chain(path).chain)
                             converged = _stop_rule(it, tau, tau_prev, settings)
                             tau_prev = tau
                             tau_text = (f"tau={np.max(tau):.1f} (need {settings.tau_factor:g} tau"
@@ -921,7 +495,7 @@ def _sample(lik, settings: SamplerSettings, path: str, pool, coords, log_prob, r
             finally:
                 writer.flush()
                 if finished and signals.received is None:
-                    _set_root_attrs(path, status="converged" if converged else "max_steps")
+                    set_root_attrs(path, status="converged" if converged else "max_steps")
                 signals.restore()
     finally:
         if bar is not None:
