@@ -49,6 +49,7 @@ from scipy.interpolate import CubicSpline
 
 from ..numerics import hankel
 from ..errors import ConfigError, DataError, ErgofitError
+from ..io import open_atomic
 from .window import N_ELL, WindowMultipoles
 
 __all__ = ["wigner3j_zero_sq", "coupling_coefficients", "KBins", "theory_k_grid",
@@ -436,10 +437,7 @@ class WindowMatrix:
         M = self._build()
         try:
             os.makedirs(cache_dir, exist_ok=True)
-            tmp = f"{path}.{os.getpid()}.part"
-            with open(tmp, "wb") as fh:
-                np.savez(fh, matrix=M, key=np.array(key))
-            os.replace(tmp, path)
+            open_atomic(path, lambda fh: np.savez(fh, matrix=M, key=np.array(key)), binary=True)
         except OSError as exc:
             warnings.warn(f"window matrix cache {cache_dir}: not writable ({exc}); "
                           "continuing without cache", stacklevel=3)

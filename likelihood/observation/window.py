@@ -51,6 +51,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import ConfigError, DataError
+from ..io import atomic_write
 
 __all__ = ["N_ELL", "WindowMultipoles", "SphereWindow", "ShellWindow", "CapShellWindow",
            "window_from_randoms", "radec_to_cartesian", "load_randoms"]
@@ -150,8 +151,8 @@ class WindowMultipoles:
             # columns: s Q0 Q1 ... Q8 [dQ0 ... dQ8]
         """
         path = os.fspath(path)
-        tmp = path + ".part"
-        try:
+
+        def write(tmp):
             if path.endswith(".npz"):
                 arrays = dict(s=self.s, Q=self.Q)
                 if self.err is not None:
@@ -172,7 +173,8 @@ class WindowMultipoles:
                 lines.append("# columns: " + " ".join(cols))
                 np.savetxt(tmp, np.hstack(table), header="\n".join(lines), comments="",
                            fmt="%.10e")
-            os.replace(tmp, path)
+        try:
+            atomic_write(path, write)
         except OSError as exc:
             raise DataError(f"{path}: cannot write window multipoles ({exc})") from None
 

@@ -10,7 +10,6 @@ from __future__ import annotations
 import json
 import os
 import time
-import uuid
 from dataclasses import dataclass
 from typing import Any
 
@@ -18,6 +17,7 @@ import emcee
 import h5py
 import numpy as np
 
+from ..io import atomic_write
 from ..errors import ErgofitError
 from .settings import SamplerSettings
 
@@ -170,10 +170,8 @@ def create_chain_file(path: str, names, labels, bounds, config_hash: str, settin
                        random_state: tuple) -> None:
     """Write a new, empty chain file atomically (temp file + rename)."""
     n_walkers, n_dim = coords.shape
-    directory, name = os.path.split(os.path.abspath(path))
-    # a fresh unique name (not mkstemp, whose 0600 mode would stick to the chain file)
-    tmp = os.path.join(directory, f".{name}.{os.getpid()}.{uuid.uuid4().hex[:8]}.tmp")
-    try:
+
+    def write(tmp):
         with _h5(tmp, "x") as f:
             f.attrs["ergofit_format"] = _FORMAT_VERSION
             f.attrs["config_hash"] = config_hash
@@ -199,11 +197,8 @@ def create_chain_file(path: str, names, labels, bounds, config_hash: str, settin
                              dtype=float, chunks=(rows, n_walkers))
             _write_random_state(g, random_state, 0)
         _fsync(tmp)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.remove(tmp)
-        raise
+
+    atomic_write(path, write)
 
 
 def _write_random_state(g: h5py.Group, random_state: tuple, iteration: int) -> None:
