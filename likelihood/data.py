@@ -33,27 +33,17 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import DataError
-from .io import open_atomic
+from .io import open_atomic, read_comment_header
 
 DATA_HEADER = "# ergofit data vector"
 COV_HEADER = "# ergofit covariance"
 
 
 def _read_header(path):
-    header = {}
     try:
-        with open(path, "r", encoding="utf-8") as fh:
-            first = fh.readline().strip()
-            for line in fh:
-                if not line.startswith("#"):
-                    break
-                body = line[1:].strip()
-                if ":" in body:
-                    key, _, val = body.partition(":")
-                    header.setdefault(key.strip(), []).append(val.strip())
+        return read_comment_header(path)
     except (OSError, UnicodeDecodeError) as exc:
         raise DataError(f"{path}: cannot read file ({exc.__class__.__name__}: {exc})") from None
-    return first, header
 
 
 def _load_table(path):

@@ -79,3 +79,24 @@ def plain_data(obj):
     return obj
 
 
+def read_comment_header(path):
+    """(first line, {key: [values]}) of the leading ``# key: value`` lines of a text file.
+
+    Reading stops at the first line that does not start with ``#``; a key given twice keeps
+    both values in order. OSError and UnicodeDecodeError propagate (callers name the file).
+    """
+    header = {}
+    with open(path, "r", encoding="utf-8") as fh:
+        first = fh.readline()
+        lines = [first]
+        for line in fh:
+            if not line.startswith("#"):
+                break
+            lines.append(line)
+    for line in lines:
+        if line.startswith("#"):
+            body = line[1:].strip()
+            if ":" in body:
+                key, _, val = body.partition(":")
+                header.setdefault(key.strip(), []).append(val.strip())
+    return first.strip(), header

@@ -175,10 +175,10 @@ def theory_k_grid(k_min=1e-6, k_max=1e3, n=1316):
     The defaults (≈ 146 points per decade over 9 decades) give FFTLog transforms whose
     window-convolved, binned result changes by < 1e-3 (relative) when the density or the range of
     the grid is halved or doubled, for windows of R ~ 500–3000 Mpc/h and data k in ~1e-3–0.3 h/Mpc
-    (tests/test_observation.py). The wide upper range matters for red spectra: with f_NL ≠ 0 or
+    (tests/observation/test_window_matrix.py). The wide upper range matters for red spectra: with f_NL ≠ 0 or
     the potential term the theory rises as k^(n_s−3..4) at small k, and a grid ending at
     k = 10 h/Mpc aliases that large-s correlation back onto small s (1–3 % errors in P̂_0 at
-    f_NL = 100; checked against direct quadrature in tests/test_observation.py).
+    f_NL = 100; checked against direct quadrature in tests/observation/test_window_matrix.py).
     """
     try:
         k_min, k_max, n = float(k_min), float(k_max), int(n)

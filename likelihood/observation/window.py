@@ -51,7 +51,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import ConfigError, DataError
-from ..io import atomic_write
+from ..io import atomic_write, read_comment_header
 
 __all__ = ["N_ELL", "WindowMultipoles", "SphereWindow", "ShellWindow", "CapShellWindow",
            "window_from_randoms", "radec_to_cartesian", "load_randoms"]
@@ -192,18 +192,12 @@ class WindowMultipoles:
                                         f"(found {sorted(f.files)})")
                     return cls(f["s"], f["Q"], f["err"] if "err" in f else None,
                                meta={"file": path})
-            with open(path, encoding="utf-8") as fh:
-                first = fh.readline().strip()
-                cols, meta = None, {"file": path}
-                for line in fh:
-                    if not line.startswith("#"):
-                        break
-                    body = line[1:].strip()
-                    if body.startswith("columns:"):
-                        cols = body.split(":", 1)[1].split()
-                    elif body.startswith("meta:"):
-                        key, _, val = body.split(":", 1)[1].partition("=")
-                        meta[key.strip()] = val.strip()
+            first, header = read_comment_header(path)
+            cols = header["columns"][-1].split() if "columns" in header else None
+            meta = {"file": path}
+            for entry in header.get("meta", []):
+                key, _, val = entry.partition("=")
+                meta[key.strip()] = val.strip()
             if first != _HEADER or cols is None:
                 raise DataError(f"{path}: not a window multipole table (expected first line "
                                 f"'{_HEADER}' and a '# columns:' line)")
@@ -525,14 +519,8 @@ def load_randoms(path, cosmo=None):
                     cols["w"] = cols["weights"]
             names = [n for n in ("x", "y", "z", "ra", "dec", "w") if n in cols]
         else:
-            names = None
-            with open(path, encoding="utf-8") as fh:
-                for line in fh:
-                    if not line.startswith("#"):
-                        break
-                    body = line[1:].strip()
-                    if body.startswith("columns:"):
-                        names = body.split(":", 1)[1].split()
+            header = read_comment_header(path)[1]
+            names = header["columns"][-1].split() if "columns" in header else None
             if names is None:
                 raise DataError(f"{path}: no '# columns:' header line; add '# columns: x y z w' "
                                 "(Mpc/h) or '# columns: ra dec z w' (degrees, redshift)")

@@ -77,12 +77,7 @@ def observed_field(mesh, delta_k, A, B=None, F=0.0):
     dk = check_fourier_field(mesh, delta_k)
     rdt = mesh.real_dtype
     a = fourier_array(mesh, A, "A")
-    try:
-        f = float(F)
-    except (TypeError, ValueError):
-        raise ErgofitError(f"F = {F!r}: expected a number (the growth rate f)") from None
-    if not np.isfinite(f):
-        raise ErgofitError(f"F = {F!r}: expected a finite number")
+    f = finite_number(F, "F (the growth rate f)")
     b = None if B is None else fourier_array(mesh, B, "B")
     if np.iscomplexobj(a) or (b is not None and np.iscomplexobj(b)):
         raise ErgofitError("A(k) and B(k) must be real (the i of the Doppler term is explicit)")
@@ -186,12 +181,7 @@ def constrain_at_origin(mesh, delta_k, c_kernel, c_value, pk):
     ``pk``: the power spectrum the field was drawn with. Returns (δ'_k, σ_c, c(x_o) before).
     """
     dk = check_fourier_field(mesh, delta_k)
-    try:
-        cv = float(c_value)
-    except (TypeError, ValueError):
-        raise ErgofitError(f"c_value = {c_value!r}: expected a number") from None
-    if not np.isfinite(cv):
-        raise ErgofitError(f"c_value = {c_value!r}: expected a finite number")
+    cv = finite_number(c_value, "c_value")
     p, kc, w, sigma2 = _constraint_parts(mesh, pk, c_kernel)
     phase = _observer_phase(mesh)
     # c(x_o) = V⁻¹ Σ_full K δ_k e^{ik·x_o}; on the half layout, Re with multiplicity weights.

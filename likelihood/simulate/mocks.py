@@ -3,18 +3,8 @@
 The strongest check of the likelihood model is to simulate the observation and measure it the way
 a survey is measured; the same machinery gives mock covariances.
 
-Conventions (shared design): distances in Mpc/h, k in h/Mpc, P in (Mpc/h)^3,
-δ(k) = ∫ d³x δ(x) e^{-ik·x}, δ(x) = ∫ d³k/(2π)³ δ(k) e^{+ik·x}. On a mesh of n³ nodes, side L,
-spacing H = L/n and volume V = L³ the discrete versions are
-
-    δ_k = H³ Σ_x δ(x) e^{-ik·x}      (``H³ * rfftn``),   δ(x) = V⁻¹ Σ_k δ_k e^{+ik·x},
-    <δ_k δ*_k'> = V P(k) δ^K_{kk'},
-
-with k on the grid 2π/L × integers, |k_i| ≤ k_N = π n / L (Nyquist). Arrays in Fourier space use
-the ``rfftn`` half layout (n, n, n//2 + 1).
-
-The observer sits at a mesh node, the centre of the box, unless ``Mesh.observer`` moves it (a far
-observer gives the plane-parallel limit). The line of sight is local: n̂ = x/|x| from the observer.
+Conventions (units, Fourier normalisation on the mesh, the rfftn half layout, the observer at
+the box centre and the local line of sight): :mod:`likelihood.numerics.mesh`.
 
 Regime of validity
 ------------------

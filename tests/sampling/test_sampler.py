@@ -33,7 +33,7 @@ from likelihood.sampling import (
 )
 
 HERE = os.path.dirname(os.path.abspath(__file__))
-ROOT = os.path.dirname(HERE)
+ROOT = os.path.dirname(os.path.dirname(HERE))
 
 
 class ToyGaussian:

@@ -23,7 +23,7 @@ from likelihood.model import build
 from likelihood.sampling import SamplerSettings
 
 HERE = os.path.dirname(os.path.abspath(__file__))
-DEMO = os.path.join(HERE, os.pardir, "configs", "fnl_bias.yaml")
+DEMO = os.path.join(HERE, os.pardir, os.pardir, "configs", "fnl_bias.yaml")
 
 # A periodic box (no window, no integral constraint): fast to build, exact mode counting.
 BOX = """\
@@ -559,7 +559,7 @@ def test_scan_over_mpi_ranks_matches_serial(tmp_path):
     out = tmp_path / "mpi"
     proc = subprocess.run(["mpiexec", "-n", "2", sys.executable, "-m", "likelihood.cli", "forecast",
                            path, "--out", str(out), "--mpi"], capture_output=True, text=True,
-                          timeout=300, cwd=os.path.join(HERE, os.pardir))
+                          timeout=300, cwd=os.path.join(HERE, os.pardir, os.pardir))
     assert proc.returncode == 0, proc.stderr
     rows = list(csv.DictReader(open(out / "scan.csv")))
     serial = fc.bias_scan(path).rows

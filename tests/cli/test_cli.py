@@ -69,7 +69,7 @@ def test_console_script_entry_point(write_config):
     """`python -m likelihood.cli` behaves like the installed `ergofit` script."""
     r = subprocess.run([sys.executable, "-m", "likelihood.cli", "check",
                         write_config({"survey": {"redshift": -1.0}})],
-                       capture_output=True, text=True, cwd=os.path.dirname(os.path.dirname(__file__)))
+                       capture_output=True, text=True, cwd=os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))))
     assert r.returncode == 2
     assert r.stderr.count("\n") == 1 and "redshift" in r.stderr
 
