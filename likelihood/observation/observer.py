@@ -90,7 +90,7 @@ import numpy as np
 from scipy.interpolate import CubicSpline
 from scipy.special import spherical_jn
 
-from ..numerics import hankel
+from ..numerics import filters, hankel
 from ..numerics.mesh import Mesh
 from ..theory.cosmology import HUBBLE_DISTANCE
 from ..errors import ErgofitError
@@ -163,16 +163,7 @@ def smoothing_filter(x, kind="tophat"):
     """Fourier-space filter S(x), x = kR: "tophat" 3(sin x − x cos x)/x³ (series 1 − x²/10 below
     x = 1e-3) or "gaussian" exp(−x²/2); S(0) = 1 (common practice)."""
     kind = _check_filter(kind)
-    x = np.asarray(x, dtype=float)
-    if kind == "gaussian":
-        return np.exp(-0.5 * x * x)
-    out = np.empty_like(x)
-    small = np.abs(x) < 1e-3
-    xs = x[small]
-    out[small] = 1.0 - xs * xs / 10.0
-    xb = x[~small]
-    out[~small] = 3.0 * (np.sin(xb) - xb * np.cos(xb)) / xb ** 3
-    return out
+    return filters.gaussian(x) if kind == "gaussian" else filters.tophat(x)
 
 
 def constraint_kernel(cosmo, z, k, field="potential", smoothing=None, filter_kind="tophat"):

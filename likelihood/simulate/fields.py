@@ -14,6 +14,7 @@ import numpy as np
 import scipy.fft as sfft
 
 from ..checks import finite_number
+from ..numerics.filters import tophat
 from ..errors import ConfigError, ErgofitError
 from ..numerics.mesh import check_fourier_field, check_real_field, fourier_array, to_real, unit_vectors
 from ..observation.estimator import window_weights
@@ -225,7 +226,7 @@ class ObserverConstraint:
         if r is None:
             raise ConfigError("observer smoothing: expected a positive radius in Mpc/h")
         kir = _optional_positive(k_ir, "k_ir")
-        return cls(lambda k: _ir_cut(k, kir) * _tophat(np.asarray(k, float) * r),
+        return cls(lambda k: _ir_cut(k, kir) * tophat(np.asarray(k, float) * r),
                    finite_number(nu, "nu_true", ConfigError), f"density(R={r:g})")
 
 
@@ -236,17 +237,6 @@ def _optional_positive(value, name):
     if v <= 0:
         raise ConfigError(f"observer {name} = {value!r}: expected a positive number")
     return v
-
-
-def _tophat(x):
-    x = np.asarray(x, float)
-    out = np.ones_like(x)
-    big = x > 1e-3
-    xb = x[big]
-    out[big] = 3.0 * (np.sin(xb) - xb * np.cos(xb)) / xb ** 3
-    xs = x[~big]
-    out[~big] = 1.0 - xs ** 2 / 10.0
-    return out
 
 
 # ---------------------------------------------------------------------------------------------

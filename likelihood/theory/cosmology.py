@@ -30,10 +30,11 @@ import numpy as np
 from scipy.special import hyp2f1
 
 from ..errors import DataError, ErgofitError
+from ..numerics.filters import tophat_window
 
 __all__ = ["C_KMS", "HUBBLE_DISTANCE", "PRESETS", "PUBLISHED_DERIVED", "Cosmology",
            "eh98_parameters", "eh98_transfer", "eh98_nowiggle_transfer",
-           "eh98_sound_horizon_fit", "tophat_window"]
+           "eh98_sound_horizon_fit"]
 
 C_KMS = 299792.458              # speed of light in km/s (exact, SI definition)
 HUBBLE_DISTANCE = C_KMS / 100.  # c/H0 in Mpc/h
@@ -97,21 +98,6 @@ _GL_W = 0.5 * _GL_W
 # --------------------------------------------------------------------------------------------
 # Small pure functions
 # --------------------------------------------------------------------------------------------
-
-def tophat_window(x):
-    """Fourier transform of a normalised spherical top hat, W(x) = 3 (sin x - x cos x) / x^3.
-
-    Uses the series 1 - x^2/10 + x^4/280 - x^6/15120 for x < 0.1 to avoid cancellation.
-    W(0) = 1 (standard top-hat filter, common practice).
-    """
-    x = np.asarray(x, dtype=float)
-    small = x < 0.1
-    xs = np.where(small, 1.0, x)
-    exact = 3.0 * (np.sin(xs) - xs * np.cos(xs)) / xs**3
-    x2 = x * x
-    series = 1.0 - x2 / 10.0 + x2 * x2 / 280.0 - x2 * x2 * x2 / 15120.0
-    return np.where(small, series, exact)
-
 
 _SIGMA_X, _SIGMA_WEIGHTS = _sigma_quadrature()
 

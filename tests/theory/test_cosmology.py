@@ -11,9 +11,9 @@ import numpy as np
 import pytest
 from scipy.integrate import quad, solve_ivp
 
+from likelihood.numerics.filters import tophat_window
 from likelihood.theory.cosmology import (C_KMS, HUBBLE_DISTANCE, PRESETS, PUBLISHED_DERIVED,
-                                  Cosmology, eh98_parameters, eh98_sound_horizon_fit,
-                                  tophat_window)
+                                         Cosmology, eh98_parameters, eh98_sound_horizon_fit)
 from likelihood.errors import DataError, ErgofitError
 
 PLANCK = dict(h=0.6736, omega_b=0.02237, omega_cdm=0.1200, n_s=0.9649)
