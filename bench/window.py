@@ -16,7 +16,8 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from likelihood.observation.matrix import KBins, WindowMatrix, theory_k_grid  # noqa: E402
-from likelihood.observation.window import SphereWindow, window_from_randoms  # noqa: E402
+from likelihood.observation.randoms import window_from_randoms  # noqa: E402
+from likelihood.observation.window import SphereWindow  # noqa: E402
 
 R = 1500.0
 

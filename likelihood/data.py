@@ -33,7 +33,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import DataError
-from .io import open_atomic, read_comment_header
+from .io import input_file, open_atomic, read_comment_header
 
 DATA_HEADER = "# ergofit data vector"
 COV_HEADER = "# ergofit covariance"
@@ -167,9 +167,7 @@ class DataVector:
     @classmethod
     def load(cls, path):
         """Read a data vector from ``.npz`` or the documented plain-text format."""
-        path = os.fspath(path)
-        if not os.path.isfile(path):
-            raise DataError(f"{path}: data vector file not found")
+        path = input_file(path, "data vector")
         if path.endswith(".npz"):
             try:
                 with np.load(path) as z:
@@ -245,9 +243,7 @@ def save_covariance(path, cov, ells, n_bins):
 
 def load_covariance(path):
     """Read a covariance (text with the documented header, or ``.npz``); returns (cov, ells)."""
-    path = os.fspath(path)
-    if not os.path.isfile(path):
-        raise DataError(f"{path}: covariance file not found")
+    path = input_file(path, "covariance")
     if path.endswith(".npz"):
         try:
             with np.load(path) as z:

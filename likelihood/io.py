@@ -100,3 +100,12 @@ def read_comment_header(path):
                 key, _, val = body.partition(":")
                 header.setdefault(key.strip(), []).append(val.strip())
     return first.strip(), header
+
+
+def input_file(path, what):
+    """``path`` as a string, or a one-line DataError "PATH: WHAT file not found"."""
+    from .errors import DataError
+    path = os.fspath(path)
+    if not os.path.isfile(path):
+        raise DataError(f"{path}: {what} file not found")
+    return path

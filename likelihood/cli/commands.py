@@ -118,7 +118,7 @@ def cmd_summarize(args):
 
 def cmd_window(args):
     from ..theory.cosmology import Cosmology
-    from ..observation.window import load_randoms, window_from_randoms
+    from ..observation.randoms import load_randoms, window_from_randoms
     pos, wts = load_randoms(args.randoms, cosmo=Cosmology.from_preset(args.preset))
     _out_dir(os.path.dirname(os.path.abspath(args.out)))
     wm = window_from_randoms(pos, wts, s_max=args.s_max, name=args.randoms)

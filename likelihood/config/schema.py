@@ -466,7 +466,7 @@ def _need_file(cfg, rel, key):
 
 
 def parameter_set(cfg):
-    """The :class:`~likelihood.params.ParameterSet` of a validated config."""
+    """The :class:`~likelihood.config.parameters.ParameterSet` of a validated config."""
     free, fixed = cfg._param_objects
     return ParameterSet(free, fixed)
 

@@ -4,7 +4,7 @@ The question: "if I analyse my survey without the projection terms (or without t
 constraint, or ignoring the observer term), how far is f_NL pushed, in units of its error?"
 It is answered with Fisher matrices built on exactly the likelihood of a config (same data
 vector, k bins, window, integral constraint, observer term and covariance; the model comes from
-:func:`likelihood.model.build`), and confirmed by MCMC on a noiseless mock.
+:func:`likelihood.model.factories.build`), and confirmed by MCMC on a noiseless mock.
 
 Fisher matrix
 -------------
@@ -53,7 +53,7 @@ Validity. Linear response: the shift is accurate while Δθ is small compared to
 shift degrades once f_NL (b1 − p) α(k_min) is no longer small next to b1 over the range
 fiducial ± (σ + |Δ|); when |Δf_NL| ≳ σ(f_NL), confirm with ``--check-mcmc``. The model itself is
 linear theory with a plane-parallel kernel and local projection terms only (see
-:mod:`likelihood.tracer`); the Fisher matrix inherits those limits.
+:mod:`likelihood.theory.tracer`); the Fisher matrix inherits those limits.
 
 Scans
 -----

@@ -56,7 +56,7 @@ class BiasForecast:
     first-order shift Δθ (same order as ``fisher.names``); mu_truth, mu_analysis: masked model
     vectors at the fiducial point; chi2_total, chi2_residual: see :meth:`Fisher.chi2_of`;
     fnl_eff_neglected / fnl_eff_projection: f_NL mimicked at k → 0 by the neglected projection
-    terms / by all projection terms of the truth model (:func:`likelihood.tracer.effective_fnl`;
+    terms / by all projection terms of the truth model (:func:`likelihood.theory.tracer.effective_fnl`;
     None when undefined, e.g. b1 = p); info: survey and model description; warnings: unique
     warnings raised while building the models; analysis_config: the analysis Config.
     """

@@ -70,7 +70,7 @@ def mcmc_check(bias, out_dir, settings=None, tolerance=_MCMC_TOLERANCE):
     units of the Fisher σ; plus ``agree`` (|shift − Δ| <= tolerance σ for f_NL, or for every
     parameter when f_NL is not forecast), ``converged`` and notes. Disagreement means a
     non-Gaussian posterior or a bias beyond the linear regime (the Fisher shift is first order).
-    settings: :class:`likelihood.sampler.SamplerSettings` (default: the config's sampling section,
+    settings: :class:`likelihood.sampling.SamplerSettings` (default: the config's sampling section,
     no progress bar).
     """
     import yaml

@@ -19,7 +19,7 @@ A(y) = ∫ a(x) J_μ(xy) y dx on log-spaced grids. With j_ℓ(x) = sqrt(π/(2x))
     P_ℓ(k) = phase (2π)^{+3/2} k^{-3/2} fht[s^{3/2} ξ_ℓ](k)
 
 The discrete transform treats its input as periodic in ln k: the grid must extend far enough on
-both sides that k^{3/2} P(k) is small at the ends (see ``likelihood.observation.theory_k_grid``).
+both sides that k^{3/2} P(k) is small at the ends (see ``likelihood.observation.matrix.theory_k_grid``).
 With the same ``offset``, :func:`pk_from_xi` is the exact discrete inverse of :func:`xi_from_pk`
 and lands back on the original k grid.
 """
@@ -52,7 +52,7 @@ def log_step(x, name="k"):
     dln = (np.log(x[-1]) - np.log(x[0])) / (x.size - 1)
     if dln <= 0 or np.max(np.abs(d - dln)) > 1e-6 * max(dln, 1e-300) + 1e-12:
         raise ErgofitError(f"{name} grid: must be increasing and log-spaced "
-                           "(use numpy.geomspace or likelihood.observation.theory_k_grid)")
+                           "(use numpy.geomspace or likelihood.observation.matrix.theory_k_grid)")
     return dln
 
 

@@ -190,7 +190,7 @@ def measure_multipoles(mesh, field, window_mask=None, edges=None, ells=(0, 2, 4)
         P̂_ℓ(k) = (2ℓ+1)/I₂ < F_ℓ(k) F_0*(k) >_bin − δ_ℓ0 S,     I₂ = ∫ d³x W²,
 
     i.e. for a pair (x₁, x₂) the line of sight is x̂₁, the point of the un-conjugated factor, and
-    the pair enters as e^{-ik·(x₁−x₂)}: the convention of ``likelihood.window`` (Q_ℓ(s) with
+    the pair enters as e^{-ik·(x₁−x₂)}: the convention of ``likelihood.observation.window`` (Q_ℓ(s) with
     s = x₁ − x₂ and the line of sight x̂₁). Even ℓ do not depend on this choice; odd ℓ change
     sign with it.
 
@@ -204,7 +204,7 @@ def measure_multipoles(mesh, field, window_mask=None, edges=None, ells=(0, 2, 4)
     Feldman, Kaiser & Peacock 1994).
     ``window_mask``: None (W = 1, periodic box), a geometry with ``contains``, or weights on the mesh.
     ``cross``: a second field B (same conventions, its own ``nbar_cross``) for the cross spectrum
-    of A = ``field`` and B, P_AB(k, μ) = <Δ_A(k) Δ_B*(k)> (the ``likelihood.tracer`` convention):
+    of A = ``field`` and B, P_AB(k, μ) = <Δ_A(k) Δ_B*(k)> (the ``likelihood.theory.tracer`` convention):
     F_ℓ from A (line of sight at A's points), F_0 from B; no shot noise is subtracted
     (independent samples).
 

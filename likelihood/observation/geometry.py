@@ -12,6 +12,7 @@ import numpy as np
 
 from ..errors import DataError
 from . import window as win
+from .randoms import load_randoms, window_from_randoms
 
 
 def randoms_volume(positions, weights=None, n_mesh=64):
@@ -51,8 +52,8 @@ def window_and_volume(cfg, cosmo=None):
         w = win.CapShellWindow(geo["r_min"], geo["r_max"], geo["fsky"])
     else:
         path = cfg.resolve(geo["randoms"])
-        pos, wts = win.load_randoms(path, cosmo=cosmo)
-        return win.window_from_randoms(pos, wts, name=path), randoms_volume(pos, wts)
+        pos, wts = load_randoms(path, cosmo=cosmo)
+        return window_from_randoms(pos, wts, name=path), randoms_volume(pos, wts)
     return w, w.volume
 
 

@@ -2,7 +2,7 @@
 
 Data vector (ℓ-major): d = [P̂_ℓ0(bin 0..n−1), P̂_ℓ1(bin 0..n−1), ...] = M · t, with the theory
 t = [P_ℓ'0(k_theory), P_ℓ'1(k_theory), ...] on the fine log-spaced grid of :func:`theory_k_grid`.
-Odd ℓ carry the real Π_ℓ (P_ℓ = i Π_ℓ), see ``likelihood.hankel``.
+Odd ℓ carry the real Π_ℓ (P_ℓ = i Π_ℓ), see ``likelihood.numerics.hankel``.
 
 Window convolution (Wilson, Peacock, Taylor & de la Torre 2017, MNRAS 464, 3121)
 ----------------------------------------------------------------------------------
@@ -13,7 +13,7 @@ expansion ξ(s, μ) = Σ_ℓ' ξ_ℓ'(s) L_ℓ'(μ) at each line-of-sight point,
     P̂_ℓ(k) = 4π (−i)^ℓ ∫ s² ds j_ℓ(ks) ξ̂_ℓ(s),
     ξ̂_ℓ(s) = Σ_{ℓ',L} (2ℓ+1) (ℓ ℓ' L; 0 0 0)² ξ_ℓ'(s) Q_L(s),
 
-with Q_L the window multipoles of ``likelihood.window`` (L ≤ 8; terms with L > 8, needed only
+with Q_L the window multipoles of ``likelihood.observation.window`` (L ≤ 8; terms with L > 8, needed only
 when ℓ + ℓ' > 8, are dropped with a warning). The only approximation is the plane-parallel
 expansion of the correlation function about the line-of-sight point; wide-angle corrections
 (order s/r) are NOT included: they matter at the lowest k (k r ≲ a few) and for odd multipoles.

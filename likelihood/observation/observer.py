@@ -43,7 +43,7 @@ With the local line of sight n̂ = x̂, μ = k̂·x̂, and Δ_g(k) = [A + iμB +
 
 from (1/2)∫dμ μⁿ e^{ixμ}: n = 0 → j₀, n = 1 → i j₁, n = 2 → j₀/3 − (2/3) j₂ (expansion
 e^{ixμ} = Σ (2ℓ+1) iˡ jₗ(x) Lₗ(μ); e.g. Abramowitz & Stegun 10.1.47, from memory). Computed by
-FFTLog (:mod:`likelihood.hankel`) on the caller's log-spaced k grid; the sharp IR cut is applied
+FFTLog (:mod:`likelihood.numerics.hankel`) on the caller's log-spaced k grid; the sharp IR cut is applied
 with the fraction of each ln k cell above k_IR (second-order accurate in the grid step).
 
 The estimator applied to m
@@ -60,7 +60,7 @@ F_ℓ(k) = ∫d³x F e^{−ik·x} Lₗ(k̂·x̂) and P̂ₗ = (2ℓ+1)/I₂ <F_�
       E_ℓ(k) = (2ℓ+1)/I₂ (4π)² s_ℓ f_ℓ(k) f₀(k),                                          (3)
 
   independent of k̂; s_ℓ = Re (−i)^ℓ = (−1)^{ℓ/2} for even ℓ, and for odd ℓ the data convention
-  Πₗ = Im P̂ₗ gives s_ℓ = Im (−i)^ℓ = (−1)^{(ℓ+1)/2} (:func:`likelihood.hankel.ell_sign`).
+  Πₗ = Im P̂ₗ gives s_ℓ = Im (−i)^ℓ = (−1)^{(ℓ+1)/2} (:func:`likelihood.numerics.hankel.ell_sign`).
   f_ℓ by Gauss–Legendre in r (panels aligned with the window's edges), bins by Gauss–Legendre in
   k with the mode weight k² (∫k²E dk/∫k²dk, the continuous-shell average of ``KBins``).
 * Plain volume V (no window, periodic box): W = 1, I₂ = V, no mean subtraction (it only removes
@@ -75,7 +75,7 @@ F_ℓ(k) = ∫d³x F e^{−ik·x} Lₗ(k̂·x̂) and P̂ₗ = (2ℓ+1)/I₂ <F_�
   slow when cosmological parameters are sampled. A warning says so when this path is used.
 
 Regime of validity: linear theory (Gaussian fields); the tracer kernel is the plane-parallel kernel
-of :mod:`likelihood.tracer` applied with the local line of sight (its own wide-angle and
+of :mod:`likelihood.theory.tracer` applied with the local line of sight (its own wide-angle and
 non-local projection terms are missing). The observer's own velocity and potential terms of the
 number counts (a dipole and a monopole of the counts) are NOT part of this; c is an auxiliary
 field we condition on.
@@ -248,7 +248,7 @@ def sigma_c_table(cosmo, z=0.0, k_ir=(1e-4, K_IR_DEFAULT, 1e-3, 3e-3), smoothing
 # ---------------------------------------------------------------------------------------------
 def _kernel_arrays(kernel, k):
     if not isinstance(kernel, Kernel):
-        raise ErgofitError(f"observer: kernel must be a likelihood.tracer.Kernel, got "
+        raise ErgofitError(f"observer: kernel must be a likelihood.theory.tracer.Kernel, got "
                            f"{type(kernel).__name__}")
     try:
         A, B = np.broadcast_arrays(np.asarray(kernel.A, float), np.asarray(kernel.B, float), k)[:2]
@@ -276,7 +276,7 @@ def cross_correlation(cosmo, z, k, kernel, field="potential", smoothing=None, fi
     """ξ_gc(r) = <Δ_g(x) c(0)>, |x| = r, eq. (2) of the module docstring, by FFTLog.
 
     ``k``: log-spaced grid [h/Mpc] on which the kernel's A, B are given (e.g.
-    :func:`likelihood.observation.theory_k_grid`); it must start below k_IR. Returns (r, ξ_gc) on
+    :func:`likelihood.observation.matrix.theory_k_grid`); it must start below k_IR. Returns (r, ξ_gc) on
     the FFTLog output grid (r = e^offset/k reversed, Mpc/h).
     """
     field, smoothing, filter_kind, k_ir = _check_settings(field, smoothing, filter_kind, k_ir)
@@ -427,7 +427,7 @@ class ObserverTerm:
     k_ir : infrared cut-off [h/Mpc]; default a₀H₀/c = 1/2997.92458
     window : a geometry (SphereWindow, ShellWindow, CapShellWindow) or None (plain volume)
     volume : the plain volume V [(Mpc/h)³] when ``window`` is None
-    bins : :class:`likelihood.observation.KBins` of the data (needed by correction/templates)
+    bins : :class:`likelihood.observation.matrix.KBins` of the data (needed by correction/templates)
     ells : data multipoles (odd ℓ: Π_ℓ = Im P̂_ℓ, the data convention)
     ic : "global" (mean estimated from the data inside the window) or "none"
     k_min_data : smallest data k [h/Mpc]; k_ir must lie below it
@@ -461,7 +461,7 @@ class ObserverTerm:
         if ic not in ("none", "global"):
             raise ErgofitError(f"observer ic = {ic!r}: expected 'none' or 'global'")
         if bins is not None and not isinstance(bins, KBins):
-            raise ErgofitError(f"observer bins = {bins!r}: expected a likelihood.observation.KBins")
+            raise ErgofitError(f"observer bins = {bins!r}: expected a likelihood.observation.matrix.KBins")
         if method not in ("auto", "radial", "mesh"):
             raise ErgofitError(f"observer method = {method!r}: expected 'auto', 'radial' or 'mesh'")
         self.ic, self.bins, self.window = ic, bins, window
@@ -490,7 +490,7 @@ class ObserverTerm:
     # -- pieces ---------------------------------------------------------------------------------
     def _estimator(self):
         if self.bins is None:
-            raise ErgofitError("observer: bins (likelihood.observation.KBins) are needed for the "
+            raise ErgofitError("observer: bins (likelihood.observation.matrix.KBins) are needed for the "
                                "binned correction; pass bins=")
         if self._est is None:
             if self.method == "plain":

@@ -1,7 +1,7 @@
 """Posterior summaries of a run: getdist statistics, tables, triangle and multipoles figures.
 
-Everything here reads a :class:`likelihood.sampler.SamplerResult` (or the run folder through
-:func:`likelihood.sampler.load_chain`) and writes into the run folder:
+Everything here reads a :class:`likelihood.sampling.SamplerResult` (or the run folder through
+:func:`likelihood.sampling.load_chain`) and writes into the run folder:
 
 ``summary.json``      per parameter (sampled and derived): mean, std, median, 68% and 95%
                       marginal limits (getdist), best fit; plus run diagnostics, chi2/dof at the

@@ -5,7 +5,7 @@ Components (each adds to the previous): Newtonian (b1 + Kaiser RSD), + f_NL scal
 + relativistic projection terms (Doppler and potential). Linear theory, plane-parallel kernel,
 local projection terms only: see the README's regime of validity.
 
-With ``effects.observer`` on, also the observer term (:mod:`likelihood.observer`): the correction
+With ``effects.observer`` on, also the observer term (:mod:`likelihood.observation.observer`): the correction
 (ν² − 1) E_ℓ[m] for ν = 0, 1, 2, 3 next to the cosmic-variance band σ_P = P₀ √(2/N_modes),
 N_modes = V 4πk²Δk/(2π)³, in bins of width the survey's fundamental mode, saved as
 ``<out stem>_observer.png``.

@@ -126,7 +126,7 @@ def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells,
                            nbar=None, observer=None, out_dir=None, k_cut=None, progress=None):
     """Mocks of a configured survey: one data-vector file per mock plus ``covariance.txt``.
 
-    ``cosmo`` (``likelihood.cosmology.Cosmology``) gives P(k, z); ``likelihood.tracer.kernel(cosmo,
+    ``cosmo`` (``likelihood.theory.cosmology.Cosmology``) gives P(k, z); ``likelihood.theory.tracer.kernel(cosmo,
     z, k, tracer, effects)`` gives the observed-field kernel (A, B, F) evaluated once on the mesh's
     |k|; ``window`` a geometry or mask; ``observer`` None, an :class:`ObserverConstraint`, or a
     mapping like the config's ``observer`` section {"field": "potential"|"density", "nu_true": ν,

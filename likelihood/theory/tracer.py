@@ -346,7 +346,7 @@ def kernel(cosmo, z, k, tracer, effects=DEFAULT_EFFECTS):
 
 def _kernel(cosmo, z, k, tracer, effects, stacklevel):
     if not isinstance(tracer, Tracer):
-        raise ErgofitError(f"tracer must be a likelihood.tracer.Tracer, got {type(tracer).__name__}")
+        raise ErgofitError(f"tracer must be a likelihood.theory.tracer.Tracer, got {type(tracer).__name__}")
     names = _resolve_effects(effects)
     k = _wavenumbers(k)
     proj = names & set(PROJECTION_TERMS)
@@ -483,7 +483,7 @@ def effective_fnl(cosmo, z, tracer, effects=DEFAULT_EFFECTS):
     the match is of the leading large-scale term only.
     """
     if not isinstance(tracer, Tracer):
-        raise ErgofitError(f"tracer must be a likelihood.tracer.Tracer, got {type(tracer).__name__}")
+        raise ErgofitError(f"tracer must be a likelihood.theory.tracer.Tracer, got {type(tracer).__name__}")
     names = _resolve_effects(effects)
     proj = names & set(PROJECTION_TERMS)
     z = _scalar_redshift(z, positive=True)

@@ -7,8 +7,8 @@ from scipy import integrate
 from scipy.special import eval_legendre
 
 from likelihood.errors import ConfigError, DataError
-from likelihood.observation.window import (CapShellWindow, ShellWindow, SphereWindow, WindowMultipoles,
-                               load_randoms, radec_to_cartesian, window_from_randoms)
+from likelihood.observation.randoms import load_randoms, radec_to_cartesian, window_from_randoms
+from likelihood.observation.window import CapShellWindow, ShellWindow, SphereWindow, WindowMultipoles
 
 R = 1000.0
 
