@@ -730,8 +730,8 @@ def _initial_ball(lik: Any, start, scale, bounds, names, settings: SamplerSettin
             return coords, log_prob
     raise ErgofitError(
         f"could not place {int(todo.sum())} of {n_walkers} walkers inside the prior (finite "
-        f"log_prob) in {_MAX_BALL_ROUNDS} draws around start; reduce start_scale or move start "
-        f"of {names} away from the prior edges"
+        f"log_prob) in {_MAX_BALL_ROUNDS} draws around start; reduce parameters.<name>.scale or "
+        f"move parameters.<name>.start of {names} away from the prior edges"
     )
 
 
@@ -915,8 +915,8 @@ def _sample(lik, settings: SamplerSettings, path: str, pool, coords, log_prob, r
                         raise
                     if "condition number" in str(exc):
                         raise ErgofitError(
-                            "initial walkers are not linearly independent; increase start_scale "
-                            "or the sampler setting 'ball'") from None
+                            "initial walkers are not linearly independent; increase "
+                            "parameters.<name>.scale of the sampled parameters") from None
                     raise
             finally:
                 writer.flush()
