@@ -61,11 +61,66 @@ def cmd_run(args):
 
 def _run(args, pool):
     from .config import load_config
+    from .sampler import CHAIN_FILENAME, chain_status
+    cfg = load_config(args.config)
+    out = args.out or cfg.output_folder
+    chain = os.path.join(out, CHAIN_FILENAME)
+    if os.path.isfile(chain) and not args.resume:
+        return _existing_run(cfg, out, chain, chain_status(chain))
+    existed = os.path.isdir(out)
+    _out_dir(out)
+    had_chain = os.path.isfile(chain)
+    try:
+        return _sample_and_summarise(args, cfg, out, pool)
+    except BaseException:
+        _remove_unstarted(out, chain, existed, had_chain)
+        raise
+
+
+def _existing_run(cfg, out, chain, status):
+    """A second `ergofit run` of a config whose chain exists (without --resume)."""
+    stored_hash, state, n = status
+    if stored_hash != cfg.hash:
+        raise ErgofitError(f"{chain}: made by a different config (hash {stored_hash}, this config "
+                           f"{cfg.hash}); start afresh with --out NEW_FOLDER or remove {out}")
+    if state != "converged":
+        raise ErgofitError(f"{chain}: an unfinished run of this config ({n} steps, {state}); "
+                           "continue it with --resume (raise sampling.max_steps if it stopped there)")
+    from .summary import constraints_text
+    path = os.path.join(out, "summary.json")
+    if os.path.isfile(path):
+        import json
+        with open(path, encoding="utf-8") as fh:
+            summary = json.load(fh)
+    else:
+        from .sampler import load_chain
+        from .summary import write_summary
+        summary = write_summary(out, load_chain(out), _rebuild(out))
+    print(f"{out}: this config was run to convergence already ({n} steps); nothing recomputed. "
+          "Its constraints:")
+    print(constraints_text(summary))
+    return 0
+
+
+def _remove_unstarted(out, chain, existed, had_chain):
+    """Leave nothing behind from a run that did not start (no stored step)."""
+    from .sampler import chain_status
+    if os.path.isfile(chain) and not had_chain:
+        try:
+            started = chain_status(chain)[2] > 0
+        except ErgofitError:
+            started = False
+        if started:
+            return
+        os.remove(chain)
+    if not existed and os.path.isdir(out) and not os.listdir(out):
+        os.rmdir(out)
+
+
+def _sample_and_summarise(args, cfg, out, pool):
     from .model import build
     from .sampler import run_sampler
-    from .summary import write_summary
-    cfg = load_config(args.config)
-    out = _out_dir(args.out or cfg.output_folder)
+    from .summary import constraints_text, write_summary
     lik = build(cfg)
     settings = _settings(cfg, args)
     if lik.n_walkers_min() > settings.n_walkers:
@@ -84,9 +139,10 @@ def _run(args, pool):
     cfg_copy = os.path.join(out, "config.yaml")
     if os.path.abspath(args.config) != os.path.abspath(cfg_copy):
         _write_config_copy(args.config, cfg_copy)
-    write_summary(out, result, lik)
-    print(f"outputs in {out}/: chain.h5, summary.json, constraints.md, constraints.tex, "
-          f"triangle.png, triangle.pdf, multipoles.png")
+    summary = write_summary(out, result, lik)
+    print(f"outputs in {out}/: chain.h5, config.yaml, summary.json, constraints.md, "
+          "constraints.tex, triangle.png, triangle.pdf, multipoles.png")
+    print(constraints_text(summary))
     if not result.converged:
         print("WARNING: the chain did not converge (see summary.json: converged=false); "
               "raise sampling.max_steps and rerun with --resume")

@@ -694,6 +694,12 @@ def _chain_path(out_dir: str | os.PathLike) -> str:
     return os.path.join(out_dir, CHAIN_FILENAME)
 
 
+def chain_status(path: str | os.PathLike) -> tuple[str, str, int]:
+    """(config hash, status, number of stored steps) of a chain file, without its arrays."""
+    stored = _read_chain(os.fspath(path), with_arrays=False)
+    return stored.config_hash, stored.status, int(stored.iteration)
+
+
 def load_chain(out_dir: str | os.PathLike) -> SamplerResult:
     """Read the chain of a finished or interrupted run (``OUT_DIR/chain.h5``, or a ``.h5`` path).
 

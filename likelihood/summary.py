@@ -267,8 +267,9 @@ def _constraints_markdown(summary: dict) -> str:
         f"{summary['acceptance_fraction']:.2f}; config hash `{summary['config_hash']}`."
     )
     if summary["chi2"] is not None:
+        pte = summary.get("chi2_pte")
         lines.append(f"Best fit: chi2 = {summary['chi2']:.2f} for {summary['dof']} degrees of "
-                     "freedom.")
+                     "freedom" + (f" (probability to exceed {pte:.3g})." if pte is not None else "."))
     lines += ["", "| parameter | mean and 68% limits | 68% interval | 95% interval | best fit |",
               "|:--|:--|:--|:--|:--|"]
     for name, e in summary["parameters"].items():
@@ -492,12 +493,16 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
             params[name]["best_fit"] = _num(d_best[0, j])
         if hasattr(lik, "chi2") and hasattr(lik, "dof"):
             chi2, dof = _num(lik.chi2(np.asarray(result.best_fit, float))), int(lik.dof)
+            if chi2 is None:
+                notes.append("the best-fit chi2 is not finite: the model cannot describe the data")
         if not can_plot:
             notes.append("the likelihood has no observables(): multipoles.png left out")
     else:
         notes.append("no likelihood given: derived parameters, chi2/dof and multipoles.png left out")
     if not can_plot and os.path.exists(os.path.join(out_dir, "multipoles.png")):
         notes.append("multipoles.png in this folder is from an earlier summary")
+    pte = fit_probability(chi2, dof)
+    notes += _fit_warnings(chi2, dof, pte) + prior_edge_notes(result)
     tau = {n: _num(t) for n, t in zip(result.parameter_names, result.tau)}
     summary = {
         "label": label,
@@ -516,6 +521,7 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
         "best_fit_log_posterior": _num(result.best_log_prob),
         "chi2": chi2,
         "dof": dof,
+        "chi2_pte": pte,
         "credible_levels": list(_CONTOURS),
         "parameters": params,
         "notes": notes,
@@ -531,6 +537,79 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
             else label
         plot_multipoles(lik, result.best_fit, os.path.join(out_dir, "multipoles.png"), title=title)
     return summary, samples
+
+
+#: A best fit with a probability to exceed below this is reported as unacceptable.
+PTE_MIN = 1e-3
+#: Prior-edge rule: more than EDGE_FRACTION of the samples within EDGE_BAND (a fraction of the
+#: prior width) of a finite bound, i.e. five times what a posterior flat over the prior puts there.
+EDGE_BAND, EDGE_FRACTION = 0.02, 0.10
+
+
+class FitWarning(UserWarning):
+    """The best fit is unacceptable, or the posterior is cut by a prior bound."""
+
+
+def fit_probability(chi2: float | None, dof: int | None) -> float | None:
+    """Probability to exceed the best-fit chi2 for dof degrees of freedom (chi-square
+    distribution; valid for a Gaussian likelihood with a known covariance)."""
+    if chi2 is None or dof is None or dof <= 0:
+        return None
+    from scipy.stats import chi2 as chi2_dist
+    return float(chi2_dist.sf(chi2, dof))
+
+
+def _fit_warnings(chi2, dof, pte) -> list[str]:
+    if pte is None or pte >= PTE_MIN:
+        return []
+    msg = (f"unacceptable fit: best-fit chi2 = {chi2:.4g} for {dof} degrees of freedom "
+           f"(probability to exceed {pte:.2g} < {PTE_MIN:g}); check the data and covariance "
+           "(units, shot-noise convention, k range) and the effects switched on")
+    warnings.warn(msg, FitWarning, stacklevel=4)
+    return [msg]
+
+
+def prior_edge_notes(result: SamplerResult) -> list[str]:
+    """A note (and a FitWarning) for each parameter whose posterior piles up at a finite prior
+    bound (rule: EDGE_FRACTION of the samples within EDGE_BAND of the prior width)."""
+    notes = []
+    for j, name in enumerate(result.parameter_names):
+        lo, hi = (float(b) for b in result.prior_bounds[j])
+        if not (np.isfinite(lo) and np.isfinite(hi)) or len(result.samples) == 0:
+            continue
+        x = result.samples[:, j]
+        band = EDGE_BAND * (hi - lo)
+        for side, frac in (("lower", np.mean(x < lo + band)), ("upper", np.mean(x > hi - band))):
+            if frac > EDGE_FRACTION:
+                bound = lo if side == "lower" else hi
+                msg = (f"the posterior of '{name}' sits on its {side} prior bound {bound:g} "
+                       f"({100 * frac:.0f}% of the samples within {100 * EDGE_BAND:g}% of the prior "
+                       f"width): widen parameters.{name} or treat the limit as prior-driven")
+                warnings.warn(msg, FitWarning, stacklevel=4)
+                notes.append(msg)
+    return notes
+
+
+def constraints_text(summary: dict) -> str:
+    """The constraints of a summary as plain text for the terminal: mean ± σ, 68% limits and
+    best fit per parameter, then χ²/dof with its probability to exceed, τ and convergence."""
+    rows = [("parameter", "mean +/- std", "68% interval", "best fit")]
+    for name, e in summary["parameters"].items():
+        rows.append((name + (" (derived)" if e["derived"] else ""),
+                     _central_text(e, tex=False).replace("±", "+/-"),
+                     _interval(e, "68", False), _best(e)))
+    widths = [max(len(r[i]) for r in rows) for i in range(4)]
+    lines = ["  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows]
+    lines.insert(1, "  ".join("-" * w for w in widths))
+    if summary.get("chi2") is not None:
+        pte = summary.get("chi2_pte")
+        lines.append(f"best fit: chi2 = {summary['chi2']:.2f} for {summary['dof']} dof"
+                     + (f" (probability to exceed {pte:.3g})" if pte is not None else ""))
+    tau = summary.get("tau_max")
+    lines.append(f"{summary['n_steps']} steps x {summary['n_walkers']} walkers, max tau = "
+                 f"{'?' if tau is None else f'{tau:.1f}'}, "
+                 f"{'converged' if summary['converged'] else 'NOT converged'}")
+    return "\n".join(lines)
 
 
 def _labels_for(run_dirs: Sequence[str], labels: Sequence[str] | None) -> list[str]:

@@ -42,6 +42,7 @@ def test_rerun_refused_and_other_config_refused(write_config, tmp_path, capsys):
     assert main(["run", write_config(small), "--out", str(out), "--quiet"]) == 0
     chain = (out / "chain.h5").read_bytes()
     capsys.readouterr()
+    # the same config again: a finished (max_steps, not converged) run says --resume
     assert main(["run", write_config(small), "--out", str(out), "--quiet"]) == 2
     assert "--resume" in capsys.readouterr().err
     other = dict(small, tracer={"b1": 2.0, "fnl": 0.0, "b_e": 0.5, "s": 0.3})
@@ -49,6 +50,40 @@ def test_rerun_refused_and_other_config_refused(write_config, tmp_path, capsys):
     err = capsys.readouterr().err
     assert "different config" in err or "config hash" in err
     assert (out / "chain.h5").read_bytes() == chain
+    assert main(["run", write_config(other, "other.yaml"), "--out", str(out), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "different config" in err and "--out" in err
+    assert (out / "chain.h5").read_bytes() == chain
+
+
+def test_second_run_of_a_converged_config_reports_it(write_config, tmp_path, capsys):
+    """Running the same command twice: the finished run is reported with its constraints and
+    nothing is recomputed (issue 15, item 9)."""
+    out = tmp_path / "run"
+    cfg = write_config(dict(SMALL, sampling=dict(SMALL["sampling"], tau_factor=10, tau_rtol=0.5)))
+    assert main(["run", cfg, "--out", str(out), "--quiet"]) == 0
+    first = capsys.readouterr().out
+    assert "best fit: chi2 =" in first and "probability to exceed" in first
+    stamp = {p.name: p.stat().st_mtime_ns for p in out.iterdir()}
+    assert main(["run", cfg, "--out", str(out), "--quiet"]) == 0
+    again = capsys.readouterr().out
+    assert "nothing recomputed" in again and "fnl" in again
+    assert {p.name: p.stat().st_mtime_ns for p in out.iterdir()} == stamp
+
+
+def test_failed_start_leaves_nothing(write_config, tmp_path, capsys):
+    """A run that cannot start (every walker outside the prior) leaves no folder and no 0-step
+    chain behind, so the corrected config runs at once (issue 15, item 8)."""
+    out = tmp_path / "run"
+    bad = dict(SMALL, parameters=dict(SMALL["parameters"],
+                                      fnl={"flat": [-200.0, 200.0], "start": 199.99, "scale": 1e6}))
+    assert main(["run", write_config(bad), "--out", str(out), "--quiet"]) == 2
+    assert "could not place" in capsys.readouterr().err
+    assert not out.exists()
+    out.mkdir()                                  # an existing folder keeps existing, but empty
+    assert main(["run", write_config(bad), "--out", str(out), "--quiet"]) == 2
+    assert list(out.iterdir()) == []
+    assert main(["run", write_config(SMALL), "--out", str(out), "--quiet"]) == 0
 
 
 def test_unwritable_output_folder(write_config, tmp_path, capsys):
