@@ -168,19 +168,26 @@ def _write_config_copy(src, dst):
 
 
 def cmd_summarize(args):
-    from .summary import summarize
+    from .summary import constraints_text, summarize
     for d in args.run_dirs:
         if not os.path.isfile(os.path.join(d, "chain.h5")):
             raise ErgofitError(f"{d}: no chain.h5 in this folder; give run folders written by 'ergofit run'")
     labels = args.labels
     if labels and len(labels) != len(args.run_dirs):
         raise ErgofitError(f"--labels: {len(labels)} labels for {len(args.run_dirs)} run folders")
-    out = args.out or "overlay"
-    if len(args.run_dirs) > 1:
-        _out_dir(os.path.dirname(os.path.abspath(out)) or ".")
-    summarize(args.run_dirs, labels=labels, lik_factory=_rebuild, overlay_path=out)
-    if len(args.run_dirs) > 1:
-        print(f"overlay written to {out}.png and {out}.pdf")
+    out = args.out
+    if out is None and len(args.run_dirs) > 1:
+        out = os.path.join("chains", "overlay")
+    if out is not None:
+        _out_dir(out)
+    summaries = summarize(args.run_dirs, labels=labels, lik_factory=_rebuild, out_dir=out)
+    for d, s in zip(args.run_dirs, summaries):
+        print(f"== {s['label']} ({d})")
+        print(constraints_text(s))
+    where = out if out is not None else args.run_dirs[0]
+    print(f"written to {where}/: " + ("triangle.png, triangle.pdf, constraints.md, summary.json"
+                                      if out is not None else "summary.json, constraints.md, "
+                                      "constraints.tex, triangle.png, triangle.pdf, multipoles.png"))
     return 0
 
 
@@ -225,7 +232,9 @@ def make_parser():
     s = sub.add_parser("summarize", help="tables and figures from finished run folders")
     s.add_argument("run_dirs", nargs="+")
     s.add_argument("--labels", nargs="+")
-    s.add_argument("--out", help="path stem of the overlay figure (several runs)")
+    s.add_argument("--out", help="output folder for the overlay and the combined tables "
+                   "(default chains/overlay with several runs; with one run and no --out, the "
+                   "run folder's own summary is rewritten)")
     s.set_defaults(func=cmd_summarize)
 
     s = sub.add_parser("forecast", help="Fisher forecasts and f_NL biases from neglected effects")

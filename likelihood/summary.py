@@ -478,6 +478,22 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
         raise ErgofitError(f"output folder {out_dir} does not exist")
     if label is None:
         label = os.path.basename(os.path.abspath(out_dir))
+    summary, samples, can_plot = _compute_summary(out_dir, result, lik, label)
+    write_text(os.path.join(out_dir, "summary.json"),
+               json.dumps(summary, indent=2, allow_nan=False) + "\n")
+    write_text(os.path.join(out_dir, "constraints.md"), _constraints_markdown(summary))
+    write_text(os.path.join(out_dir, "constraints.tex"), _constraints_tex(summary))
+    plot_triangle([samples], os.path.join(out_dir, "triangle"), params=list(result.parameter_names))
+    if can_plot:
+        chi2, dof = summary["chi2"], summary["dof"]
+        title = f"{label}: best fit, $\\chi^2$ = {chi2:.1f} for {dof} d.o.f." if chi2 is not None \
+            else label
+        plot_multipoles(lik, result.best_fit, os.path.join(out_dir, "multipoles.png"), title=title)
+    return summary, samples
+
+
+def _compute_summary(out_dir, result: SamplerResult, lik: Any, label: str):
+    """(summary dict, getdist samples, whether multipoles.png can be drawn); writes nothing."""
     samples = make_samples(result, lik, label=label)
     params = marginal_stats(samples)
     notes = list(result.notes)
@@ -526,17 +542,7 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
         "parameters": params,
         "notes": notes,
     }
-    summary = _clean(summary)
-    write_text(os.path.join(out_dir, "summary.json"),
-                json.dumps(summary, indent=2, allow_nan=False) + "\n")
-    write_text(os.path.join(out_dir, "constraints.md"), _constraints_markdown(summary))
-    write_text(os.path.join(out_dir, "constraints.tex"), _constraints_tex(summary))
-    plot_triangle([samples], os.path.join(out_dir, "triangle"), params=list(result.parameter_names))
-    if can_plot:
-        title = f"{label}: best fit, $\\chi^2$ = {chi2:.1f} for {dof} d.o.f." if chi2 is not None \
-            else label
-        plot_multipoles(lik, result.best_fit, os.path.join(out_dir, "multipoles.png"), title=title)
-    return summary, samples
+    return _clean(summary), samples, can_plot
 
 
 #: A best fit with a probability to exceed below this is reported as unacceptable.
@@ -649,26 +655,40 @@ def overlay(run_dirs: Sequence[str | os.PathLike], labels: Sequence[str] | None,
 
 def summarize(run_dirs: Sequence[str | os.PathLike], labels: Sequence[str] | None = None,
               lik_factory: Callable[[str], Any] | None = None,
-              overlay_path: str | os.PathLike | None = None) -> list[dict]:
+              out_dir: str | os.PathLike | None = None) -> list[dict]:
     """Re-summarise runs from their folders alone (the command-line ``summarize``).
 
-    For each folder: read the chain, rebuild the likelihood with ``lik_factory(run_dir)`` when
-    given (from the run's stored config), and :func:`write_summary` into the folder. With more
-    than one folder, also overlay them in one triangle plot at ``overlay_path`` (default
-    ``overlay`` in the current folder: overlay.png and overlay.pdf). Returns the summary dicts.
+    One folder and no ``out_dir``: read the chain, rebuild the likelihood with
+    ``lik_factory(run_dir)`` when given (from the run's stored config), and :func:`write_summary`
+    into that folder. Otherwise nothing is written into the run folders: ``out_dir`` (created if
+    needed) receives ``triangle.png``/``.pdf`` (the runs overlaid, for several runs; the run's own
+    triangle for one), ``constraints.md`` (one table per run) and ``summary.json``
+    (``{"runs": [summary, ...]}``). Returns the summary dicts.
     """
     run_dirs = [os.fspath(d) for d in run_dirs]
     if not run_dirs:
         raise ErgofitError("summarize: give at least one run folder")
     labels = _labels_for(run_dirs, labels)
+    if out_dir is None:
+        if len(run_dirs) > 1:
+            raise ErgofitError("summarize: several runs need an output folder for the overlay")
+        result = load_chain(run_dirs[0])
+        lik = lik_factory(run_dirs[0]) if lik_factory is not None else None
+        return [_write_summary(run_dirs[0], result, lik, labels[0])[0]]
+    out_dir = os.fspath(out_dir)
+    if any(os.path.abspath(out_dir) == os.path.abspath(d) for d in run_dirs):
+        raise ErgofitError(f"summarize: the output folder {out_dir} is one of the run folders; "
+                           "choose another")
+    os.makedirs(out_dir, exist_ok=True)
     summaries, samples_list = [], []
     for d, lab in zip(run_dirs, labels):
-        result = load_chain(d)
         lik = lik_factory(d) if lik_factory is not None else None
-        summary, samples = _write_summary(d, result, lik, lab)
+        summary, samples, _ = _compute_summary(out_dir, load_chain(d), lik, lab)
         summaries.append(summary)
         samples_list.append(samples)
-    if len(run_dirs) > 1:
-        path = os.fspath(overlay_path) if overlay_path is not None else "overlay"
-        _overlay_samples(samples_list, labels, path)
+    _overlay_samples(samples_list, labels, os.path.join(out_dir, "triangle"))
+    write_text(os.path.join(out_dir, "constraints.md"),
+               "\n".join(_constraints_markdown(s) for s in summaries))
+    write_text(os.path.join(out_dir, "summary.json"),
+               json.dumps({"runs": summaries}, indent=2, allow_nan=False) + "\n")
     return summaries
