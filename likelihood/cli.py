@@ -149,20 +149,43 @@ def _sample_and_summarise(args, cfg, out, pool):
     return 0
 
 
+#: Input files up to this size are copied into the run folder (inputs/), so the folder is
+#: portable; larger ones are referenced by a path relative to the run folder.
+COPY_INPUTS_MAX_BYTES = 50 * 2**20
+
+
 def _write_config_copy(src, dst):
-    """Copy the config next to the chain with input paths made absolute (so it can be rebuilt)."""
+    """Copy the config next to the chain with its input files made portable: small inputs are
+    copied into ``inputs/`` beside it, large ones referenced relative to the run folder. The
+    config hash depends on file contents only, so the copy has the hash of the original."""
+    import glob
+    import shutil
     import yaml
-    from .config import load_config
+    from .config import Config, load_config
     cfg = load_config(src)
+    run_dir = os.path.dirname(os.path.abspath(dst))
     with open(src, encoding="utf-8") as fh:
         raw = yaml.safe_load(fh)
-    for sec, key in (("data", "file"), ("covariance", "file"), ("covariance", "mocks"),
-                     ("cosmology", "table")):
+
+    def portable(rel, pattern=False):
+        path = cfg.resolve(rel)
+        files = sorted(glob.glob(path)) if pattern else [path]
+        if sum(os.path.getsize(f) for f in files) > COPY_INPUTS_MAX_BYTES:
+            return os.path.relpath(path, run_dir)
+        sub = os.path.join("inputs", "mocks") if pattern else "inputs"
+        os.makedirs(os.path.join(run_dir, sub), exist_ok=True)
+        for f in files:
+            target = os.path.join(run_dir, sub, os.path.basename(f))
+            if os.path.abspath(f) != os.path.abspath(target):
+                shutil.copyfile(f, target)
+        return os.path.join(sub, os.path.basename(path))
+
+    for sec, key in Config.INPUT_FILES:
         if isinstance(raw.get(sec), dict) and key in raw[sec]:
-            raw[sec][key] = os.path.abspath(cfg.resolve(raw[sec][key]))
+            raw[sec][key] = portable(raw[sec][key], pattern=(sec, key) == ("covariance", "mocks"))
     geo = (raw.get("survey") or {}).get("geometry") or {}
     if "randoms" in geo:
-        geo["randoms"] = os.path.abspath(cfg.resolve(geo["randoms"]))
+        geo["randoms"] = portable(geo["randoms"])
     raw.setdefault("run", cfg.run_name)
     write_text(dst, yaml.safe_dump(raw, sort_keys=False))
 

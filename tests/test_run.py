@@ -32,8 +32,12 @@ def test_injection_recovery_fnl(write_config, tmp_path):
         assert key in summ
     for key in ("mean", "std", "median", "interval68", "interval95", "best_fit"):
         assert key in f
-    # the stored config rebuilds the likelihood: summarize works from the run folder alone
+    # the stored config rebuilds the likelihood: summarize works from the run folder alone,
+    # also after the folder has been moved away from the inputs (issue 15, item 6)
     assert main(["summarize", str(out)]) == 0
+    moved = tmp_path / "elsewhere" / "run"
+    shutil.move(str(out), str(moved))
+    assert main(["summarize", str(moved)]) == 0
 
 
 def test_rerun_refused_and_other_config_refused(write_config, tmp_path, capsys):
@@ -131,3 +135,30 @@ def test_resume_with_more_steps(write_config, tmp_path):
     assert main(["run", write_config(longer, "longer.yaml"), "--out", str(out), "--resume", "--quiet"]) == 0
     summ = json.loads((out / "summary.json").read_text())
     assert summ["n_steps"] == 300
+
+
+def test_run_folder_is_portable(tmp_path, monkeypatch):
+    """The stored config references copies of its input files inside the run folder, so a moved
+    folder still summarises, with the same config hash (issue 15, item 6)."""
+    import yaml
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    src = tmp_path / "src"
+    src.mkdir()
+    for name in ("demo_data.txt", "demo_cov.txt"):
+        shutil.copy(os.path.join(root, "configs", name), src / name)
+    cfg = yaml.safe_load(open(os.path.join(root, "configs", "demo.yaml")))
+    cfg["sampling"].update(max_steps=60, check_every=30, walkers=8)
+    (src / "demo.yaml").write_text(yaml.safe_dump(cfg))
+    out = tmp_path / "run"
+    assert main(["run", str(src / "demo.yaml"), "--out", str(out), "--quiet"]) == 0
+    stored = yaml.safe_load((out / "config.yaml").read_text())
+    assert stored["data"]["file"] == os.path.join("inputs", "demo_data.txt")
+    assert stored["covariance"]["file"] == os.path.join("inputs", "demo_cov.txt")
+    shutil.rmtree(src)                                   # the original inputs are gone
+    moved = tmp_path / "far" / "away"
+    shutil.move(str(out), str(moved))
+    monkeypatch.chdir(tmp_path)
+    assert main(["summarize", str(moved)]) == 0
+    from likelihood import load_config
+    assert load_config(str(moved / "config.yaml")).hash == \
+        json.loads((moved / "summary.json").read_text())["config_hash"]
