@@ -37,6 +37,7 @@ import json
 import math
 import os
 import signal
+import sys
 import threading
 import time
 import uuid
@@ -935,9 +936,45 @@ def _sample(lik, settings: SamplerSettings, path: str, pool, coords, log_prob, r
     return converged
 
 
+class _LineProgress:
+    """Progress for a log file (stderr not a terminal): one line every ``percent`` % of the
+    steps or every ``seconds``, instead of carriage-return updates."""
+
+    def __init__(self, total: int, initial: int, percent: float = 10.0, seconds: float = 60.0,
+                 stream=None):
+        self.total, self.n = total, initial
+        self.every = max(1, int(total * percent / 100.0))
+        self.seconds = seconds
+        self.stream = sys.stderr if stream is None else stream
+        self.postfix = ""
+        self.t0 = self.t_last = time.monotonic()
+        self.n_last = initial
+
+    def update(self, k: int = 1) -> None:
+        self.n += k
+        now = time.monotonic()
+        if self.n // self.every > self.n_last // self.every or now - self.t_last >= self.seconds:
+            self._line(now)
+
+    def set_postfix_str(self, text: str, refresh: bool = False) -> None:
+        self.postfix = text
+
+    def _line(self, now: float) -> None:
+        rate = (self.n - self.n_last) / max(now - self.t_last, 1e-9)
+        print(f"sampling: {self.n}/{self.total} steps ({100.0 * self.n / self.total:.0f}%), "
+              f"{rate:.0f} steps/s, {self.postfix}".rstrip(", "), file=self.stream, flush=True)
+        self.t_last, self.n_last = now, self.n
+
+    def close(self) -> None:
+        if self.n != self.n_last:
+            self._line(time.monotonic())
+
+
 def _progress_bar(settings: SamplerSettings, n0: int):
     if not settings.progress:
         return None
+    if not sys.stderr.isatty():
+        return _LineProgress(settings.max_steps, n0)
     from tqdm.auto import tqdm
 
     return tqdm(total=settings.max_steps, initial=n0, unit="step", desc="sampling",
