@@ -5,6 +5,7 @@ Exit codes: 0 on success, 2 on bad input (one line on stderr), 1 on an unexpecte
 from __future__ import annotations
 
 import argparse
+import logging
 import os
 import sys
 import warnings
@@ -30,8 +31,7 @@ def cmd_theory(args):
     from .theory_report import theory_report
     from .config import load_config
     cfg = load_config(args.config)
-    out = args.out or os.path.join(cfg.output_folder, "theory.txt")
-    _out_dir(os.path.dirname(os.path.abspath(out)))
+    out = os.path.join(_out_dir(args.out or cfg.output_folder), "theory.txt")
     for line in theory_report(cfg, out, fnl=args.fnl):
         print(line)
     return 0
@@ -218,12 +218,12 @@ def cmd_window(args):
     from .cosmology import Cosmology
     from .window import load_randoms, window_from_randoms
     pos, wts = load_randoms(args.randoms, cosmo=Cosmology.from_preset(args.preset))
-    _out_dir(os.path.dirname(os.path.abspath(args.out)))
     wm = window_from_randoms(pos, wts, s_max=args.s_max, name=args.randoms)
-    wm.save(args.out)
-    png = os.path.splitext(args.out)[0] + ".png"
+    out = _out_dir(args.out)
+    table, png = os.path.join(out, "window.txt"), os.path.join(out, "window.png")
+    wm.save(table)
     wm.plot(png)
-    print(f"window multipoles Q_0..Q_8 written to {args.out}; plot {png}")
+    print(f"window multipoles Q_0..Q_8 written to {table}; plot {png}")
     return 0
 
 
@@ -237,64 +237,111 @@ def cmd_simulate(args):
     return simulate_cli(args)
 
 
+def _sub(sub, name, help_text, example):
+    return sub.add_parser(name, help=help_text, description=help_text[0].upper() + help_text[1:] + ".",
+                          epilog=f"example:\n  {example}",
+                          formatter_class=argparse.RawDescriptionHelpFormatter)
+
+
 def make_parser():
+    from . import __version__
     p = argparse.ArgumentParser(prog="ergofit", description="Fit the largest-scale galaxy power "
                                 "spectrum multipoles: f_NL, projection terms, window, integral "
-                                "constraint and the observer term.")
+                                "constraint and the observer term. Every --out is an output folder.",
+                                epilog="start with: ergofit run configs/demo.yaml",
+                                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--version", action="version", version=f"ergofit {__version__}")
     sub = p.add_subparsers(dest="command", required=True)
+    cfg_help = "YAML config file (see the README's config section)"
 
-    s = sub.add_parser("run", help="sample the posterior of a config with emcee")
-    s.add_argument("config")
+    s = _sub(sub, "run", "sample the posterior of a config with emcee",
+             "ergofit run configs/demo.yaml --processes 2")
+    s.add_argument("config", help=cfg_help)
     s.add_argument("--resume", action="store_true", help="continue an interrupted run in its folder")
     s.add_argument("--out", help="output folder (default: output.folder or chains/<run>)")
-    s.add_argument("--processes", type=int, default=0, help="process pool size on this machine")
-    s.add_argument("--mpi", action="store_true", help="distribute walkers over MPI ranks")
+    s.add_argument("--processes", type=_positive_int, default=0, help="process pool size on this machine")
+    s.add_argument("--mpi", action="store_true", help="distribute walkers over MPI ranks (under mpiexec)")
     s.add_argument("--quiet", action="store_true", help="no progress bar")
     s.set_defaults(func=cmd_run)
 
-    s = sub.add_parser("summarize", help="tables and figures from finished run folders")
-    s.add_argument("run_dirs", nargs="+")
-    s.add_argument("--labels", nargs="+")
+    s = _sub(sub, "summarize", "tables and figures from finished run folders",
+             'ergofit summarize chains/a chains/b --labels "model A" "model B" --out chains/overlay')
+    s.add_argument("run_dirs", nargs="+", metavar="RUN_FOLDER",
+                   help="folders written by 'ergofit run' (chain.h5 and config.yaml)")
+    s.add_argument("--labels", nargs="+", help="one legend/table label per run folder "
+                   "(default: the folder names)")
     s.add_argument("--out", help="output folder for the overlay and the combined tables "
                    "(default chains/overlay with several runs; with one run and no --out, the "
                    "run folder's own summary is rewritten)")
     s.set_defaults(func=cmd_summarize)
 
-    s = sub.add_parser("forecast", help="Fisher forecasts and f_NL biases from neglected effects")
-    s.add_argument("config")
-    s.add_argument("--out")
-    s.add_argument("--check-mcmc", action="store_true")
-    s.add_argument("--mpi", action="store_true")
-    s.add_argument("--processes", type=int, default=0)
+    s = _sub(sub, "forecast", "Fisher forecasts and f_NL biases from neglected effects",
+             "ergofit forecast configs/fnl_bias.yaml --processes 2")
+    s.add_argument("config", help=cfg_help + "; its forecast section says what to neglect or scan")
+    s.add_argument("--out", help="output folder (default: <output folder of the config>/forecast)")
+    s.add_argument("--check-mcmc", action="store_true",
+                   help="also run a short MCMC on the noiseless truth mock and compare its widths")
+    s.add_argument("--mpi", action="store_true", help="run a scan's points on MPI ranks")
+    s.add_argument("--processes", type=_positive_int, default=0,
+                   help="run a scan's points on a process pool of this size")
     s.set_defaults(func=cmd_forecast)
 
-    s = sub.add_parser("simulate", help="Gaussian mock surveys measured with the FFT estimator")
-    s.add_argument("config")
-    s.add_argument("--n", type=int, default=10, help="number of mocks")
-    s.add_argument("--out")
-    s.add_argument("--mesh", type=int, default=None, help="cells per side")
-    s.add_argument("--validate", action="store_true")
+    s = _sub(sub, "simulate", "Gaussian mock surveys measured with the FFT estimator",
+             "ergofit simulate configs/demo.yaml --n 10 --mesh 128")
+    s.add_argument("config", help=cfg_help + " (the survey and fiducial model of the mocks)")
+    s.add_argument("--n", type=_positive_int, default=10, help="number of mocks")
+    s.add_argument("--out", help="output folder of the mock data vectors "
+                   "(default: <output folder of the config>/mocks)")
+    s.add_argument("--mesh", type=_positive_int, default=None, help="FFT cells per side")
+    s.add_argument("--validate", action="store_true",
+                   help="compare the mean of the mocks with the model they were made from")
     s.set_defaults(func=cmd_simulate)
 
-    s = sub.add_parser("window", help="window multipoles Q_l(s) from a random catalogue")
-    s.add_argument("randoms")
-    s.add_argument("--out", required=True)
-    s.add_argument("--s-max", type=float, default=None, help="largest separation [Mpc/h]")
+    s = _sub(sub, "window", "window multipoles Q_l(s) from a random catalogue",
+             "ergofit window configs/demo_randoms.txt --out chains/window")
+    s.add_argument("randoms", help="random catalogue: text file with a header naming its columns "
+                   "(x y z in Mpc/h, or ra dec redshift), optional weight column")
+    s.add_argument("--out", required=True, help="output folder: window.txt (Q_l table) and window.png")
+    s.add_argument("--s-max", dest="s_max", type=float, default=None,
+                   help="largest pair separation [Mpc/h] (default: the catalogue's extent)")
     s.add_argument("--preset", default="planck2018",
-                   help="cosmology converting ra/dec/z randoms to distances (default planck2018)")
+                   help="cosmology converting ra/dec/redshift randoms to distances (default planck2018)")
     s.set_defaults(func=cmd_window)
 
-    s = sub.add_parser("theory", help="model multipoles component by component, and a plot")
-    s.add_argument("config")
-    s.add_argument("--out", help="table path (default <output folder>/theory.txt); plots beside it")
-    s.add_argument("--fnl", type=float, default=None,
+    s = _sub(sub, "theory", "model multipoles component by component, and a plot",
+             "ergofit theory configs/demo.yaml --fnl 10")
+    s.add_argument("config", help=cfg_help)
+    s.add_argument("--out", help="output folder: theory.txt and its plots "
+                   "(default: the config's output folder)")
+    s.add_argument("--fnl", type=_finite_float, default=None,
                    help="f_NL of the '+ f_NL' component (default: tracer.fnl of the config)")
     s.set_defaults(func=cmd_theory)
 
-    s = sub.add_parser("check", help="validate a config and describe the model")
-    s.add_argument("config")
+    s = _sub(sub, "check", "validate a config and describe the model", "ergofit check configs/demo.yaml")
+    s.add_argument("config", help=cfg_help)
     s.set_defaults(func=cmd_check)
     return p
+
+
+def _positive_int(text):
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}") from None
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {n}")
+    return n
+
+
+def _finite_float(text):
+    import math
+    try:
+        x = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not math.isfinite(x) or abs(x) > 1e6:
+        raise argparse.ArgumentTypeError(f"expected a finite number with |x| <= 1e6, got {text}")
+    return x
 
 
 def _format_warning(message, category, filename, lineno, line=None):
@@ -302,12 +349,36 @@ def _format_warning(message, category, filename, lineno, line=None):
     return f"ergofit: {category.__name__}: {message}\n"
 
 
+class _OncePerCommand:
+    """Show each warning text once per command, however often the model is rebuilt (a warning
+    filter alone cannot: every ``catch_warnings`` inside the library resets its registry)."""
+
+    def __init__(self):
+        self.seen = set()
+
+    def __call__(self, message, category, filename, lineno, file=None, line=None):
+        key = (category, str(message))
+        if key not in self.seen:
+            self.seen.add(key)
+            print(_format_warning(message, category, filename, lineno), end="", file=sys.stderr)
+
+
+class _QuietGetdist(logging.Filter):
+    """getdist logs smoothing-resolution notes for short chains (fine_bins...) that a user
+    cannot act on; the posterior numbers do not depend on them."""
+
+    def filter(self, record):
+        return "getdist" not in record.pathname or record.levelno > logging.WARNING
+
+
 def main(argv=None):
     args = make_parser().parse_args(argv)
-    warnings.formatwarning = _format_warning
+    quiet = _QuietGetdist()
+    logging.getLogger().addFilter(quiet)
     try:
         with warnings.catch_warnings():
-            warnings.simplefilter("default")
+            warnings.simplefilter("always")
+            warnings.showwarning = _OncePerCommand()
             return args.func(args)
     except ErgofitError as exc:
         msg = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
@@ -317,6 +388,8 @@ def main(argv=None):
         print(f"ergofit {args.command}: interrupted; finished work is kept (resume with --resume)",
               file=sys.stderr)
         return 130
+    finally:
+        logging.getLogger().removeFilter(quiet)
 
 
 if __name__ == "__main__":  # pragma: no cover
