@@ -188,6 +188,8 @@ def parse_parameter(name, spec, where):
     if not isinstance(spec, dict):
         # a bare number fixes the parameter
         if isinstance(spec, (int, float)) and not isinstance(spec, bool):
+            if not np.isfinite(spec):
+                raise ConfigError(f"{where}.{name}: expected a finite fixed value, got {spec!r}")
             return None, float(spec)
         raise ConfigError(f"{where}.{name}: expected a mapping like {{flat: [lo, hi], start: x}} "
                           f"or {{fixed: x}}, got {spec!r}")
@@ -217,6 +219,8 @@ def parse_parameter(name, spec, where):
         if (not isinstance(val, (list, tuple)) or len(val) != 2
                 or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in val)):
             raise ConfigError(f"{where}.{name}.{key}: expected two numbers [a, b], got {val!r}")
+        if key != "bounds" and not all(np.isfinite(val)):
+            raise ConfigError(f"{where}.{name}.{key}: expected two finite numbers, got {val!r}")
         return float(val[0]), float(val[1])
 
     def number(key, default):

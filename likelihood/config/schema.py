@@ -33,7 +33,9 @@ import copy
 import glob
 import hashlib
 import json
+import math
 import os
+import re
 
 import numpy as np
 import yaml
@@ -54,12 +56,21 @@ def _as_number(val):
     return val
 
 
+def _finite(val):
+    """True for a finite number (Python ints beyond the float range count as not finite)."""
+    try:
+        return math.isfinite(float(val))
+    except OverflowError:
+        return False
+
+
 def _num(lo=None, hi=None, lo_open=False, integer=False):
     """Validator for a number in a range."""
     def check(val, where):
         val = _as_number(val)
-        if isinstance(val, bool) or not isinstance(val, _NUM) or not np.isfinite(val):
-            raise ConfigError(f"{where}: expected a {'whole ' if integer else ''}number, got {val!r}")
+        if isinstance(val, bool) or not isinstance(val, _NUM) or not _finite(val):
+            raise ConfigError(f"{where}: expected a finite {'whole ' if integer else ''}number, "
+                              f"got {val!r}")
         if integer and int(val) != val:
             raise ConfigError(f"{where}: expected a whole number, got {val!r}")
         if lo is not None and (val <= lo if lo_open else val < lo):
@@ -68,6 +79,22 @@ def _num(lo=None, hi=None, lo_open=False, integer=False):
             raise ConfigError(f"{where}: must be <= {hi}, got {val}")
         return int(val) if integer else float(val)
     return check
+
+
+def _walkers(val, where):
+    """An even number of walkers, 4 to 100000 (emcee's stretch move updates two halves)."""
+    n = _num(4, 100000, integer=True)(val, where)
+    if n % 2:
+        raise ConfigError(f"{where}: expected an even number of walkers, got {n}")
+    return n
+
+
+#: Largest distance a geometry may name [Mpc/h]: the comoving particle horizon is ~9.7e3 Mpc/h
+#: for the Planck 2018 preset (common practice: chi(z -> infinity) of flat LCDM), so larger
+#: radii are not a survey; the bound also caps the window grids before anything is allocated.
+R_MAX = 1.0e4
+#: Largest box volume [(Mpc/h)^3]: the volume inside R_MAX.
+V_MAX = 4.0 / 3.0 * math.pi * R_MAX ** 3
 
 
 def _choice(*options):
@@ -102,6 +129,16 @@ def _ells(val, where):
                           "of two tracers, which the likelihood does not fit yet; use even ones "
                           "(0, 2, 4)")
     return sorted(val)
+
+
+def _run_name(val, where):
+    """A run name is a plain folder name under chains/ (letters, digits, '.', '_', '-'; not
+    starting with '.'); a folder elsewhere is chosen explicitly with output.folder."""
+    if isinstance(val, bool) or not isinstance(val, (str, int)) or \
+            not re.fullmatch(r"[A-Za-z0-9_][A-Za-z0-9._-]*", str(val)):
+        raise ConfigError(f"{where}: expected a plain name like 'my-run' (letters, digits, '.', '_', "
+                          f"'-'), got {val!r}; to write elsewhere set output.folder")
+    return str(val)
 
 
 def _mapping(val, where):
@@ -249,12 +286,12 @@ SCHEMA = {
         "method": (_choice("hartlap", "t"), "hartlap"),
     },
     "sampling": {
-        "walkers": (_num(2, integer=True), 32),
-        "max_steps": (_num(1, integer=True), 20000),
+        "walkers": (_walkers, 32),
+        "max_steps": (_num(1, 10**8, integer=True), 20000),
         "check_every": (_num(1, integer=True), 200),
         "tau_factor": (_num(1.0), 50.0),
         "tau_rtol": (_num(0.0, lo_open=True), 0.01),
-        "seed": (_num(0, integer=True), 0),
+        "seed": (_num(0, 2**32 - 1, integer=True), 0),
         "progress": (_bool, True),
     },
     "output": {
@@ -271,17 +308,17 @@ SCHEMA = {
 }
 
 GEOMETRY = {
-    "box": {"shape": None, "volume": _num(0.0, lo_open=True)},
-    "sphere": {"shape": None, "radius": _num(0.0, lo_open=True)},
-    "shell": {"shape": None, "r_min": _num(0.0), "r_max": _num(0.0, lo_open=True)},
-    "cap": {"shape": None, "r_min": _num(0.0), "r_max": _num(0.0, lo_open=True),
+    "box": {"shape": None, "volume": _num(0.0, V_MAX, lo_open=True)},
+    "sphere": {"shape": None, "radius": _num(0.0, R_MAX, lo_open=True)},
+    "shell": {"shape": None, "r_min": _num(0.0, R_MAX), "r_max": _num(0.0, R_MAX, lo_open=True)},
+    "cap": {"shape": None, "r_min": _num(0.0, R_MAX), "r_max": _num(0.0, R_MAX, lo_open=True),
             "fsky": _num(0.0, 1.0, lo_open=True)},
     "randoms": {"shape": None, "randoms": _str},
 }
 
 MOCK = {"seed": (_num(0, integer=True), 1), "noise": (_bool, True), "truth": (_mapping, {}),
         "k_min": (_num(0.0, lo_open=True), 0.002), "k_max": (_num(0.0, lo_open=True), 0.05),
-        "n_bins": (_num(2, integer=True), 16)}
+        "n_bins": (_num(2, 1000, integer=True), 16)}
 
 TOP = ("run", *SCHEMA, "parameters")
 
@@ -367,7 +404,7 @@ def validate(raw, src="<memory>", base_dir="."):
     cfg.path, cfg.base_dir = src, base_dir
     cfg.raw = copy.deepcopy(raw)   # what validate() read: lets pool workers rebuild the model
     run = raw.get("run", os.path.splitext(os.path.basename(src))[0] or "run")
-    cfg["run"] = _str(str(run), f"{src}: run")
+    cfg["run"] = _run_name(run, f"{src}: run")
     for name in SCHEMA:
         cfg[name] = _section(raw, name, src)
 
@@ -471,14 +508,35 @@ def parameter_set(cfg):
     return ParameterSet(free, fixed)
 
 
+class DuplicateKeyError(yaml.YAMLError):
+    pass
+
+
+class _UniqueKeyLoader(yaml.SafeLoader):
+    """``yaml.SafeLoader`` that refuses a key given twice in one mapping (YAML keeps the last
+    silently, so a repeated key would drop a value the user wrote)."""
+
+    def construct_mapping(self, node, deep=False):
+        seen = set()
+        for key_node, _ in node.value:
+            key = self.construct_object(key_node, deep=deep)
+            if key in seen:
+                raise DuplicateKeyError(f"key '{key}' is given twice (line "
+                                        f"{key_node.start_mark.line + 1}); keep one")
+            seen.add(key)
+        return super().construct_mapping(node, deep=deep)
+
+
 def load_config(path):
-    """Read and validate a YAML config file (``yaml.safe_load`` only)."""
+    """Read and validate a YAML config file (safe loading only; duplicate keys refused)."""
     path = os.fspath(path)
     if not os.path.isfile(path):
         raise ConfigError(f"{path}: config file not found")
     try:
         with open(path, "r", encoding="utf-8") as fh:
-            raw = yaml.safe_load(fh)
+            raw = yaml.load(fh, Loader=_UniqueKeyLoader)
+    except DuplicateKeyError as exc:
+        raise ConfigError(f"{path}: {exc}") from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = f" (line {mark.line + 1})" if mark is not None else ""

@@ -15,7 +15,7 @@ from scipy.linalg import cho_solve
 
 from ..config.parameters import DERIVED, KNOWN, suggest
 from ..data import check_covariance, condition_number
-from ..errors import ConfigError
+from ..errors import ConfigError, ErgofitError
 from ..theory import tracer as tr
 from .fiducial import COSMO_PARAMS, make_tracer
 
@@ -93,6 +93,9 @@ class Likelihood:
         return self._dd - 2.0 * (c @ tpl["g"]) + np.sum((c @ tpl["G"]) * c, axis=1)
 
     def _loglike_from_chi2(self, chi2):
+        """Gaussian (Hartlap-scaled) or t log likelihood; −inf, never NaN, for a non-finite χ²
+        (overflowing parameter values such as b1 = 1e154)."""
+        chi2 = np.where(np.isnan(chi2), np.inf, chi2)
         if self.t_likelihood:
             ns = self.n_mocks
             return -0.5 * ns * np.log1p(chi2 / (ns - 1.0))
@@ -102,6 +105,10 @@ class Likelihood:
         """Log posterior for an (n_walkers, n_dim) array (or one point); −inf outside the prior."""
         theta = np.asarray(theta, float)
         single = theta.ndim == 1
+        n_dim = len(self.parameter_names)
+        if theta.ndim not in (1, 2) or theta.shape[-1] != n_dim:
+            raise ErgofitError(f"log_prob: theta of shape {theta.shape}: expected ({n_dim},) or "
+                               f"(n_walkers, {n_dim}) for the parameters {', '.join(self.parameter_names)}")
         if single and not self.cosmo_free:
             return self._log_prob_single(theta)
         theta = np.atleast_2d(theta)
@@ -205,9 +212,11 @@ class Likelihood:
         return vals
 
     def log_likelihood(self, params):
-        """Log likelihood (fast path) for a dict of parameter values (others at fiducial/fixed)."""
+        """Log likelihood (fast path) for a dict of parameter values (others at fiducial/fixed);
+        −inf (never NaN) where the model is not finite."""
         vals = self._values(params)
-        return float(self._loglike_from_chi2(self._chi2(vals))[0])
+        with np.errstate(over="ignore", invalid="ignore"):
+            return float(self._loglike_from_chi2(self._chi2(vals))[0])
 
     def model_full(self, values, cosmo_keys=None):
         """Full (unmasked) model vector(s) by the direct path for arrays of parameter values."""

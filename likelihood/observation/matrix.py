@@ -271,7 +271,10 @@ class WindowMatrix:
                 warnings.warn(f"window convolution is plane-parallel about the end point: at "
                               f"k = {bins.edges[0]:.3g} h/Mpc, k r ~ {bins.edges[0] * r_scale:.2g}"
                               " < 10 for the window size, so wide-angle corrections of order "
-                              "1/(k r) (not included) can matter", stacklevel=2)
+                              "1/(k r) (not included) can matter there; raise data.k_min to "
+                              f"{10.0 / r_scale:.2g} h/Mpc to stay where the convolution holds, "
+                              "or keep it and read the README's regime of validity",
+                              stacklevel=2)
             if max(self.ells_out) + max(self.ells_theory) > N_ELL - 1:
                 warnings.warn(f"window convolution: terms with window multipoles L > {N_ELL - 1} "
                               f"(needed for ℓ + ℓ' > {N_ELL - 1}) are neglected", stacklevel=2)

@@ -267,8 +267,9 @@ def _constraints_markdown(summary: dict) -> str:
         f"{summary['acceptance_fraction']:.2f}; config hash `{summary['config_hash']}`."
     )
     if summary["chi2"] is not None:
+        pte = summary.get("chi2_pte")
         lines.append(f"Best fit: chi2 = {summary['chi2']:.2f} for {summary['dof']} degrees of "
-                     "freedom.")
+                     "freedom" + (f" (probability to exceed {pte:.3g})." if pte is not None else "."))
     lines += ["", "| parameter | mean and 68% limits | 68% interval | 95% interval | best fit |",
               "|:--|:--|:--|:--|:--|"]
     for name, e in summary["parameters"].items():
@@ -477,6 +478,22 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
         raise ErgofitError(f"output folder {out_dir} does not exist")
     if label is None:
         label = os.path.basename(os.path.abspath(out_dir))
+    summary, samples, can_plot = _compute_summary(out_dir, result, lik, label)
+    write_text(os.path.join(out_dir, "summary.json"),
+               json.dumps(summary, indent=2, allow_nan=False) + "\n")
+    write_text(os.path.join(out_dir, "constraints.md"), _constraints_markdown(summary))
+    write_text(os.path.join(out_dir, "constraints.tex"), _constraints_tex(summary))
+    plot_triangle([samples], os.path.join(out_dir, "triangle"), params=list(result.parameter_names))
+    if can_plot:
+        chi2, dof = summary["chi2"], summary["dof"]
+        title = f"{label}: best fit, $\\chi^2$ = {chi2:.1f} for {dof} d.o.f." if chi2 is not None \
+            else label
+        plot_multipoles(lik, result.best_fit, os.path.join(out_dir, "multipoles.png"), title=title)
+    return summary, samples
+
+
+def _compute_summary(out_dir, result: SamplerResult, lik: Any, label: str):
+    """(summary dict, getdist samples, whether multipoles.png can be drawn); writes nothing."""
     samples = make_samples(result, lik, label=label)
     params = marginal_stats(samples)
     notes = list(result.notes)
@@ -492,12 +509,16 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
             params[name]["best_fit"] = _num(d_best[0, j])
         if hasattr(lik, "chi2") and hasattr(lik, "dof"):
             chi2, dof = _num(lik.chi2(np.asarray(result.best_fit, float))), int(lik.dof)
+            if chi2 is None:
+                notes.append("the best-fit chi2 is not finite: the model cannot describe the data")
         if not can_plot:
             notes.append("the likelihood has no observables(): multipoles.png left out")
     else:
         notes.append("no likelihood given: derived parameters, chi2/dof and multipoles.png left out")
     if not can_plot and os.path.exists(os.path.join(out_dir, "multipoles.png")):
         notes.append("multipoles.png in this folder is from an earlier summary")
+    pte = fit_probability(chi2, dof)
+    notes += _fit_warnings(chi2, dof, pte) + prior_edge_notes(result)
     tau = {n: _num(t) for n, t in zip(result.parameter_names, result.tau)}
     summary = {
         "label": label,
@@ -516,21 +537,85 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
         "best_fit_log_posterior": _num(result.best_log_prob),
         "chi2": chi2,
         "dof": dof,
+        "chi2_pte": pte,
         "credible_levels": list(_CONTOURS),
         "parameters": params,
         "notes": notes,
     }
-    summary = _clean(summary)
-    write_text(os.path.join(out_dir, "summary.json"),
-                json.dumps(summary, indent=2, allow_nan=False) + "\n")
-    write_text(os.path.join(out_dir, "constraints.md"), _constraints_markdown(summary))
-    write_text(os.path.join(out_dir, "constraints.tex"), _constraints_tex(summary))
-    plot_triangle([samples], os.path.join(out_dir, "triangle"), params=list(result.parameter_names))
-    if can_plot:
-        title = f"{label}: best fit, $\\chi^2$ = {chi2:.1f} for {dof} d.o.f." if chi2 is not None \
-            else label
-        plot_multipoles(lik, result.best_fit, os.path.join(out_dir, "multipoles.png"), title=title)
-    return summary, samples
+    return _clean(summary), samples, can_plot
+
+
+#: A best fit with a probability to exceed below this is reported as unacceptable.
+PTE_MIN = 1e-3
+#: Prior-edge rule: more than EDGE_FRACTION of the samples within EDGE_BAND (a fraction of the
+#: prior width) of a finite bound, i.e. five times what a posterior flat over the prior puts there.
+EDGE_BAND, EDGE_FRACTION = 0.02, 0.10
+
+
+class FitWarning(UserWarning):
+    """The best fit is unacceptable, or the posterior is cut by a prior bound."""
+
+
+def fit_probability(chi2: float | None, dof: int | None) -> float | None:
+    """Probability to exceed the best-fit chi2 for dof degrees of freedom (chi-square
+    distribution; valid for a Gaussian likelihood with a known covariance)."""
+    if chi2 is None or dof is None or dof <= 0:
+        return None
+    from scipy.stats import chi2 as chi2_dist
+    return float(chi2_dist.sf(chi2, dof))
+
+
+def _fit_warnings(chi2, dof, pte) -> list[str]:
+    if pte is None or pte >= PTE_MIN:
+        return []
+    msg = (f"unacceptable fit: best-fit chi2 = {chi2:.4g} for {dof} degrees of freedom "
+           f"(probability to exceed {pte:.2g} < {PTE_MIN:g}); check the data and covariance "
+           "(units, shot-noise convention, k range) and the effects switched on")
+    warnings.warn(msg, FitWarning, stacklevel=4)
+    return [msg]
+
+
+def prior_edge_notes(result: SamplerResult) -> list[str]:
+    """A note (and a FitWarning) for each parameter whose posterior piles up at a finite prior
+    bound (rule: EDGE_FRACTION of the samples within EDGE_BAND of the prior width)."""
+    notes = []
+    for j, name in enumerate(result.parameter_names):
+        lo, hi = (float(b) for b in result.prior_bounds[j])
+        if not (np.isfinite(lo) and np.isfinite(hi)) or len(result.samples) == 0:
+            continue
+        x = result.samples[:, j]
+        band = EDGE_BAND * (hi - lo)
+        for side, frac in (("lower", np.mean(x < lo + band)), ("upper", np.mean(x > hi - band))):
+            if frac > EDGE_FRACTION:
+                bound = lo if side == "lower" else hi
+                msg = (f"the posterior of '{name}' sits on its {side} prior bound {bound:g} "
+                       f"({100 * frac:.0f}% of the samples within {100 * EDGE_BAND:g}% of the prior "
+                       f"width): widen parameters.{name} or treat the limit as prior-driven")
+                warnings.warn(msg, FitWarning, stacklevel=4)
+                notes.append(msg)
+    return notes
+
+
+def constraints_text(summary: dict) -> str:
+    """The constraints of a summary as plain text for the terminal: mean ± σ, 68% limits and
+    best fit per parameter, then χ²/dof with its probability to exceed, τ and convergence."""
+    rows = [("parameter", "mean +/- std", "68% interval", "best fit")]
+    for name, e in summary["parameters"].items():
+        rows.append((name + (" (derived)" if e["derived"] else ""),
+                     _central_text(e, tex=False).replace("±", "+/-"),
+                     _interval(e, "68", False), _best(e)))
+    widths = [max(len(r[i]) for r in rows) for i in range(4)]
+    lines = ["  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows]
+    lines.insert(1, "  ".join("-" * w for w in widths))
+    if summary.get("chi2") is not None:
+        pte = summary.get("chi2_pte")
+        lines.append(f"best fit: chi2 = {summary['chi2']:.2f} for {summary['dof']} dof"
+                     + (f" (probability to exceed {pte:.3g})" if pte is not None else ""))
+    tau = summary.get("tau_max")
+    lines.append(f"{summary['n_steps']} steps x {summary['n_walkers']} walkers, max tau = "
+                 f"{'?' if tau is None else f'{tau:.1f}'}, "
+                 f"{'converged' if summary['converged'] else 'NOT converged'}")
+    return "\n".join(lines)
 
 
 def _labels_for(run_dirs: Sequence[str], labels: Sequence[str] | None) -> list[str]:
@@ -570,26 +655,40 @@ def overlay(run_dirs: Sequence[str | os.PathLike], labels: Sequence[str] | None,
 
 def summarize(run_dirs: Sequence[str | os.PathLike], labels: Sequence[str] | None = None,
               lik_factory: Callable[[str], Any] | None = None,
-              overlay_path: str | os.PathLike | None = None) -> list[dict]:
+              out_dir: str | os.PathLike | None = None) -> list[dict]:
     """Re-summarise runs from their folders alone (the command-line ``summarize``).
 
-    For each folder: read the chain, rebuild the likelihood with ``lik_factory(run_dir)`` when
-    given (from the run's stored config), and :func:`write_summary` into the folder. With more
-    than one folder, also overlay them in one triangle plot at ``overlay_path`` (default
-    ``overlay`` in the current folder: overlay.png and overlay.pdf). Returns the summary dicts.
+    One folder and no ``out_dir``: read the chain, rebuild the likelihood with
+    ``lik_factory(run_dir)`` when given (from the run's stored config), and :func:`write_summary`
+    into that folder. Otherwise nothing is written into the run folders: ``out_dir`` (created if
+    needed) receives ``triangle.png``/``.pdf`` (the runs overlaid, for several runs; the run's own
+    triangle for one), ``constraints.md`` (one table per run) and ``summary.json``
+    (``{"runs": [summary, ...]}``). Returns the summary dicts.
     """
     run_dirs = [os.fspath(d) for d in run_dirs]
     if not run_dirs:
         raise ErgofitError("summarize: give at least one run folder")
     labels = _labels_for(run_dirs, labels)
+    if out_dir is None:
+        if len(run_dirs) > 1:
+            raise ErgofitError("summarize: several runs need an output folder for the overlay")
+        result = load_chain(run_dirs[0])
+        lik = lik_factory(run_dirs[0]) if lik_factory is not None else None
+        return [_write_summary(run_dirs[0], result, lik, labels[0])[0]]
+    out_dir = os.fspath(out_dir)
+    if any(os.path.abspath(out_dir) == os.path.abspath(d) for d in run_dirs):
+        raise ErgofitError(f"summarize: the output folder {out_dir} is one of the run folders; "
+                           "choose another")
+    os.makedirs(out_dir, exist_ok=True)
     summaries, samples_list = [], []
     for d, lab in zip(run_dirs, labels):
-        result = load_chain(d)
         lik = lik_factory(d) if lik_factory is not None else None
-        summary, samples = _write_summary(d, result, lik, lab)
+        summary, samples, _ = _compute_summary(out_dir, load_chain(d), lik, lab)
         summaries.append(summary)
         samples_list.append(samples)
-    if len(run_dirs) > 1:
-        path = os.fspath(overlay_path) if overlay_path is not None else "overlay"
-        _overlay_samples(samples_list, labels, path)
+    _overlay_samples(samples_list, labels, os.path.join(out_dir, "triangle"))
+    write_text(os.path.join(out_dir, "constraints.md"),
+               "\n".join(_constraints_markdown(s) for s in summaries))
+    write_text(os.path.join(out_dir, "summary.json"),
+               json.dumps({"runs": summaries}, indent=2, allow_nan=False) + "\n")
     return summaries

@@ -33,7 +33,9 @@ from __future__ import annotations
 import json
 import os
 import signal
+import sys
 import threading
+import time
 import warnings
 from typing import Any
 
@@ -268,6 +270,12 @@ def _chain_path(out_dir: str | os.PathLike) -> str:
     return os.path.join(out_dir, CHAIN_FILENAME)
 
 
+def chain_status(path: str | os.PathLike) -> tuple[str, str, int]:
+    """(config hash, status, number of stored steps) of a chain file, without its arrays."""
+    stored = read_chain(os.fspath(path), with_arrays=False)
+    return stored.config_hash, stored.status, int(stored.iteration)
+
+
 def load_chain(out_dir: str | os.PathLike) -> SamplerResult:
     """Read the chain of a finished or interrupted run (``OUT_DIR/chain.h5``, or a ``.h5`` path).
 
@@ -304,8 +312,8 @@ def _initial_ball(lik: Any, start, scale, bounds, names, settings: SamplerSettin
             return coords, log_prob
     raise ErgofitError(
         f"could not place {int(todo.sum())} of {n_walkers} walkers inside the prior (finite "
-        f"log_prob) in {_MAX_BALL_ROUNDS} draws around start; reduce start_scale or move start "
-        f"of {names} away from the prior edges"
+        f"log_prob) in {_MAX_BALL_ROUNDS} draws around start; reduce parameters.<name>.scale or "
+        f"move parameters.<name>.start of {names} away from the prior edges"
     )
 
 
@@ -489,8 +497,8 @@ def _sample(lik, settings: SamplerSettings, path: str, pool, coords, log_prob, r
                         raise
                     if "condition number" in str(exc):
                         raise ErgofitError(
-                            "initial walkers are not linearly independent; increase start_scale "
-                            "or the sampler setting 'ball'") from None
+                            "initial walkers are not linearly independent; increase "
+                            "parameters.<name>.scale of the sampled parameters") from None
                     raise
             finally:
                 writer.flush()
@@ -503,9 +511,45 @@ def _sample(lik, settings: SamplerSettings, path: str, pool, coords, log_prob, r
     return converged
 
 
+class _LineProgress:
+    """Progress for a log file (stderr not a terminal): one line every ``percent`` % of the
+    steps or every ``seconds``, instead of carriage-return updates."""
+
+    def __init__(self, total: int, initial: int, percent: float = 10.0, seconds: float = 60.0,
+                 stream=None):
+        self.total, self.n = total, initial
+        self.every = max(1, int(total * percent / 100.0))
+        self.seconds = seconds
+        self.stream = sys.stderr if stream is None else stream
+        self.postfix = ""
+        self.t0 = self.t_last = time.monotonic()
+        self.n_last = initial
+
+    def update(self, k: int = 1) -> None:
+        self.n += k
+        now = time.monotonic()
+        if self.n // self.every > self.n_last // self.every or now - self.t_last >= self.seconds:
+            self._line(now)
+
+    def set_postfix_str(self, text: str, refresh: bool = False) -> None:
+        self.postfix = text
+
+    def _line(self, now: float) -> None:
+        rate = (self.n - self.n_last) / max(now - self.t_last, 1e-9)
+        print(f"sampling: {self.n}/{self.total} steps ({100.0 * self.n / self.total:.0f}%), "
+              f"{rate:.0f} steps/s, {self.postfix}".rstrip(", "), file=self.stream, flush=True)
+        self.t_last, self.n_last = now, self.n
+
+    def close(self) -> None:
+        if self.n != self.n_last:
+            self._line(time.monotonic())
+
+
 def _progress_bar(settings: SamplerSettings, n0: int):
     if not settings.progress:
         return None
+    if not sys.stderr.isatty():
+        return _LineProgress(settings.max_steps, n0)
     from tqdm.auto import tqdm
 
     return tqdm(total=settings.max_steps, initial=n0, unit="step", desc="sampling",

@@ -40,14 +40,14 @@ def test_bad_yaml_and_missing_file(tmp_path, capsys):
 
 def test_theory_writes_table_and_plot(write_config, tmp_path, capsys):
     out = tmp_path / "th" / "theory.txt"
-    assert main(["theory", write_config(), "--out", str(out)]) == 0
+    assert main(["theory", write_config(), "--out", str(out.parent)]) == 0
     text = capsys.readouterr().out
     assert "effective f_NL" in text
     table = np.loadtxt(out)
     assert table.shape[1] == 1 + 3 * 3 and np.all(np.isfinite(table))
     assert (tmp_path / "th" / "theory.png").stat().st_size > 10000
     # adding f_NL > 0 with b1 > p raises the large-scale monopole (Dalal et al. 2008 sign)
-    assert main(["theory", write_config({"tracer": {"fnl": 20.0}}, "f.yaml"), "--out", str(out)]) == 0
+    assert main(["theory", write_config({"tracer": {"fnl": 20.0}}, "f.yaml"), "--out", str(out.parent)]) == 0
     t2 = np.loadtxt(out)
     assert t2[0, 4] > t2[0, 1]
 
@@ -84,7 +84,7 @@ def test_window_command_from_randoms(tmp_path, capsys):
     rfile = tmp_path / "randoms.txt"
     np.savetxt(rfile, x, header="columns: x y z", comments="# ")
     out = tmp_path / "win" / "window.txt"
-    assert main(["window", str(rfile), "--out", str(out)]) == 0
+    assert main(["window", str(rfile), "--out", str(out.parent)]) == 0
     from likelihood.observation.window import WindowMultipoles
     wm = WindowMultipoles.load(out)
     s = np.array([100.0, 300.0, 500.0])
@@ -93,5 +93,23 @@ def test_window_command_from_randoms(tmp_path, capsys):
     assert (tmp_path / "win" / "window.png").exists()
     bad = tmp_path / "bad.txt"
     bad.write_text("# columns: x y z\n1 2 nan\n")
-    assert main(["window", str(bad), "--out", str(out)]) == 2
+    assert main(["window", str(bad), "--out", str(out.parent)]) == 2
     assert "bad.txt" in capsys.readouterr().err
+
+
+def test_help_version_and_examples(capsys):
+    """Every sub-command's help has an example; --version prints the version (issue 15, item 17)."""
+    import likelihood
+    from likelihood.cli import make_parser
+    with pytest.raises(SystemExit) as exc:
+        main(["--version"])
+    assert exc.value.code == 0 and likelihood.__version__ in capsys.readouterr().out
+    for cmd in ("run", "summarize", "forecast", "simulate", "window", "theory", "check"):
+        with pytest.raises(SystemExit):
+            make_parser().parse_args([cmd, "--help"])
+        text = capsys.readouterr().out
+        assert "example:" in text and f"ergofit {cmd}" in text, cmd
+    for bad in (["run", "c.yaml", "--processes", "-3"], ["theory", "c.yaml", "--fnl", "1e300"]):
+        with pytest.raises(SystemExit) as exc:
+            main(bad)
+        assert exc.value.code == 2 and "expected" in capsys.readouterr().err

@@ -32,8 +32,12 @@ def test_injection_recovery_fnl(write_config, tmp_path):
         assert key in summ
     for key in ("mean", "std", "median", "interval68", "interval95", "best_fit"):
         assert key in f
-    # the stored config rebuilds the likelihood: summarize works from the run folder alone
+    # the stored config rebuilds the likelihood: summarize works from the run folder alone,
+    # also after the folder has been moved away from the inputs (issue 15, item 6)
     assert main(["summarize", str(out)]) == 0
+    moved = tmp_path / "elsewhere" / "run"
+    shutil.move(str(out), str(moved))
+    assert main(["summarize", str(moved)]) == 0
 
 
 def test_rerun_refused_and_other_config_refused(write_config, tmp_path, capsys):
@@ -42,6 +46,7 @@ def test_rerun_refused_and_other_config_refused(write_config, tmp_path, capsys):
     assert main(["run", write_config(small), "--out", str(out), "--quiet"]) == 0
     chain = (out / "chain.h5").read_bytes()
     capsys.readouterr()
+    # the same config again: a finished (max_steps, not converged) run says --resume
     assert main(["run", write_config(small), "--out", str(out), "--quiet"]) == 2
     assert "--resume" in capsys.readouterr().err
     other = dict(small, tracer={"b1": 2.0, "fnl": 0.0, "b_e": 0.5, "s": 0.3})
@@ -49,6 +54,40 @@ def test_rerun_refused_and_other_config_refused(write_config, tmp_path, capsys):
     err = capsys.readouterr().err
     assert "different config" in err or "config hash" in err
     assert (out / "chain.h5").read_bytes() == chain
+    assert main(["run", write_config(other, "other.yaml"), "--out", str(out), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "different config" in err and "--out" in err
+    assert (out / "chain.h5").read_bytes() == chain
+
+
+def test_second_run_of_a_converged_config_reports_it(write_config, tmp_path, capsys):
+    """Running the same command twice: the finished run is reported with its constraints and
+    nothing is recomputed (issue 15, item 9)."""
+    out = tmp_path / "run"
+    cfg = write_config(dict(SMALL, sampling=dict(SMALL["sampling"], tau_factor=10, tau_rtol=0.5)))
+    assert main(["run", cfg, "--out", str(out), "--quiet"]) == 0
+    first = capsys.readouterr().out
+    assert "best fit: chi2 =" in first and "probability to exceed" in first
+    stamp = {p.name: p.stat().st_mtime_ns for p in out.iterdir()}
+    assert main(["run", cfg, "--out", str(out), "--quiet"]) == 0
+    again = capsys.readouterr().out
+    assert "nothing recomputed" in again and "fnl" in again
+    assert {p.name: p.stat().st_mtime_ns for p in out.iterdir()} == stamp
+
+
+def test_failed_start_leaves_nothing(write_config, tmp_path, capsys):
+    """A run that cannot start (every walker outside the prior) leaves no folder and no 0-step
+    chain behind, so the corrected config runs at once (issue 15, item 8)."""
+    out = tmp_path / "run"
+    bad = dict(SMALL, parameters=dict(SMALL["parameters"],
+                                      fnl={"flat": [-200.0, 200.0], "start": 199.99, "scale": 1e6}))
+    assert main(["run", write_config(bad), "--out", str(out), "--quiet"]) == 2
+    assert "could not place" in capsys.readouterr().err
+    assert not out.exists()
+    out.mkdir()                                  # an existing folder keeps existing, but empty
+    assert main(["run", write_config(bad), "--out", str(out), "--quiet"]) == 2
+    assert list(out.iterdir()) == []
+    assert main(["run", write_config(SMALL), "--out", str(out), "--quiet"]) == 0
 
 
 def test_unwritable_output_folder(write_config, tmp_path, capsys):
@@ -96,3 +135,30 @@ def test_resume_with_more_steps(write_config, tmp_path):
     assert main(["run", write_config(longer, "longer.yaml"), "--out", str(out), "--resume", "--quiet"]) == 0
     summ = json.loads((out / "summary.json").read_text())
     assert summ["n_steps"] == 300
+
+
+def test_run_folder_is_portable(tmp_path, monkeypatch):
+    """The stored config references copies of its input files inside the run folder, so a moved
+    folder still summarises, with the same config hash (issue 15, item 6)."""
+    import yaml
+    root = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+    src = tmp_path / "src"
+    src.mkdir()
+    for name in ("demo_data.txt", "demo_cov.txt"):
+        shutil.copy(os.path.join(root, "configs", name), src / name)
+    cfg = yaml.safe_load(open(os.path.join(root, "configs", "demo.yaml")))
+    cfg["sampling"].update(max_steps=60, check_every=30, walkers=8)
+    (src / "demo.yaml").write_text(yaml.safe_dump(cfg))
+    out = tmp_path / "run"
+    assert main(["run", str(src / "demo.yaml"), "--out", str(out), "--quiet"]) == 0
+    stored = yaml.safe_load((out / "config.yaml").read_text())
+    assert stored["data"]["file"] == os.path.join("inputs", "demo_data.txt")
+    assert stored["covariance"]["file"] == os.path.join("inputs", "demo_cov.txt")
+    shutil.rmtree(src)                                   # the original inputs are gone
+    moved = tmp_path / "far" / "away"
+    shutil.move(str(out), str(moved))
+    monkeypatch.chdir(tmp_path)
+    assert main(["summarize", str(moved)]) == 0
+    from likelihood import load_config
+    assert load_config(str(moved / "config.yaml")).hash == \
+        json.loads((moved / "summary.json").read_text())["config_hash"]

@@ -105,10 +105,19 @@ def runs(tmp_path_factory):
         run_sampler(lik, SamplerSettings(n_walkers=32, check_every=100, progress=False),
                     base / name)
         dirs.append(str(base / name))
-    overlay_base = str(base / "both")
-    summaries = summarize(dirs, labels=["data A", "data B"], lik_factory=factory,
-                          overlay_path=overlay_base)
-    return dirs, summaries, overlay_base
+    summaries = [summarize([d], labels=[lab], lik_factory=factory)[0]
+                 for d, lab in zip(dirs, ["data A", "data B"])]
+    # an overlay writes only under its own folder: the run folders stay as they are
+    stamps = {d: {f: os.stat(os.path.join(d, f)).st_mtime_ns for f in os.listdir(d)} for d in dirs}
+    both = base / "both"
+    again = summarize(dirs, labels=["A again", "B again"], lik_factory=factory, out_dir=both)
+    assert [s["label"] for s in again] == ["A again", "B again"]
+    assert stamps == {d: {f: os.stat(os.path.join(d, f)).st_mtime_ns for f in os.listdir(d)}
+                      for d in dirs}
+    with open(both / "summary.json") as fh:
+        assert [s["label"] for s in json.load(fh)["runs"]] == ["A again", "B again"]
+    assert "A again" in (both / "constraints.md").read_text()
+    return dirs, summaries, str(both / "triangle")
 
 
 def test_files_written(runs):

@@ -481,3 +481,19 @@ def test_too_few_walkers_for_dimension(tmp_path):
     lik.start, lik.start_scale = np.array([1.0, -2.0, 0.5]), np.full(3, 0.1)
     with pytest.raises(ConfigError, match=r"'n_walkers' = 4: expected at least 2 x 3"):
         run_sampler(lik, quiet(n_walkers=4, max_steps=10), tmp_path)
+
+
+def test_progress_in_a_log_file_is_a_few_lines():
+    """stderr not a terminal: one line per 10 % of the steps, not carriage-return updates
+    (issue 15, item 16)."""
+    import io
+    from likelihood.sampling.driver import _LineProgress
+    buf = io.StringIO()
+    bar = _LineProgress(1000, 0, stream=buf)
+    for i in range(1000):
+        bar.set_postfix_str(f"tau={i}")
+        bar.update(1)
+    bar.close()
+    lines = buf.getvalue().splitlines()
+    assert len(lines) == 10 and "\r" not in buf.getvalue()
+    assert lines[-1].startswith("sampling: 1000/1000 steps (100%)") and "tau=999" in lines[-1]

@@ -1,0 +1,114 @@
+"""Misuse: malformed inputs end with exit code 2, one line naming the key and what is expected,
+and nothing written (issue 15). Table-driven: (change to the demo config, sub-command, words of
+the message). The demo config is the shipped configs/demo.yaml with its data files."""
+import copy
+import os
+import shutil
+
+import numpy as np
+import pytest
+import yaml
+
+from likelihood.cli import main
+
+ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+DEMO = os.path.join(ROOT, "configs")
+with open(os.path.join(DEMO, "demo.yaml")) as fh:
+    BASE = yaml.safe_load(fh)
+
+
+def _set(path, value):
+    def change(cfg):
+        d = cfg
+        for key in path[:-1]:
+            d = d.setdefault(key, {})
+        if value is _DROP:
+            d.pop(path[-1], None)
+        else:
+            d[path[-1]] = value
+    return change
+
+
+_DROP = object()
+
+CASES = [
+    # (id, change, command, words expected in the message)
+    ("huge-seed", _set(["sampling", "seed"], 1208925819614629174706176), "run", "sampling.seed"),
+    ("r_max-huge", _set(["survey", "geometry", "r_max"], 1.0e30), "check", "survey.geometry.r_max"),
+    ("r_max-1e5", _set(["survey", "geometry", "r_max"], 1.0e5), "run", "must be <= 10000"),
+    ("radius-1e6", _set(["survey", "geometry"], {"shape": "sphere", "radius": 1e6}), "check",
+     "survey.geometry.radius"),
+    ("box-volume", _set(["survey", "geometry"], {"shape": "box", "volume": 1e20}), "check",
+     "survey.geometry.volume"),
+    ("run-escape", _set(["run"], "../../escaped"), "run", "plain name"),
+    ("run-absolute", _set(["run"], "/abs/dir"), "run", "plain name"),
+    ("run-empty", _set(["run"], None), "run", "plain name"),
+    ("walkers-odd", _set(["sampling", "walkers"], 33), "run", "sampling.walkers"),
+    ("walkers-few", _set(["sampling", "walkers"], 3), "run", "sampling.walkers"),
+    ("fixed-nan", _set(["parameters", "shot_noise"], float("nan")), "check",
+     "parameters.shot_noise: expected a finite fixed value"),
+    ("fixed-nan-mapping", _set(["parameters", "shot_noise"], {"fixed": float("nan")}), "check",
+     "parameters.shot_noise.fixed"),
+    ("gauss-inf", _set(["parameters", "fnl"], {"gauss": [0, float("inf")]}), "check",
+     "parameters.fnl.gauss: expected two finite numbers"),
+    ("tracer-b_e-inf", _set(["tracer", "b_e"], float("inf")), "check", "tracer.b_e"),
+    ("mock-bins", _set(["data"], {"mock": {"n_bins": 10**7}, "ells": [0, 2]}), "check",
+     "data.mock.n_bins"),
+    ("max-steps", _set(["sampling", "max_steps"], 10**12), "run", "sampling.max_steps"),
+]
+
+
+@pytest.fixture
+def demo_copy(tmp_path):
+    for name in ("demo_data.txt", "demo_cov.txt"):
+        shutil.copy(os.path.join(DEMO, name), tmp_path / name)
+    return tmp_path
+
+
+def _write(folder, cfg, name="c.yaml"):
+    path = folder / name
+    path.write_text(yaml.safe_dump(cfg, sort_keys=False))
+    return str(path)
+
+
+@pytest.mark.parametrize("case", CASES, ids=[c[0] for c in CASES])
+def test_malformed_input_exits_2_with_one_line(case, demo_copy, capsys, monkeypatch):
+    _, change, command, words = case
+    cfg = copy.deepcopy(BASE)
+    change(cfg)
+    monkeypatch.chdir(demo_copy)
+    before = sorted(os.listdir(demo_copy))
+    path = _write(demo_copy, cfg)
+    code = main([command, path])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2
+    assert len([l for l in err if "error:" in l]) == 1 and words in err[-1], err
+    assert sorted(os.listdir(demo_copy)) == sorted(before + ["c.yaml"])   # nothing written
+
+
+def test_duplicate_yaml_key_refused(demo_copy, capsys):
+    text = (open(os.path.join(DEMO, "demo.yaml")).read()
+            + "\nsampling: {walkers: 16}\n")            # a second top-level 'sampling'
+    path = demo_copy / "dup.yaml"
+    path.write_text(text)
+    assert main(["check", str(path)]) == 2
+    assert "key 'sampling' is given twice" in capsys.readouterr().err
+
+
+def test_log_prob_never_nan_and_checks_shape():
+    """log_prob/log_likelihood return -inf, never NaN, for overflowing or non-finite values;
+    a theta of the wrong length is one clear error (issue 15, item 12)."""
+    import warnings
+    import likelihood
+    from likelihood.errors import ErgofitError
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        lik = likelihood.build(os.path.join(DEMO, "demo.yaml"))
+    for p in ({"b1": 1e154}, {"nu_obs": 1e80}, {"fnl": float("nan")}):
+        assert lik.log_likelihood(p) == -np.inf
+    one = np.array([1.8, 0.0, 1.0, 1.0])
+    assert np.isfinite(lik.log_prob(one)) and lik.log_prob(one) == lik.log_prob(one[None])[0]
+    bad = np.array([[1.8, np.inf, 1.0, 1.0], [1.8, np.nan, 1.0, 1.0], [1e300, 0, 1, 1]])
+    assert np.all(lik.log_prob(bad) == -np.inf)
+    with pytest.raises(ErgofitError, match=r"theta of shape \(3,\)"):
+        lik.log_prob(one[:3])
