@@ -25,7 +25,7 @@ import time
 import numpy as np
 import pytest
 
-from likelihood.cosmology import PRESETS, Cosmology
+from likelihood.theory.cosmology import PRESETS, Cosmology
 
 camb = pytest.importorskip("camb")
 
