@@ -43,11 +43,14 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from ..io import save_figure, write_text
 from ..errors import ErgofitError
+from ..io import write_text
 from ..sampling import SamplerResult, load_chain
+from .figures import check_observables, plot_multipoles, plot_triangle
+from .tables import constraints_markdown, constraints_tex, constraints_text
 
 __all__ = [
+    "constraints_text",
     "make_samples",
     "marginal_stats",
     "overlay",
@@ -192,256 +195,6 @@ def marginal_stats(samples) -> dict[str, dict]:
 
 
 # --------------------------------------------------------------------------------------------
-# Number formatting (PDG rounding rule)
-# --------------------------------------------------------------------------------------------
-
-
-def _decimals(err: float) -> int:
-    """Decimal places for a value with uncertainty ``err`` (PDG rounding rule, see module doc)."""
-    if err is None or not math.isfinite(err) or err <= 0:
-        return 4
-    exponent = math.floor(math.log10(err))
-    leading = int(err / 10.0 ** (exponent - 2) + 1e-9)  # three leading digits, 100..999
-    if leading >= 950:  # rounds up to 1000: two significant digits of the next decade
-        exponent, significant = exponent + 1, 2
-    else:
-        significant = 1 if leading >= 355 else 2
-    return significant - 1 - exponent
-
-
-def _fmt(x: float | None, decimals: int) -> str:
-    """``x`` rounded to ``decimals`` places (negative: to tens, hundreds, ...)."""
-    if x is None:
-        return "-"
-    if abs(x) >= 1e9 or decimals > 12:
-        return f"{x:.3g}"
-    if decimals < 0:
-        text = f"{round(x, decimals):.0f}"
-    else:
-        text = f"{x:.{decimals}f}"
-    return text[1:] if text.startswith("-") and float(text) == 0 else text
-
-
-
-def _central(entry: dict) -> tuple[str, str, str]:
-    """(mean, +err, -err) strings for a two-sided 68% limit."""
-    mean = entry["mean"]
-    lo, hi = entry["interval68"]
-    up, down = hi - mean, mean - lo
-    dec = _decimals(min(up, down)) if up > 0 and down > 0 else _decimals(entry["std"])
-    return _fmt(mean, dec), _fmt(up, dec), _fmt(down, dec)
-
-
-def _one_sided(entry: dict, level: str, tex: bool) -> str:
-    kind = entry[f"limit_type{level}"]
-    lo, hi = entry[f"interval{level}"]
-    dec = _decimals(entry["std"])
-    lt, gt = (r"<", r">") if tex else ("<", ">")
-    if kind == "upper limit" and hi is not None:
-        return f"{lt} {_fmt(hi, dec)}"
-    if kind == "lower limit" and lo is not None:
-        return f"{gt} {_fmt(lo, dec)}"
-    return "unconstrained" if not tex else r"\mathrm{unconstrained}"
-
-
-def _interval(entry: dict, level: str, tex: bool) -> str:
-    if entry[f"limit_type{level}"] != "two-sided":
-        return _one_sided(entry, level, tex)
-    lo, hi = entry[f"interval{level}"]
-    dec = _decimals(entry["std"])
-    return f"[{_fmt(lo, dec)}, {_fmt(hi, dec)}]" if not tex else \
-        rf"[{_fmt(lo, dec)},\ {_fmt(hi, dec)}]"
-
-
-def _best(entry: dict) -> str:
-    return _fmt(entry.get("best_fit"), _decimals(entry["std"]) + 1)
-
-
-def _constraints_markdown(summary: dict) -> str:
-    lines = [f"# Constraints: {summary['label']}", ""]
-    conv = "converged" if summary["converged"] else "NOT CONVERGED"
-    lines.append(
-        f"{summary['n_steps']} steps x {summary['n_walkers']} walkers ({conv}); max tau = "
-        f"{_fmt(summary['tau_max'], 1)} steps; burn-in {summary['burn_in']}, thin "
-        f"{summary['thin']}, {summary['n_samples']} samples; acceptance "
-        f"{summary['acceptance_fraction']:.2f}; config hash `{summary['config_hash']}`."
-    )
-    if summary["chi2"] is not None:
-        pte = summary.get("chi2_pte")
-        lines.append(f"Best fit: chi2 = {summary['chi2']:.2f} for {summary['dof']} degrees of "
-                     "freedom" + (f" (probability to exceed {pte:.3g})." if pte is not None else "."))
-    lines += ["", "| parameter | mean and 68% limits | 68% interval | 95% interval | best fit |",
-              "|:--|:--|:--|:--|:--|"]
-    for name, e in summary["parameters"].items():
-        label = f"${e['label']}$" + (" (derived)" if e["derived"] else "")
-        lines.append(f"| {label} `{name}` | {_central_text(e, tex=False)} | {_interval(e, '68', False)} | "
-                     f"{_interval(e, '95', False)} | {_best(e)} |")
-    lines.append("")
-    for note in summary["notes"]:
-        lines.append(f"> Note: {note}")
-    lines.append("")
-    lines.append("Limits: getdist marginal limits at 68% and 95% credibility; best fit: "
-                 "highest-posterior sample of the chain.")
-    return "\n".join(lines) + "\n"
-
-
-def _central_text(e: dict, tex: bool) -> str:
-    """Mean with its 68% limits (Markdown or LaTeX), or the one-sided limit."""
-    if e["limit_type68"] != "two-sided":
-        return _one_sided(e, "68", tex=tex)
-    m, up, down = _central(e)
-    if up == down:
-        return rf"{m} \pm {up}" if tex else f"{m} ± {up}"
-    return rf"{m}^{{+{up}}}_{{-{down}}}" if tex else f"{m} +{up} / -{down}"
-
-
-def _constraints_tex(summary: dict) -> str:
-    lines = [
-        f"% ergofit constraints for {summary['label']} (config hash {summary['config_hash']})",
-        f"% {summary['n_steps']} steps x {summary['n_walkers']} walkers, "
-        + ("converged" if summary["converged"] else "NOT CONVERGED"),
-        r"\begin{tabular}{lccc}",
-        r"\hline",
-        r"Parameter & Mean and 68\% limits & 95\% interval & Best fit \\",
-        r"\hline",
-    ]
-    for e in summary["parameters"].values():
-        lines.append(rf"${e['label']}$ & ${_central_text(e, tex=True)}$ & ${_interval(e, '95', True)}$ & "
-                     rf"${_best(e)}$ \\")
-    lines += [r"\hline", r"\end{tabular}"]
-    return "\n".join(lines) + "\n"
-
-
-# --------------------------------------------------------------------------------------------
-# Figures
-# --------------------------------------------------------------------------------------------
-
-
-def _base_path(out_path: str | os.PathLike) -> str:
-    out_path = os.fspath(out_path)
-    root, ext = os.path.splitext(out_path)
-    return root if ext.lower() in (".png", ".pdf") else out_path
-
-
-_PALETTE = ["#1f5f8b", "#c8553d", "#3a8a4f", "#8e5ea2", "#d4a017", "#5c5c5c"]
-
-
-def plot_triangle(samples_list: Sequence, out_path: str | os.PathLike,
-                  legend_labels: Sequence[str] | None = None,
-                  params: Sequence[str] | None = None) -> list[str]:
-    """getdist triangle plot (filled 68/95% contours, 1-D marginals) as PNG and PDF.
-
-    out_path: file name with or without ``.png``/``.pdf``; both files are written.
-    Returns the two paths.
-    """
-    import matplotlib.pyplot as plt
-    from getdist import plots
-
-    base = _base_path(out_path)
-    n_par = len(params) if params is not None else samples_list[0].paramNames.numParams()
-    g = plots.get_subplot_plotter(width_inch=min(3.0 + 1.6 * n_par, 12.0))
-    paths = [base + ".png", base + ".pdf"]
-    try:
-        with warnings.catch_warnings():
-            # getdist's tick formatter reads an attribute that matplotlib deprecates (not ours)
-            warnings.filterwarnings("ignore", category=DeprecationWarning, module="getdist")
-            n_runs = len(samples_list)
-            # one run: filled contours; several: the first filled, the others as lines on top
-            g.triangle_plot(list(samples_list), params=list(params) if params else None,
-                            filled=True if n_runs == 1 else [True] + [False] * (n_runs - 1),
-                            contour_colors=_PALETTE[:n_runs] if n_runs <= len(_PALETTE) else None,
-                            contour_lws=1.8,
-                            legend_labels=list(legend_labels) if legend_labels else None)
-            for p in paths:
-                save_figure(g.fig, p, tight=False)  # getdist has laid the figure out
-    finally:
-        plt.close(g.fig)
-    return paths
-
-
-def _check_observables(obs: Any) -> tuple[list, list, list, list]:
-    if not isinstance(obs, dict):
-        raise ErgofitError("likelihood observables(): expected a dict with ells, k, data, sigma")
-    for key in ("ells", "k", "data", "sigma"):
-        if key not in obs:
-            raise ErgofitError(f"likelihood observables() has no key '{key}'")
-    ells = list(obs["ells"])
-    arrays = {key: [np.asarray(a, dtype=float) for a in obs[key]] for key in ("k", "data", "sigma")}
-    for key, arrs in arrays.items():
-        if len(arrs) != len(ells):
-            raise ErgofitError(
-                f"likelihood observables()['{key}'] has {len(arrs)} entries for {len(ells)} ells"
-            )
-    for i, ell in enumerate(ells):
-        n = arrays["k"][i].shape
-        for key in ("data", "sigma"):
-            if arrays[key][i].shape != n:
-                raise ErgofitError(
-                    f"likelihood observables()['{key}'][{i}] (ell={ell}) has shape "
-                    f"{arrays[key][i].shape}, expected {n} like k"
-                )
-        if not np.all(np.isfinite(arrays["sigma"][i])) or np.any(arrays["sigma"][i] <= 0):
-            raise ErgofitError(
-                f"likelihood observables()['sigma'][{i}] (ell={ell}): expected finite values > 0"
-            )
-    return ells, arrays["k"], arrays["data"], arrays["sigma"]
-
-
-def plot_multipoles(lik: Any, theta: np.ndarray, out_path: str | os.PathLike,
-                    k_power: int = 1, title: str | None = None) -> str:
-    """Data multipoles with error bars, the model at ``theta``, and residuals in sigma (PNG).
-
-    Upper panel: k^k_power P_ell(k) (Mpc/h)^3 (h/Mpc)^k_power for data and model, one colour per
-    ell; lower panel: (data - model) / sigma with the +-1 band. The error bars are the square
-    roots of the covariance diagonal: correlated bins scatter less than they suggest.
-    """
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-    from matplotlib.ticker import FormatStrFormatter, LogLocator, NullFormatter
-
-    ells, ks, data, sigma = _check_observables(lik.observables())
-    model = [np.asarray(m, dtype=float) for m in lik.model_observables(np.asarray(theta, float))]
-    if len(model) != len(ells) or any(m.shape != d.shape for m, d in zip(model, data)):
-        raise ErgofitError(
-            "likelihood model_observables(): expected one array per ell with the shapes of the data"
-        )
-    fig = Figure(figsize=(6.4, 5.6))
-    FigureCanvasAgg(fig)
-    top, bottom = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1], "hspace": 0})
-    n = len(ells)
-    for i, (ell, k, d, s, m) in enumerate(zip(ells, ks, data, sigma, model)):
-        colour = f"C{i % 10}"
-        w = k ** k_power
-        shift = 1.0 + 0.012 * (i - (n - 1) / 2)  # spread overlapping points a little
-        top.errorbar(k * shift, w * d, yerr=w * s, fmt="o", ms=3.5, color=colour, capsize=0,
-                     label=rf"$\ell={ell}$")
-        order = np.argsort(k)
-        top.plot(k[order], (w * m)[order], "-", color=colour, lw=1.4)
-        bottom.plot(k * shift, (d - m) / s, "o", ms=3.5, color=colour)
-    bottom.axhspan(-1, 1, color="0.88", zorder=0)
-    bottom.axhline(0, color="0.3", lw=0.8)
-    top.set_xscale("log")
-    top.xaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
-    top.xaxis.set_major_formatter(FormatStrFormatter("%g"))
-    top.xaxis.set_minor_formatter(NullFormatter())
-    kp = "" if k_power == 0 else ("k" if k_power == 1 else f"k^{{{k_power}}}")
-    power = 3 - k_power
-    unit = "" if power == 0 else (r"\ [h^{-1}{\rm Mpc}]" if power == 1 else
-                                  rf"\ [(h^{{-1}}{{\rm Mpc}})^{{{power}}}]")
-    top.set_ylabel(rf"${kp}P_\ell(k){unit}$")
-    worst = max(float(np.max(np.abs((d - m) / s))) for d, m, s in zip(data, model, sigma))
-    bottom.set_ylim(-max(3.0, 1.15 * worst), max(3.0, 1.15 * worst))
-    bottom.set_ylabel(r"$\Delta/\sigma$")
-    bottom.set_xlabel(r"$k\ [h\,{\rm Mpc}^{-1}]$")
-    top.legend(frameon=False, title="points: data, lines: model", alignment="left")
-    if title:
-        top.set_title(title, fontsize=10)
-    path = os.fspath(out_path)
-    save_figure(fig, path)
-    return path
-
-
-# --------------------------------------------------------------------------------------------
 # Summary of one run, re-summary, overlay
 # --------------------------------------------------------------------------------------------
 
@@ -481,8 +234,8 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
     summary, samples, can_plot = _compute_summary(out_dir, result, lik, label)
     write_text(os.path.join(out_dir, "summary.json"),
                json.dumps(summary, indent=2, allow_nan=False) + "\n")
-    write_text(os.path.join(out_dir, "constraints.md"), _constraints_markdown(summary))
-    write_text(os.path.join(out_dir, "constraints.tex"), _constraints_tex(summary))
+    write_text(os.path.join(out_dir, "constraints.md"), constraints_markdown(summary))
+    write_text(os.path.join(out_dir, "constraints.tex"), constraints_tex(summary))
     plot_triangle([samples], os.path.join(out_dir, "triangle"), params=list(result.parameter_names))
     if can_plot:
         chi2, dof = summary["chi2"], summary["dof"]
@@ -502,7 +255,7 @@ def _compute_summary(out_dir, result: SamplerResult, lik: Any, label: str):
     chi2 = dof = None
     can_plot = lik is not None and hasattr(lik, "observables") and hasattr(lik, "model_observables")
     if can_plot:
-        _check_observables(lik.observables())  # fail before any file is written
+        check_observables(lik.observables())  # fail before any file is written
     if lik is not None:
         d_names, _, d_best = _derived_values(lik, np.asarray(result.best_fit, float)[None, :])
         for j, name in enumerate(d_names):
@@ -596,28 +349,6 @@ def prior_edge_notes(result: SamplerResult) -> list[str]:
     return notes
 
 
-def constraints_text(summary: dict) -> str:
-    """The constraints of a summary as plain text for the terminal: mean ± σ, 68% limits and
-    best fit per parameter, then χ²/dof with its probability to exceed, τ and convergence."""
-    rows = [("parameter", "mean +/- std", "68% interval", "best fit")]
-    for name, e in summary["parameters"].items():
-        rows.append((name + (" (derived)" if e["derived"] else ""),
-                     _central_text(e, tex=False).replace("±", "+/-"),
-                     _interval(e, "68", False), _best(e)))
-    widths = [max(len(r[i]) for r in rows) for i in range(4)]
-    lines = ["  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows]
-    lines.insert(1, "  ".join("-" * w for w in widths))
-    if summary.get("chi2") is not None:
-        pte = summary.get("chi2_pte")
-        lines.append(f"best fit: chi2 = {summary['chi2']:.2f} for {summary['dof']} dof"
-                     + (f" (probability to exceed {pte:.3g})" if pte is not None else ""))
-    tau = summary.get("tau_max")
-    lines.append(f"{summary['n_steps']} steps x {summary['n_walkers']} walkers, max tau = "
-                 f"{'?' if tau is None else f'{tau:.1f}'}, "
-                 f"{'converged' if summary['converged'] else 'NOT converged'}")
-    return "\n".join(lines)
-
-
 def _labels_for(run_dirs: Sequence[str], labels: Sequence[str] | None) -> list[str]:
     if labels is None:
         return [os.path.basename(os.path.abspath(d)) for d in run_dirs]
@@ -688,7 +419,7 @@ def summarize(run_dirs: Sequence[str | os.PathLike], labels: Sequence[str] | Non
         samples_list.append(samples)
     _overlay_samples(samples_list, labels, os.path.join(out_dir, "triangle"))
     write_text(os.path.join(out_dir, "constraints.md"),
-               "\n".join(_constraints_markdown(s) for s in summaries))
+               "\n".join(constraints_markdown(s) for s in summaries))
     write_text(os.path.join(out_dir, "summary.json"),
                json.dumps({"runs": summaries}, indent=2, allow_nan=False) + "\n")
     return summaries

@@ -23,9 +23,8 @@ from scipy import stats
 from likelihood.io import atomic_write
 from likelihood.errors import ErgofitError
 from likelihood.sampling import ConvergenceWarning, SamplerResult, SamplerSettings, load_chain, run_sampler
+from likelihood.report.tables import decimals as _decimals, fmt as _fmt
 from likelihood.report.summary import (
-    _decimals,
-    _fmt,
     make_samples,
     marginal_stats,
     overlay,
