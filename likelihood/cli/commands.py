@@ -42,7 +42,8 @@ def _settings(cfg, args):
     s = cfg["sampling"]
     return SamplerSettings(n_walkers=s["walkers"], max_steps=s["max_steps"], check_every=s["check_every"],
                            tau_factor=s["tau_factor"], tau_rtol=s["tau_rtol"], seed=s["seed"],
-                           progress=s["progress"] and not args.quiet)
+                           progress=s["progress"] and not args.quiet, moves=s["moves"],
+                           start=s["start"])
 
 
 def _rebuild(run_dir):
@@ -124,7 +125,7 @@ def _sample_and_summarise(args, cfg, out, pool):
         raise ErgofitError(f"{args.config}: sampling.walkers must be at least {lik.n_walkers_min()} "
                            f"(twice the {len(lik.parameter_names)} sampled parameters)")
     print(lik.describe())
-    result = run_sampler(lik, settings, out, resume=args.resume, pool=pool)
+    result = run_sampler(lik, settings, out, resume=args.resume, pool=pool, report=print)
     cfg_copy = os.path.join(out, "config.yaml")
     if os.path.abspath(args.config) != os.path.abspath(cfg_copy):
         _write_config_copy(args.config, cfg_copy)

@@ -24,7 +24,9 @@ The vocabulary (all sections but ``survey`` optional)::
                  ells, k_min, k_max, shot_noise_subtracted}
     covariance: {kind: gaussian | file | mocks, file: FILE, mocks: GLOB, method: hartlap | t}
     parameters: {NAME: {flat: [lo, hi] | gauss: [mean, sigma] | fixed: x, start, scale, bounds}}
-    sampling:   {walkers, max_steps, check_every, tau_factor, tau_rtol, seed, progress}
+    sampling:   {walkers, max_steps, check_every, tau_factor, tau_rtol, seed, progress,
+                 moves: {stretch | differential_evolution | de_snooker: weight},
+                 start: optimum | ball}
     output:     {folder}
 """
 from __future__ import annotations
@@ -87,6 +89,12 @@ def _walkers(val, where):
     if n % 2:
         raise ConfigError(f"{where}: expected an even number of walkers, got {n}")
     return n
+
+
+def _moves(val, where, n_walkers=None):
+    """A move mixture {name: weight} (likelihood.sampling.moves: published moves, emcee.moves)."""
+    from ..sampling.moves import check_moves
+    return check_moves(val, where, n_walkers)
 
 
 #: Largest distance a geometry may name [Mpc/h]: the comoving particle horizon is ~9.7e3 Mpc/h
@@ -293,6 +301,8 @@ SCHEMA = {
         "tau_rtol": (_num(0.0, lo_open=True), 0.01),
         "seed": (_num(0, 2**32 - 1, integer=True), 0),
         "progress": (_bool, True),
+        "moves": (_moves, {"stretch": 0.5, "differential_evolution": 0.5}),
+        "start": (_choice("optimum", "ball"), "optimum"),
     },
     "output": {
         "folder": (_str, None),
@@ -493,6 +503,7 @@ def validate(raw, src="<memory>", base_dir="."):
     cfg["parameters"] = {p.name: {"prior": p.prior.__dict__, "start": p.start, "scale": p.scale} for p in free}
     cfg["fixed"] = fixed
     cfg._param_objects = (free, fixed)
+    _moves(cfg["sampling"]["moves"], f"{src}: sampling.moves", cfg["sampling"]["walkers"])
     return cfg
 
 

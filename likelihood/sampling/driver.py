@@ -1,7 +1,11 @@
 """Affine-invariant ensemble sampling with crash-safe HDF5 chains and an autocorrelation stop rule.
 
-The sampler is emcee's :class:`emcee.EnsembleSampler` (stretch move, Goodman & Weare 2010;
-Foreman-Mackey et al. 2013). This module adds what a long inference run needs:
+The sampler is emcee's :class:`emcee.EnsembleSampler` (Foreman-Mackey et al. 2013) with the
+move mixture of ``settings.moves`` (:mod:`.moves`: stretch, Goodman & Weare 2010; differential
+evolution, ter Braak 2006; DE snooker, ter Braak & Vrugt 2008). A new chain starts around the
+posterior maximum (:mod:`.start`). A pool evaluates one chunk of walkers per worker, and only
+when that is measured to be faster than one process (:mod:`.pools`). This module adds what a
+long inference run needs:
 
 * **Never lose a chain.** Steps are appended to ``OUT_DIR/chain.h5`` in emcee's HDF5 backend
   layout (group ``mcmc``: datasets ``chain``, ``log_prob``, ``accepted``; attributes
@@ -45,6 +49,8 @@ import numpy as np
 from ..errors import ConfigError, ErgofitError
 from .backend import (CHAIN_FILENAME, ChainWriter, RunLock, StoredChain, create_chain_file, read_chain,
                       set_root_attrs)
+from .moves import emcee_moves, same_moves
+from .pools import choose_evaluation
 from .settings import ConvergenceWarning, SamplerResult, SamplerSettings
 
 __all__ = ["load_chain", "run_sampler"]
@@ -120,16 +126,6 @@ class _VectorisedLogProb:
 
     def __call__(self, theta: np.ndarray) -> np.ndarray:
         return _checked_log_prob(self.lik, np.atleast_2d(theta))
-
-
-class _PerWalkerLogProb:
-    """log posterior of one walker, for ``pool.map`` (picklable when the likelihood is)."""
-
-    def __init__(self, lik: Any):
-        self.lik = lik
-
-    def __call__(self, theta: np.ndarray) -> float:
-        return float(_checked_log_prob(self.lik, np.asarray(theta, dtype=float)[None, :])[0])
 
 
 # --------------------------------------------------------------------------------------------
@@ -294,15 +290,21 @@ def load_chain(out_dir: str | os.PathLike) -> SamplerResult:
 # --------------------------------------------------------------------------------------------
 
 
-def _initial_ball(lik: Any, start, scale, bounds, names, settings: SamplerSettings,
-                  rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
-    n_walkers, n_dim = settings.n_walkers, len(start)
+def _initial_ball(lik: Any, centre, scale, bounds, names, settings: SamplerSettings,
+                  rng: np.random.Generator, cov: np.ndarray | None = None,
+                  what: str = "start") -> tuple[np.ndarray, np.ndarray]:
+    """Walkers from N(centre, (ball scale)^2), or N(centre, ball^2 cov) when ``cov`` is given;
+    walkers outside the prior (or with log_prob = -inf) are redrawn."""
+    n_walkers, n_dim = settings.n_walkers, len(centre)
     coords = np.empty((n_walkers, n_dim))
     log_prob = np.full(n_walkers, -np.inf)
     todo = np.ones(n_walkers, dtype=bool)
+    root = None if cov is None else np.linalg.cholesky(cov)
     for _ in range(_MAX_BALL_ROUNDS):
         k = int(todo.sum())
-        coords[todo] = start + settings.ball * scale * rng.standard_normal((k, n_dim))
+        z = rng.standard_normal((k, n_dim))
+        step = z * scale if root is None else z @ root.T
+        coords[todo] = centre + settings.ball * step
         inside = np.all((coords > bounds[:, 0]) & (coords < bounds[:, 1]), axis=1)
         check = todo & inside
         if check.any():
@@ -312,9 +314,49 @@ def _initial_ball(lik: Any, start, scale, bounds, names, settings: SamplerSettin
             return coords, log_prob
     raise ErgofitError(
         f"could not place {int(todo.sum())} of {n_walkers} walkers inside the prior (finite "
-        f"log_prob) in {_MAX_BALL_ROUNDS} draws around start; reduce parameters.<name>.scale or "
+        f"log_prob) in {_MAX_BALL_ROUNDS} draws around the {what}; reduce parameters.<name>.scale or "
         f"move parameters.<name>.start of {names} away from the prior edges"
     )
+
+
+def _start_walkers(lik: Any, start, scale, bounds, names, settings: SamplerSettings,
+                   rng: np.random.Generator, report) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """Initial walkers of a new chain (``settings.start``: "ball" or "optimum", see .start)."""
+    if settings.start == "ball":
+        coords, lp = _initial_ball(lik, start, scale, bounds, names, settings, rng)
+        return coords, lp, []
+    from .start import find_optimum
+    t0 = time.perf_counter()
+    opt = find_optimum(lambda th: _checked_log_prob(lik, th), start, scale, bounds, rng)
+    chi2 = _chi2_of(lik, opt.best, opt.log_prob)
+    text = ", ".join(f"{n} = {v:.6g}" for n, v in zip(names, opt.best))
+    line = (f"best fit (posterior maximum, {opt.n_evaluations} evaluations in "
+            f"{time.perf_counter() - t0:.1f} s): {text}; chi2 = {chi2:.3f}")
+    notes = [line]
+    if report is not None:
+        report(line)
+        if opt.note:
+            report("note: " + opt.note)
+    if opt.note:
+        notes.append(opt.note)
+    coords, lp = _initial_ball(lik, opt.best, scale, bounds, names, settings, rng, cov=opt.cov,
+                               what="best fit")
+    return coords, lp, notes
+
+
+def _chi2_of(lik: Any, theta: np.ndarray, log_prob: float) -> float:
+    """chi2 of the data at theta (the likelihood's own, or -2 log posterior without one)."""
+    fn = getattr(lik, "chi2", None)
+    if callable(fn):
+        try:
+            return float(np.asarray(fn(theta)).reshape(-1)[0])
+        except (TypeError, ValueError, IndexError):
+            pass
+    return -2.0 * float(log_prob)
+
+
+def _moves_text(moves: dict) -> str:
+    return " + ".join(f"{name} {w:g}" for name, w in moves.items())
 
 
 def _emcee_state_from_seed(rng: np.random.Generator) -> tuple:
@@ -322,7 +364,7 @@ def _emcee_state_from_seed(rng: np.random.Generator) -> tuple:
 
 
 def run_sampler(lik: Any, settings: SamplerSettings | None, out_dir: str | os.PathLike,
-                resume: bool = False, pool: Any = None) -> SamplerResult:
+                resume: bool = False, pool: Any = None, report=None) -> SamplerResult:
     """Sample the posterior of ``lik`` with emcee and store the chain in ``out_dir/chain.h5``.
 
     lik: object with parameter_names, labels, prior_bounds, start, start_scale, config_hash and
@@ -335,7 +377,12 @@ def run_sampler(lik: Any, settings: SamplerSettings | None, out_dir: str | os.Pa
         is pickled with every map call: worth it only when one evaluation takes milliseconds or
         more). Start multiprocessing workers with ``initializer=signal.signal,
         initargs=(signal.SIGINT, signal.SIG_IGN)`` so that Ctrl-C reaches only this process,
-        which then stops cleanly after the current step.
+        which then stops cleanly after the current step. The pool gets one chunk of walkers
+        per worker and step (evaluated vectorised there), and only when that is measured to be
+        faster than one process (:func:`.pools.choose_evaluation`); otherwise the run stays in
+        this process and says so.
+    report: callable taking one line (e.g. ``print``): the best fit before a new chain starts,
+        whether the pool is used, a change of moves on resume. ``None``: silent.
 
     Returns the :class:`SamplerResult` read back from the file. Emits :class:`ConvergenceWarning`
     when ``max_steps`` is reached before the stop rule is met.
@@ -356,11 +403,11 @@ def run_sampler(lik: Any, settings: SamplerSettings | None, out_dir: str | os.Pa
     os.makedirs(out_dir, exist_ok=True)
     with RunLock(out_dir):
         return _run_locked(lik, settings, out_dir, resume, pool, names, labels, bounds, start,
-                           scale)
+                           scale, report)
 
 
 def _run_locked(lik, settings: SamplerSettings, out_dir: str, resume: bool, pool, names, labels,
-                bounds, start, scale) -> SamplerResult:
+                bounds, start, scale, report=None) -> SamplerResult:
     path = os.path.join(out_dir, CHAIN_FILENAME)
     notes: list[str] = []
 
@@ -389,6 +436,7 @@ def _run_locked(lik, settings: SamplerSettings, out_dir: str, resume: bool, pool
             )
         n0 = stored.iteration
         seed = stored.seed
+        start_notes: list[str] = []
         if n0 == 0:
             coords, log_prob = stored.initial_coords, stored.initial_log_prob
         else:
@@ -416,6 +464,14 @@ def _run_locked(lik, settings: SamplerSettings, out_dir: str, resume: bool, pool
         if stored.status == "converged":
             notes.append(f"continued a chain that had converged under other settings at {n0} steps")
         accepted = _acceptance(stored.initial_coords, stored.chain)
+        if not same_moves(stored.settings.get("moves"), settings.moves):
+            was = stored.settings.get("moves") or {"stretch": 1.0}
+            line = (f"resumed at step {n0} with other moves: {_moves_text(settings.moves)} "
+                    f"(the stored steps used {_moves_text(was)}); the posterior is the same, "
+                    "only the mixing differs")
+            notes.append(line)
+            if report is not None:
+                report(line)
         store_settings = dict(stored.settings, **{k: v for k, v in settings.to_dict().items()
                                                   if k not in ("seed", "n_walkers")})
         set_root_attrs(path, settings=json.dumps(store_settings), status="running")
@@ -423,7 +479,8 @@ def _run_locked(lik, settings: SamplerSettings, out_dir: str, resume: bool, pool
         ss = np.random.SeedSequence(settings.seed)
         seed = str(ss.entropy)
         rng = np.random.default_rng(ss)
-        coords, log_prob = _initial_ball(lik, start, scale, bounds, names, settings, rng)
+        coords, log_prob, start_notes = _start_walkers(lik, start, scale, bounds, names, settings,
+                                                       rng, report)
         random_state = _emcee_state_from_seed(rng)
         store_settings = settings.to_dict()
         create_chain_file(path, names, labels, bounds, lik.config_hash, store_settings, seed,
@@ -436,8 +493,10 @@ def _run_locked(lik, settings: SamplerSettings, out_dir: str, resume: bool, pool
         warnings.warn(f"{path}: " + result.notes[-1], ConvergenceWarning, stacklevel=3)
         return result
 
+    if n0 == 0:
+        notes += start_notes
     converged = _sample(lik, settings, path, pool, coords, log_prob, random_state, n0, tau_prev,
-                        accepted, first=n0 == 0)
+                        accepted, first=n0 == 0, report=report)
     result = _result_from(read_chain(path), path, notes)
     if not converged:
         warnings.warn(f"{path}: " + result.notes[-1], ConvergenceWarning, stacklevel=3)
@@ -445,15 +504,16 @@ def _run_locked(lik, settings: SamplerSettings, out_dir: str, resume: bool, pool
 
 
 def _sample(lik, settings: SamplerSettings, path: str, pool, coords, log_prob, random_state,
-            n0: int, tau_prev, accepted, first: bool) -> bool:
+            n0: int, tau_prev, accepted, first: bool, report=None) -> bool:
     """Run emcee from (coords, log_prob, random_state) at step n0; return True if converged."""
     n_walkers, n_dim = coords.shape
-    if pool is None:
-        sampler = emcee.EnsembleSampler(n_walkers, n_dim, _VectorisedLogProb(lik), vectorize=True)
-    else:
-        if not hasattr(pool, "map"):
-            raise ErgofitError(f"pool: expected an object with a map method, got {type(pool).__name__}")
-        sampler = emcee.EnsembleSampler(n_walkers, n_dim, _PerWalkerLogProb(lik), pool=pool)
+    if pool is not None and not hasattr(pool, "map"):
+        raise ErgofitError(f"pool: expected an object with a map method, got {type(pool).__name__}")
+    log_prob_fn, message = choose_evaluation(_VectorisedLogProb(lik), pool, np.array(coords))
+    if message and report is not None:
+        report(message)
+    sampler = emcee.EnsembleSampler(n_walkers, n_dim, log_prob_fn, vectorize=True,
+                                    moves=emcee_moves(settings.moves))
     state = emcee.State(np.array(coords), log_prob=np.array(log_prob), random_state=random_state)
     writer = ChainWriter(path, n0, accepted, settings)
     writer.ensure_capacity(settings.max_steps)

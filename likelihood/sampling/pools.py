@@ -51,3 +51,75 @@ def pool_for(processes=0, mpi=False):
             yield pool
     else:
         yield None
+
+
+# --------------------------------------------------------------------------------------------
+# Pools that pay: chunks of walkers per worker, and a measured fallback to one process
+# --------------------------------------------------------------------------------------------
+
+
+def pool_size(pool) -> int:
+    """Number of workers of a multiprocessing or schwimmbad pool (1 if unknown)."""
+    for attr in ("_processes", "size"):
+        n = getattr(pool, attr, None)
+        if isinstance(n, int) and n > 0:
+            return n
+    return 1
+
+
+class ChunkedLogProb:
+    """Vectorised log posterior that hands each worker one chunk of walkers (``pool.map`` over
+    ``n_workers`` chunks, each evaluated vectorised by the worker's own copy of the likelihood).
+    One task per worker and step: the per-walker pickling of a per-walker map is gone, and the
+    likelihood itself travels as its config (``Likelihood.__reduce__``)."""
+
+    def __init__(self, evaluate, pool, n_workers: int):
+        self.evaluate, self.pool, self.n_workers = evaluate, pool, max(1, int(n_workers))
+
+    def __call__(self, theta):
+        import numpy as np
+        theta = np.atleast_2d(theta)
+        chunks = [c for c in np.array_split(theta, min(self.n_workers, theta.shape[0])) if len(c)]
+        return np.concatenate(list(self.pool.map(self.evaluate, chunks)))
+
+
+#: an ensemble evaluation faster than this in one process is not worth a pool: one round trip of
+#: a pool map with two workers costs ~0.2-1 ms on this kind of machine (measured with
+#: bench/sampler.py), so the pool could at best break even.
+POOL_MIN_SECONDS = 2e-3
+
+
+def choose_evaluation(evaluate, pool, coords, repeats: int = 3):
+    """Decide whether ``pool`` pays for the ensemble ``coords``.
+
+    Times ``evaluate(coords)`` in this process and the chunked pool evaluation (after one warm-up
+    map, in which each worker builds its likelihood); the pool is used only when it is faster.
+    Returns ``(log_prob_fn, message)``: the chunked evaluator or ``evaluate`` itself, and a
+    one-line message saying what was chosen and why ("" without a pool).
+    """
+    import time
+    if pool is None:
+        return evaluate, ""
+    n = pool_size(pool)
+    t_serial = min(_timed(evaluate, coords) for _ in range(repeats))
+    if t_serial < POOL_MIN_SECONDS:
+        return evaluate, (f"pool of {n} workers not used: one evaluation of all {len(coords)} walkers "
+                          f"takes {1e3 * t_serial:.2f} ms in this process (vectorised), a pool would "
+                          "be slower; running in one process")
+    chunked = ChunkedLogProb(evaluate, pool, n)
+    t0 = time.perf_counter()
+    chunked(coords)                        # warm-up: each worker builds its model here
+    t_warm = time.perf_counter() - t0
+    t_pool = min(_timed(chunked, coords) for _ in range(repeats))
+    if t_pool >= t_serial:
+        return evaluate, (f"pool of {n} workers not used: {1e3 * t_pool:.1f} ms per step against "
+                          f"{1e3 * t_serial:.1f} ms in one process; running in one process")
+    return chunked, (f"pool of {n} workers: {1e3 * t_pool:.1f} ms per step against "
+                     f"{1e3 * t_serial:.1f} ms in one process (workers ready in {t_warm:.1f} s)")
+
+
+def _timed(fn, x) -> float:
+    import time
+    t0 = time.perf_counter()
+    fn(x)
+    return time.perf_counter() - t0

@@ -8,6 +8,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import ConfigError
+from .moves import DEFAULT_MOVES, check_moves
 
 class ConvergenceWarning(UserWarning):
     """The autocorrelation stop rule was not met before ``max_steps``."""
@@ -31,8 +32,13 @@ class SamplerSettings:
         (it is stored in the chain file, so the run can still be repeated).
     progress: show a tqdm progress bar with the current tau estimate and acceptance fraction.
     flush_every, flush_seconds: write buffered steps to disk after this many steps or seconds.
-    ball: the initial walkers are drawn from N(start, (ball * start_scale)^2), redrawing those
-        outside the prior.
+    ball: with ``start="ball"`` the initial walkers are drawn from N(start, (ball * start_scale)^2);
+        with ``start="optimum"`` from N(best fit, ball^2 * C), C the inverse Hessian of −log posterior
+        at the optimum (the parameter scales where it is not positive definite); walkers outside
+        the prior are redrawn.
+    moves: move mixture ``{name: weight}`` (:mod:`.moves`); default stretch 0.5 + DE 0.5.
+    start: "optimum" (maximise the posterior first, :mod:`.start`) or "ball" (around the
+        configured starts). Only a new chain uses it; a resumed chain continues where it stopped.
     """
 
     n_walkers: int = 32
@@ -45,6 +51,8 @@ class SamplerSettings:
     flush_every: int = 50
     flush_seconds: float = 10.0
     ball: float = 1.0
+    moves: dict = field(default_factory=lambda: dict(DEFAULT_MOVES))
+    start: str = "optimum"
 
     def __post_init__(self) -> None:
         def _int(name: str, minimum: int) -> None:
@@ -83,6 +91,9 @@ class SamplerSettings:
                     f"sampler setting 'seed' = {self.seed!r}: expected a non-negative integer or null"
                 )
             self.seed = int(self.seed)
+        self.moves = check_moves(self.moves, "sampler setting 'moves'", self.n_walkers)
+        if self.start not in ("optimum", "ball"):
+            raise ConfigError(f"sampler setting 'start' = {self.start!r}: expected 'optimum' or 'ball'")
         if not isinstance(self.progress, bool):
             raise ConfigError(f"sampler setting 'progress' = {self.progress!r}: expected true or false")
 

@@ -316,7 +316,8 @@ CHILD = textwrap.dedent(
     from likelihood.sampling import SamplerSettings, run_sampler
     lik = ToyGaussian(delay=0.003, marker={marker!r}, marker_after=200)
     settings = SamplerSettings(n_walkers=16, max_steps=400, check_every=10**6, seed=11,
-                               progress=False, flush_every={flush_every}, flush_seconds=1e6)
+                               progress=False, flush_every={flush_every}, flush_seconds=1e6,
+                               start="ball")
     run_sampler(lik, settings, {out!r})
     """
 )
@@ -338,7 +339,7 @@ def _start_child(tmp_path, flush_every):
 
 
 def _reference(tmp_path):
-    s = quiet(check_every=10**6, max_steps=400, seed=11)
+    s = quiet(check_every=10**6, max_steps=400, seed=11, start="ball")
     run_quiet(ToyGaussian(), s, tmp_path / "reference")
     return full_chain(tmp_path / "reference"), s
 
