@@ -247,7 +247,7 @@ def _sub(sub, name, help_text, example):
 
 
 def make_parser():
-    from . import __version__
+    from .. import __version__
     p = argparse.ArgumentParser(prog="ergofit", description="Fit the largest-scale galaxy power "
                                 "spectrum multipoles: f_NL, projection terms, window, integral "
                                 "constraint and the observer term. Every --out is an output folder.",

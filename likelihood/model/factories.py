@@ -44,8 +44,8 @@ def cosmology(cfg, values=None):
             over[name] = cfg["fixed"][name]
     if values:
         over.update({k: float(v) for k, v in values.items() if k in COSMO_PARAMS})
-    if "ln10As" in over:
-        over["A_s"] = np.exp(over.pop("ln10As")) * 1e-10
+    if "ln_1e10_As" in over:
+        over["A_s"] = np.exp(over.pop("ln_1e10_As")) * 1e-10
         over["sigma8"] = None
     elif "sigma8" in over:
         over["A_s"] = None

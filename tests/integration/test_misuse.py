@@ -55,6 +55,13 @@ CASES = [
     ("mock-bins", _set(["data"], {"mock": {"n_bins": 10**7}, "ells": [0, 2]}), "check",
      "data.mock.n_bins"),
     ("max-steps", _set(["sampling", "max_steps"], 10**12), "run", "sampling.max_steps"),
+    # old spellings of renamed parameters (issue 15, item 20): one line naming the new name
+    ("old-omega_cdm", _set(["cosmology", "overrides"], {"omega_cdm": 0.12}), "check",
+     "cosmology.overrides: unknown key 'omega_cdm' (renamed: write 'omega_c'"),
+    ("old-ln10As", _set(["parameters", "ln10As"], {"flat": [2.5, 3.5]}), "check",
+     "unknown parameter 'ln10As' (renamed: write 'ln_1e10_As'"),
+    ("old-truth-omega_cdm", _set(["data"], {"mock": {"truth": {"omega_cdm": 0.13}}, "ells": [0, 2]}),
+     "check", "data.mock.truth: unknown parameter 'omega_cdm' (renamed: write 'omega_c'"),
 ]
 
 
