@@ -17,7 +17,7 @@ from likelihood.theory.cosmology import Cosmology  # noqa: E402
 
 K = np.logspace(-4, 0, 2000)  # h/Mpc
 Z = 1.2
-BASE = dict(h=0.6736, omega_b=0.02237, omega_cdm=0.1200, n_s=0.9649)
+BASE = dict(h=0.6736, omega_b=0.02237, omega_c=0.1200, n_s=0.9649)
 
 
 def median_time(fn, repeat=200):
@@ -42,7 +42,7 @@ def main():
 
     def varying_call():
         c = Cosmology(h=0.6736 + 0.01 * rng.standard_normal(), omega_b=0.02237,
-                      omega_cdm=0.12 + 0.002 * rng.standard_normal(), n_s=0.9649,
+                      omega_c=0.12 + 0.002 * rng.standard_normal(), n_s=0.9649,
                       sigma8=0.81 + 0.01 * rng.standard_normal(), w=-1.0)
         c.power(K, Z)
         c.growth_factor(Z)

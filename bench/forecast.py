@@ -63,11 +63,11 @@ def main():
 
     # cosmological parameters: direct path, derivative stability
     raw = fc.config_to_raw(cfg)
-    raw["parameters"]["omega_cdm"] = {"flat": [0.08, 0.16], "scale": 0.002}
+    raw["parameters"]["omega_c"] = {"flat": [0.08, 0.16], "scale": 0.002}
     raw["parameters"]["n_s"] = {"flat": [0.8, 1.1], "scale": 0.005}
-    ccfg = validate(raw, src=str(DEMO) + " [+ omega_cdm, n_s]", base_dir=cfg.base_dir)
+    ccfg = validate(raw, src=str(DEMO) + " [+ omega_c, n_s]", base_dir=cfg.base_dir)
     res, t = timed(lambda: fc.bias_forecast(ccfg))
-    print(f"forecast with omega_cdm and n_s sampled: {t:.2f} s")
+    print(f"forecast with omega_c and n_s sampled: {t:.2f} s")
     for s in res.fisher.steps:
         print(f"  derivative {s['name']:<10s} step {s['step']:.3g}  relative change "
               f"{s['rel_change']:.1e}  stable {s['stable']}")

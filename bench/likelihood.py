@@ -44,12 +44,12 @@ def main():
     print(f"direct path, single          : {t_direct * 1e6:8.0f} us")
     print(f"ratio direct / fast          : {t_direct / t_single:8.0f}      (target >= 100)")
     raw = dict(cfg)
-    # cosmology-varying: sample omega_cdm too
+    # cosmology-varying: sample omega_c too
     raw = {k: v for k, v in load_config(path).items() if k not in ("fixed",)}
     import yaml
     with open(path) as fh:
         raw = yaml.safe_load(fh)
-    raw.setdefault("parameters", {})["omega_cdm"] = {"flat": [0.08, 0.16], "start": 0.12, "scale": 1e-3}
+    raw.setdefault("parameters", {})["omega_c"] = {"flat": [0.08, 0.16], "start": 0.12, "scale": 1e-3}
     lik_c = build(validate(raw, src=path, base_dir=os.path.dirname(os.path.abspath(path))))
     th_c = lik_c.start.copy()
     t_cosmo = per_call(lik_c.log_prob, 20, th_c)

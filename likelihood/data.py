@@ -288,8 +288,13 @@ class MockCovariance:
 
 
 def covariance_from_mocks(pattern, ells=None):
-    """Sample covariance (unbiased, 1/(n−1)) of all data-vector files matching ``pattern``."""
-    files = sorted(_glob.glob(os.fspath(pattern)))
+    """Sample covariance (unbiased, 1/(n−1)) of all data-vector files matching ``pattern``.
+
+    Rule for what counts as a mock: a matched file whose first line is the covariance header
+    (``# ergofit covariance``, e.g. the ``covariance.txt`` that ``ergofit simulate`` writes beside
+    its ``mock_*.txt``) is skipped; every other matched file must be a data vector.
+    """
+    files = [f for f in sorted(_glob.glob(os.fspath(pattern))) if not _is_covariance_file(f)]
     if len(files) < 2:
         raise DataError(f"{pattern}: found {len(files)} mock data-vector files; need at least 2")
     vecs = [DataVector.load(f) for f in files]
@@ -300,6 +305,20 @@ def covariance_from_mocks(pattern, ells=None):
     x = np.array([v.flat for v in vecs])
     cov = np.cov(x, rowvar=False, ddof=1)
     return MockCovariance(cov, len(files)), first
+
+
+def _is_covariance_file(path):
+    if path.endswith(".npz"):
+        try:
+            with np.load(path) as z:
+                return "covariance" in z.files
+        except (OSError, ValueError):
+            return False
+    try:
+        with open(path, encoding="utf-8") as fh:
+            return fh.readline().strip() == COV_HEADER
+    except (OSError, UnicodeDecodeError):
+        return False
 
 
 def gaussian_covariance(k, pkmu_coeffs, noise, n_modes, ells):

@@ -49,7 +49,7 @@ ACCURACY = 1.5    # CAMB AccuracyBoost = lSampleBoost = lAccuracyBoost (converge
 
 def _camb_params(**extra):
     p = camb.CAMBparams()
-    p.set_cosmology(H0=100.0 * P18["h"], ombh2=P18["omega_b"], omch2=P18["omega_cdm"],
+    p.set_cosmology(H0=100.0 * P18["h"], ombh2=P18["omega_b"], omch2=P18["omega_c"],
                     mnu=0.0, num_massive_neutrinos=0, nnu=3.046, TCMB=P18["T_cmb"])
     p.InitPower.set_params(As=P18["A_s"], ns=P18["n_s"])
     for k, v in extra.items():
@@ -74,7 +74,7 @@ def reference(tmp_path_factory):
         path = folder / f"camb_pk_{name}.txt"
         np.savetxt(path, np.c_[kh, pk], header="k[h/Mpc] P[(Mpc/h)^3] CAMB linear, z = 0")
         out[name] = Cosmology(h=P18["h"], omega_b=P18["omega_b"],
-                              omega_cdm=P18["omega_cdm"], n_s=P18["n_s"], m_nu=0.0,
+                              omega_c=P18["omega_c"], n_s=P18["n_s"], m_nu=0.0,
                               T_cmb=P18["T_cmb"], transfer="table", table_file=str(path),
                               table_kind="power")
     return out

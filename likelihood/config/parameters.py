@@ -32,10 +32,10 @@ KNOWN = {
                         "value of the constraint field at the observer in units of its rms"),
     "shot_noise": ParamInfo(r"A_{\rm sn}", 1.0, "noise", "shot-noise amplitude in units of 1/nbar"),
     "h": ParamInfo(r"h", 0.6736, "cosmology", "H0 / (100 km/s/Mpc)"),
-    "omega_cdm": ParamInfo(r"\omega_{\rm cdm}", 0.1200, "cosmology", "physical CDM density"),
+    "omega_c": ParamInfo(r"\omega_{\rm c}", 0.1200, "cosmology", "physical CDM density omega_c = Omega_c h^2"),
     "omega_b": ParamInfo(r"\omega_{\rm b}", 0.02237, "cosmology", "physical baryon density"),
     "n_s": ParamInfo(r"n_s", 0.9649, "cosmology", "scalar spectral index"),
-    "ln10As": ParamInfo(r"\ln(10^{10}A_s)", 3.044, "cosmology", "primordial amplitude"),
+    "ln_1e10_As": ParamInfo(r"\ln(10^{10}A_s)", 3.044, "cosmology", "primordial amplitude ln(1e10 A_s)"),
     "sigma8": ParamInfo(r"\sigma_8", 0.8111, "cosmology", "rms linear density in 8 Mpc/h spheres"),
 }
 
@@ -53,8 +53,18 @@ DERIVED = {
 DEFAULT_PRIORS = {"nu_obs": {"gauss": [0.0, 1.0]}}
 
 
+#: Old spellings of parameter names and the names that replaced them (issue 15, item 20): our own
+#: names follow the literature's notation, ω_c = Ω_c h² and ln(10¹⁰ A_s).
+RENAMED = {"omega_cdm": ("omega_c", "omega_c = Omega_c h^2"),
+           "ln10As": ("ln_1e10_As", "ln_1e10_As = ln(1e10 A_s)")}
+
+
 def suggest(name, choices):
-    """' (did you mean 'x'?)' for the nearest valid name, or ''."""
+    """' (did you mean 'x'?)' for the nearest valid name, or ''; for an old spelling of a renamed
+    parameter, the new name."""
+    if name in RENAMED and RENAMED[name][0] in choices:
+        new, meaning = RENAMED[name]
+        return f" (renamed: write '{new}', {meaning})"
     best = difflib.get_close_matches(str(name), list(choices), n=1, cutoff=0.5)
     return f" (did you mean '{best[0]}'?)" if best else ""
 

@@ -13,7 +13,7 @@ The vocabulary (all sections but ``survey`` optional)::
     run: NAME                      # run name; default output folder chains/NAME
     forecast:   {neglect: [effects], parameters, priors, threshold, step_rtol, scan: {...}}
                 (see likelihood.forecast)
-    cosmology:  {preset, overrides: {h, omega_b, omega_cdm, n_s, ln10As | sigma8, w, m_nu},
+    cosmology:  {preset, overrides: {h, omega_b, omega_c, n_s, ln_1e10_As | sigma8, w, m_nu},
                  transfer: eh98 | eh98_nowiggle | table, table: FILE, table_kind: power | transfer}
     survey:     {redshift, nbar, geometry: {shape: box | sphere | shell | cap | randoms,
                  volume | radius | r_min, r_max | fsky | randoms: FILE}}
@@ -443,9 +443,9 @@ def validate(raw, src="<memory>", base_dir="."):
 
     cosmo = cfg["cosmology"]
     for key, val in cosmo["overrides"].items():
-        if key not in ("h", "omega_b", "omega_cdm", "n_s", "ln10As", "sigma8", "w", "m_nu"):
+        if key not in ("h", "omega_b", "omega_c", "n_s", "ln_1e10_As", "sigma8", "w", "m_nu"):
             raise ConfigError(f"{src}: cosmology.overrides: unknown key '{key}'"
-                              f"{suggest(key, ['h', 'omega_b', 'omega_cdm', 'n_s', 'ln10As', 'sigma8', 'w', 'm_nu'])}")
+                              f"{suggest(key, ['h', 'omega_b', 'omega_c', 'n_s', 'ln_1e10_As', 'sigma8', 'w', 'm_nu'])}")
         _num()(val, f"{src}: cosmology.overrides.{key}")
     if cosmo["transfer"] == "table":
         if "table" not in cosmo:
@@ -498,8 +498,8 @@ def validate(raw, src="<memory>", base_dir="."):
         raise ConfigError(f"{src}: parameters: nothing to sample; give at least one parameter a flat or gauss prior")
     if "nu_obs" in [p.name for p in free] and not cfg["effects"]["observer"]:
         raise ConfigError(f"{src}: parameters.nu_obs is sampled but effects.observer is false")
-    if "ln10As" in [p.name for p in free] + list(fixed) and "sigma8" in [p.name for p in free] + list(fixed):
-        raise ConfigError(f"{src}: parameters: give ln10As or sigma8, not both")
+    if "ln_1e10_As" in [p.name for p in free] + list(fixed) and "sigma8" in [p.name for p in free] + list(fixed):
+        raise ConfigError(f"{src}: parameters: give ln_1e10_As or sigma8, not both")
     cfg["parameters"] = {p.name: {"prior": p.prior.__dict__, "start": p.start, "scale": p.scale} for p in free}
     cfg["fixed"] = fixed
     cfg._param_objects = (free, fixed)

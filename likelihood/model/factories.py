@@ -44,8 +44,8 @@ def cosmology(cfg, values=None):
             over[name] = cfg["fixed"][name]
     if values:
         over.update({k: float(v) for k, v in values.items() if k in COSMO_PARAMS})
-    if "ln10As" in over:
-        over["A_s"] = np.exp(over.pop("ln10As")) * 1e-10
+    if "ln_1e10_As" in over:
+        over["A_s"] = np.exp(over.pop("ln_1e10_As")) * 1e-10
         over["sigma8"] = None
     elif "sigma8" in over:
         over["A_s"] = None
@@ -119,11 +119,16 @@ def forward_model(cfg, srv, params, operator, obs, dv, mask, fiducial):
                         shot_noise_subtracted=cfg["data"]["shot_noise_subtracted"])
 
 
-def covariance(cfg, dv, cosmo, forward, fiducial):
+def covariance(cfg, dv, cosmo, forward, fiducial, mask=None):
     """(full covariance, :class:`~likelihood.data.MockCovariance` or None) of the ``covariance``
-    section: a file, mocks, or the analytic Gaussian covariance at the fiducial model."""
+    section: a file, mocks, or the analytic Gaussian covariance at the fiducial model.
+
+    Mocks: the inverse of a sample covariance of n_s mocks is unbiased (after the factor
+    (n_s − n_d − 2)/(n_s − 1)) only for n_s > n_d + 2 (Hartlap, Simon & Schneider 2007, eq. 17),
+    n_d the data points used (``mask``); fewer mocks are refused with the number needed."""
     c = cfg["covariance"]
     n = dv.flat.size
+    n_used = n if mask is None else int(np.count_nonzero(mask))
     if c["kind"] == "file":
         cov, ells = load_covariance(cfg.resolve(c["file"]))
         if ells is not None and tuple(ells) != dv.ells:
@@ -135,6 +140,12 @@ def covariance(cfg, dv, cosmo, forward, fiducial):
         mc, first = covariance_from_mocks(cfg.resolve(c["mocks"]))
         if first.ells != dv.ells or not np.allclose(first.edges, dv.edges):
             raise DataError(f"{c['mocks']}: mock multipoles/k bins differ from the data vector")
+        if mc.n_mocks <= n_used + 2:
+            raise DataError(f"{cfg.path}: covariance.mocks '{c['mocks']}': {mc.n_mocks} mocks for "
+                            f"{n_used} data points; a mock covariance needs more than n_data + 2 "
+                            f"= {n_used + 2} mocks for an unbiased inverse (Hartlap, Simon & "
+                            f"Schneider 2007): make at least {n_used + 3} (ergofit simulate "
+                            f"CONFIG --n {n_used + 3})")
         return mc.covariance, mc
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", tr.PlaneParallelWarning)
@@ -197,7 +208,7 @@ def build(config):
     obs = observer(cfg, srv, operator.bins, dv.ells, operator.ic, float(k_used(dv, mask)[0]))
     warn_regime(srv, cosmo, dv, mask, operator.ic)
     forward = forward_model(cfg, srv, params, operator, obs, dv, mask, fiducial)
-    cov_full, mock_cov = covariance(cfg, dv, cosmo, forward, fiducial)
+    cov_full, mock_cov = covariance(cfg, dv, cosmo, forward, fiducial, mask)
     if cfg["data"].get("mock") is not None:
         dv = mock(cfg, dv, forward, fiducial, [n for n in params.names if n in COSMO_PARAMS], cov_full)
     return Likelihood(cfg, params=params, cosmo=cosmo, survey=srv, data_full=dv, mask=mask,

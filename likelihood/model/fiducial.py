@@ -11,7 +11,7 @@ import numpy as np
 from ..config.parameters import KNOWN
 from ..theory import tracer as tr
 
-COSMO_PARAMS = ("h", "omega_cdm", "omega_b", "n_s", "ln10As", "sigma8")
+COSMO_PARAMS = ("h", "omega_c", "omega_b", "n_s", "ln_1e10_As", "sigma8")
 TRACER_PARAMS = ("b1", "fnl", "b_e", "s")
 
 

@@ -51,8 +51,10 @@ def load_randoms(path, cosmo=None):
     """Read a random catalogue; return positions (N, 3) [Mpc/h] and weights (N,).
 
     Text format: a header line ``# columns: x y z [w]`` (Cartesian, Mpc/h, observer at the
-    origin) or ``# columns: ra dec z [w]`` (degrees, redshift; needs ``cosmo``), then one row per
-    random. ``.npz``: arrays x, y, z[, w] or ra, dec, z[, w] or positions (N, 3)[, weights].
+    origin) or ``# columns: ra dec redshift [w]`` (degrees, redshift; needs ``cosmo``), then one
+    row per random. ``.npz``: arrays x, y, z[, w] or ra, dec, redshift[, w] or positions (N, 3)
+    [, weights]. ``z`` is always the Cartesian coordinate: the old sky form ``ra dec z`` is refused
+    as ambiguous.
     Weights default to 1. Unreadable, empty, non-finite or negative-weight input raises DataError
     naming the file.
     """
@@ -69,13 +71,13 @@ def load_randoms(path, cosmo=None):
                 cols.update(x=pos[:, 0], y=pos[:, 1], z=pos[:, 2])
                 if "weights" in cols:
                     cols["w"] = cols["weights"]
-            names = [n for n in ("x", "y", "z", "ra", "dec", "w") if n in cols]
+            names = [n for n in ("x", "y", "z", "ra", "dec", "redshift", "w") if n in cols]
         else:
             header = read_comment_header(path)[1]
             names = header["columns"][-1].split() if "columns" in header else None
             if names is None:
                 raise DataError(f"{path}: no '# columns:' header line; add '# columns: x y z w' "
-                                "(Mpc/h) or '# columns: ra dec z w' (degrees, redshift)")
+                                "(Mpc/h) or '# columns: ra dec redshift w' (degrees, redshift)")
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", UserWarning)   # empty file: reported below
                 data = np.loadtxt(path, comments="#", ndmin=2)
@@ -90,21 +92,25 @@ def load_randoms(path, cosmo=None):
     except (OSError, ValueError, UnicodeDecodeError, EOFError) as exc:
         raise DataError(f"{path}: cannot read randoms ({exc.__class__.__name__}: "
                         f"{str(exc).splitlines()[0] if str(exc) else ''})") from None
+    if "z" in cols and ("ra" in cols or "dec" in cols):
+        raise DataError(f"{path}: column 'z' beside ra/dec is ambiguous (z is the Cartesian "
+                        "coordinate in Mpc/h); name the redshift column 'redshift', e.g. "
+                        "'# columns: ra dec redshift w'")
     if all(n in cols for n in ("x", "y", "z")):
         pos = np.column_stack([cols["x"], cols["y"], cols["z"]])
-    elif all(n in cols for n in ("ra", "dec", "z")):
+    elif all(n in cols for n in ("ra", "dec", "redshift")):
         if cosmo is None:
-            raise DataError(f"{path}: columns ra dec z need a cosmology to convert redshifts "
+            raise DataError(f"{path}: columns ra dec redshift need a cosmology to convert redshifts "
                             "to distances; pass cosmo=Cosmology(...)")
-        ra, dec, z = cols["ra"], cols["dec"], cols["z"]
+        ra, dec, z = cols["ra"], cols["dec"], cols["redshift"]
         if not (np.all(np.isfinite(ra)) and np.all(np.isfinite(dec)) and np.all(np.isfinite(z))):
-            raise DataError(f"{path}: NaN or inf in ra/dec/z; remove those rows")
+            raise DataError(f"{path}: NaN or inf in ra/dec/redshift; remove those rows")
         try:
             pos = radec_to_cartesian(ra, dec, z, cosmo)
         except DataError as exc:
             raise DataError(f"{path}: {exc}") from None
     else:
-        raise DataError(f"{path}: expected columns x y z [w] or ra dec z [w], "
+        raise DataError(f"{path}: expected columns x y z [w] or ra dec redshift [w], "
                         f"found {sorted(cols)}")
     if pos.shape[0] == 0:
         raise DataError(f"{path}: randoms file is empty; expected one row per random")

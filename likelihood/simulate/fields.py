@@ -117,15 +117,29 @@ def observed_field(mesh, delta_k, A, B=None, F=0.0):
 # Hoffman–Ribak constrained field at the observer
 # ---------------------------------------------------------------------------------------------
 
+def _planes(mesh, arr):
+    """Per-plane (axis 0) views of a Fourier-layout array or a broadcastable scalar."""
+    a = np.broadcast_to(np.asarray(arr), mesh.fourier_shape) if np.ndim(arr) else arr
+    return (lambda i: a[i]) if np.ndim(arr) else (lambda i: a)
+
+
 def _constraint_parts(mesh, pk, c_kernel):
+    """(P, K, multiplicity weights, σ_c²) on the mesh in the mesh's precision; σ_c² is summed in
+    float64 plane by plane (no full-size float64 temporaries)."""
     p = fourier_array(mesh, pk, "pk")
     kc = fourier_array(mesh, c_kernel, "c_kernel")
     if np.iscomplexobj(kc) or np.iscomplexobj(p):
         raise ErgofitError("c_kernel(k) and pk(k) must be real")
-    p = np.broadcast_to(np.asarray(p, float), mesh.fourier_shape)
-    kc = np.broadcast_to(np.asarray(kc, float), mesh.fourier_shape)
-    w = mesh.rfft_weights().astype(float)
-    sigma2 = float(np.sum(w * kc * kc * p)) / mesh.volume
+    rdt = mesh.real_dtype
+    p = np.asarray(p).astype(rdt, copy=False) if np.ndim(p) else rdt.type(p)
+    kc = np.asarray(kc).astype(rdt, copy=False) if np.ndim(kc) else rdt.type(kc)
+    w = mesh.rfft_weights()[0, 0].astype(float)
+    pp, kk = _planes(mesh, p), _planes(mesh, kc)
+    sigma2 = 0.0
+    for i in range(mesh.n):
+        kp = np.broadcast_to(np.asarray(kk(i), float), mesh.fourier_shape[1:])
+        sigma2 += float(np.sum(w * kp * kp * np.asarray(pp(i), float)))
+    sigma2 /= mesh.volume
     if not sigma2 > 0:
         raise ErgofitError("constraint: σ_c² = V⁻¹ Σ_k K(k)² P(k) is zero on this mesh; the "
                            "constraint kernel has no support between k_f and k_N")
@@ -133,13 +147,15 @@ def _constraint_parts(mesh, pk, c_kernel):
 
 
 def _observer_phase(mesh):
+    """e^{-ik·x_o} on the rfft layout, in the mesh's complex precision."""
     node = mesh.observer_node()
     if node is None:
         raise ErgofitError(f"mesh observer = {mesh.observer}: the constraint at the observer needs "
                            f"the observer on a mesh node (multiples of H = {mesh.cell:.6g} Mpc/h "
                            "inside the box)")
     i, j, l = mesh.k_integers()
-    ph = [np.exp(-2j * np.pi * a * c / mesh.n) for a, c in zip((i, j, l), node)]
+    cdt = mesh.complex_dtype
+    ph = [np.exp(-2j * np.pi * a * c / mesh.n).astype(cdt) for a, c in zip((i, j, l), node)]
     return ph[0] * ph[1] * ph[2]
 
 
@@ -161,11 +177,46 @@ def constraint_mean_field(mesh, pk, c_kernel):
     """
     p, kc, _, sigma2 = _constraint_parts(mesh, pk, c_kernel)
     sig = math.sqrt(sigma2)
-    mk = (p * kc / sig) * _observer_phase(mesh)
-    return to_real(mesh, mk.astype(mesh.complex_dtype)), sig
+    mk = _observer_phase(mesh)
+    mk *= (p * kc / sig)
+    return to_real(mesh, mk.astype(mesh.complex_dtype, copy=False)), sig
 
 
-def constrain_at_origin(mesh, delta_k, c_kernel, c_value, pk):
+@dataclass(frozen=True)
+class ConstraintTemplate:
+    """The pieces of the Hoffman–Ribak correction that do not depend on the realisation, made
+    once per mock set: g = K e^{-ik·x_o}, t = P g (mesh precision) and σ_c²."""
+    g: np.ndarray
+    t: np.ndarray
+    weights: np.ndarray
+    sigma2: float
+
+    @classmethod
+    def make(cls, mesh, c_kernel, pk):
+        p, kc, w, sigma2 = _constraint_parts(mesh, pk, c_kernel)
+        g = _observer_phase(mesh)
+        g *= kc
+        t = g * p
+        return cls(g, t.astype(mesh.complex_dtype, copy=False), w, sigma2)
+
+    def value(self, mesh, dk):
+        """c(x_o) = V⁻¹ Σ_full K δ_k e^{ik·x_o} (half layout: Re with multiplicity weights),
+        summed in float64 plane by plane."""
+        tot = 0.0
+        for i in range(mesh.n):
+            tot += float(np.sum(self.weights * np.real(dk[i] * np.conj(self.g[i])), dtype=float))
+        return tot / mesh.volume
+
+    def apply(self, mesh, dk, c_value):
+        """Impose c(x_o) = c_value on δ_k in place; returns c(x_o) before."""
+        c_obs = self.value(mesh, dk)
+        amp = (c_value - c_obs) / self.sigma2
+        for i in range(mesh.n):
+            dk[i] += self.t[i] * dk.real.dtype.type(amp)
+        return c_obs
+
+
+def constrain_at_origin(mesh, delta_k, c_kernel, c_value, pk, template=None, inplace=False):
     """Impose c(x_o) = ``c_value`` on a Gaussian field, c(k) = K(k) δ(k) (Hoffman & Ribak 1991).
 
     With ξ_δc(x) = V⁻¹ Σ_k P K e^{ik·x} and σ_c² = V⁻¹ Σ_k P K² (mesh modes, K = ``c_kernel``
@@ -179,16 +230,17 @@ def constrain_at_origin(mesh, delta_k, c_kernel, c_value, pk):
     c(x_o) is evaluated as the mesh field at the observer node (exactly what ``to_real`` gives).
     The result depends on K only through its shape: rescaling K rescales c_value and σ_c alike.
 
-    ``pk``: the power spectrum the field was drawn with. Returns (δ'_k, σ_c, c(x_o) before).
+    ``pk``: the power spectrum the field was drawn with. ``template``: a
+    :class:`ConstraintTemplate` made once for a set of mocks (saves its set-up per mock);
+    ``inplace``: overwrite ``delta_k`` (saves one field of memory). Returns (δ'_k, σ_c, c(x_o)
+    before).
     """
     dk = check_fourier_field(mesh, delta_k)
     cv = finite_number(c_value, "c_value")
-    p, kc, w, sigma2 = _constraint_parts(mesh, pk, c_kernel)
-    phase = _observer_phase(mesh)
-    # c(x_o) = V⁻¹ Σ_full K δ_k e^{ik·x_o}; on the half layout, Re with multiplicity weights.
-    c_obs = float(np.sum(w * np.real(kc * dk * np.conj(phase)))) / mesh.volume
-    corr = (p * kc * phase) * ((cv - c_obs) / sigma2)
-    return (dk + corr).astype(dk.dtype, copy=False), math.sqrt(sigma2), c_obs
+    tpl = template if template is not None else ConstraintTemplate.make(mesh, c_kernel, pk)
+    out = dk if inplace else dk.copy()
+    c_obs = tpl.apply(mesh, out, cv)
+    return out, math.sqrt(tpl.sigma2), c_obs
 
 
 def _ir_cut(k, k_ir):

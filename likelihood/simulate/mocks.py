@@ -20,6 +20,7 @@ Regime of validity
 """
 from __future__ import annotations
 
+import math
 import os
 from typing import Mapping
 
@@ -30,7 +31,7 @@ from ..data import MockCovariance, save_covariance
 from ..errors import ConfigError, ErgofitError
 from ..numerics.mesh import fourier_array
 from ..observation.estimator import MAX_ELL, check_edges, extent_warning, measure_multipoles, multipole_list, window_weights
-from .fields import ObserverConstraint, clip_warning, constrain_at_origin, constraint_sigma, gaussian_field, observed_field, poisson_counts
+from .fields import ConstraintTemplate, ObserverConstraint, clip_warning, constrain_at_origin, constraint_sigma, gaussian_field, observed_field, poisson_counts
 
 def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10, seed=0,
                    nbar=None, constraint=None, subtract_mean=True, k_cut=None, progress=None):
@@ -66,18 +67,21 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
         p = np.where(mesh.kmag() <= kc, p, 0.0)
     a = fourier_array(mesh, A, "A")
     bk = None if B is None else fourier_array(mesh, B, "B")
-    c_value = None
+    rdt = mesh.real_dtype
+    p = np.asarray(p).astype(rdt, copy=False) if np.ndim(p) else p       # mesh precision
+    a = np.asarray(a).astype(rdt, copy=False) if np.ndim(a) else a
+    bk = bk if bk is None or not np.ndim(bk) else np.asarray(bk).astype(rdt, copy=False)
+    c_value = tpl = None
     if constraint is not None:
-        sig = constraint_sigma(mesh, p, constraint.kernel)
-        kern = fourier_array(mesh, constraint.kernel, "constraint kernel")
-        c_value = constraint.nu * sig
+        tpl = ConstraintTemplate.make(mesh, constraint.kernel, p)
+        c_value = constraint.nu * math.sqrt(tpl.sigma2)
     mocks = []
     max_clip = 0.0
     for i, child in enumerate(np.random.SeedSequence(seed).spawn(n)):
         s_field, s_poisson = child.spawn(2)
         dk = gaussian_field(mesh, p, s_field)
         if constraint is not None:
-            dk, _, _ = constrain_at_origin(mesh, dk, kern, c_value, p)
+            dk, _, _ = constrain_at_origin(mesh, dk, None, c_value, p, template=tpl, inplace=True)
         gal = observed_field(mesh, dk, a, bk, F)
         del dk
         if nbar is not None:
@@ -148,7 +152,7 @@ def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells,
     constraint = _observer_from_settings(observer)
     ells = multipole_list(ells, "ells", max_ell=MAX_ELL)
     e = check_edges(mesh, edges)
-    pk = mesh.on_grid(lambda k: cosmo.power(k, zf), "cosmology power")
+    pk = mesh.on_grid(lambda k: cosmo.power(k, zf), "cosmology power").astype(mesh.real_dtype)
     q = mesh.k_squared_index()
     kq = mesh.k_fundamental * np.sqrt(np.arange(1, int(q.max()) + 1, dtype=float))
     ker = tracer_kernel(cosmo, zf, kq, tracer, effects)
@@ -156,7 +160,9 @@ def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells,
     tab_b = np.concatenate([[0.0], np.broadcast_to(np.asarray(ker.B, float), kq.shape)])
     if not (np.all(np.isfinite(tab_a)) and np.all(np.isfinite(tab_b))):
         raise ErgofitError("tracer kernel: A(k) or B(k) is not finite on the mesh wavenumbers")
-    a, b = tab_a[q], tab_b[q]
+    rdt = mesh.real_dtype
+    a, b = tab_a.astype(rdt)[q], tab_b.astype(rdt)[q]
+    del q
     fval = float(np.asarray(ker.F))
     if out_dir is not None:
         out_dir = os.fspath(out_dir)

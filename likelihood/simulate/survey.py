@@ -5,12 +5,12 @@ survey diameter, so periodic images do not correlate survey points; a box geomet
 L = V^(1/3)), and N cells per side so
 that the Nyquist frequency is at least 1.5 times the data's k_max. The mocks are measured with the
 FFT estimator (:mod:`likelihood.observation.estimator`) on the data's k bins and multipoles; ``--validate``
-compares their mean with the full observed model of the likelihood (window, integral
-constraint, observer term at ν = observer.nu_true, projection terms) and writes
-``validation.png`` and ``validation.json``.
+compares their mean with the model they were made from (:func:`validation_model`), using the
+mocks' own scatter, and writes ``validation.png`` and ``validation.json``.
 """
 from __future__ import annotations
 
+import copy
 import json
 import math
 import os
@@ -19,7 +19,7 @@ import warnings
 import numpy as np
 
 from ..theory import tracer as tr
-from ..config.schema import load_config
+from ..config.schema import Config, load_config, validate as validate_config
 from ..errors import ErgofitError
 from ..io import write_text
 from ..model import build
@@ -47,10 +47,46 @@ def choose_mesh(lik, n_mesh=None):
     return Mesh(int(n_mesh), float(box), dtype="float32")
 
 
+def validation_model(config, mesh):
+    """Expected measurement of noise-free mocks on ``mesh``: the likelihood's full observed model
+    (window, integral constraint, projection terms, observer term at ν = observer.nu_true) at the
+    config's fiducial values, with the two settings the mocks fix:
+
+    * no shot noise: the mocks are not Poisson sampled and nothing is subtracted, so the model
+      carries no noise term (shot_noise = 0, data.shot_noise_subtracted = false);
+    * one infrared cut-off for the constrained potential: the mocks cannot hold modes below the
+      mesh's fundamental k_f = 2π/L, so the model's observer.k_ir is set to k_f as well
+      (the mocks impose the constraint with the same k_ir).
+
+    Returns (model array (n_ell, n_bins), the likelihood it came from, k_ir).
+    """
+    cfg = config if isinstance(config, Config) else load_config(config)
+    raw = copy.deepcopy(cfg.raw)
+    k_ir = float(mesh.k_fundamental)
+    raw.setdefault("data", {})["shot_noise_subtracted"] = False
+    raw.setdefault("parameters", {})["shot_noise"] = {"fixed": 0.0}
+    if cfg["effects"]["observer"]:
+        raw.setdefault("observer", {})["k_ir"] = k_ir
+    if not any(isinstance(v, dict) and ("flat" in v or "gauss" in v)
+               for v in raw["parameters"].values()):
+        raw["parameters"]["b1"] = {"flat": [0.01, 100.0]}   # the validator wants one sampled
+    vcfg = validate_config(raw, src=cfg.path, base_dir=cfg.base_dir)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")           # the same warnings were shown for the mocks
+        lik = build(vcfg)
+    truth = {k: np.atleast_1d(v) for k, v in lik.fiducial.items()}
+    truth["shot_noise"] = np.atleast_1d(0.0)
+    model = lik.model_full(truth)[0].reshape(lik.data_full.values.shape)
+    return model, lik, k_ir
+
+
 def simulate_survey(config, n, out=None, mesh_n=None, check=False, echo=print):
     """``n`` Gaussian mocks of the survey of ``config`` written into ``out`` (default
-    ``<output folder>/mocks``), with the validation against the model when ``check``; ``echo``
-    (a print-like callable) receives the progress and result lines."""
+    ``<output folder>/mocks``: ``mock_0000.txt``, ... and ``covariance.txt``), with the
+    validation against the model the mocks were made from when ``check`` (see
+    :func:`validation_model`; the test uses the mocks' own scatter, Hotelling's T²);
+    ``echo`` (a print-like callable) receives the progress and result lines.
+    Returns the validation result (a dict) or None."""
     cfg = load_config(config)
     if n < 2:
         raise ErgofitError(f"--n {n}: need at least 2 mocks for a covariance")
@@ -59,9 +95,16 @@ def simulate_survey(config, n, out=None, mesh_n=None, check=False, echo=print):
     out = out or os.path.join(cfg.output_folder, "mocks")
     fid = lik.fiducial
     tracer = make_tracer(fid, lik.p, lik.nbar)
-    observer = dict(cfg["observer"]) if cfg["effects"]["observer"] else None
+    observer = None
+    if cfg["effects"]["observer"]:
+        observer = dict(cfg["observer"])
+        observer["k_ir"] = float(mesh.k_fundamental)    # the same IR cut-off as validation_model
+    n_data = lik.data_full.flat.size
     echo(f"simulate: {n} mocks on a {mesh.n}^3 mesh, box {mesh.box:.0f} Mpc/h "
-          f"(k_Nyquist = {mesh.k_nyquist:.3g} h/Mpc), writing into {out}/")
+         f"(k_Nyquist = {mesh.k_nyquist:.3g} h/Mpc), writing into {out}/")
+    if n <= n_data + 2:
+        echo(f"  note: {n} mocks for {n_data} data points; covariance.kind: mocks needs more than "
+             f"n_data + 2 (Hartlap et al. 2007): --n {n_data + 3} or more")
 
     def progress(i, n):
         echo(f"  mock {i}/{n}", flush=True)
@@ -72,24 +115,31 @@ def simulate_survey(config, n, out=None, mesh_n=None, check=False, echo=print):
                                            lik.data_full.edges, lik.data_full.ells, n,
                                            cfg["data"].get("mock", {}).get("seed", 0), nbar=None,
                                            observer=observer, out_dir=out, progress=progress)
-    echo(f"wrote {len(mocks)} data vectors and covariance.txt into {out}/")
-    if check:
-        truth = {k: np.atleast_1d(v) for k, v in fid.items()}
-        truth["shot_noise"] = np.atleast_1d(lik.sn_sub)   # mocks are not Poisson sampled: no noise
-        model = lik.model_full(truth)[0].reshape(lik.data_full.values.shape)
-        n_data = model.size
-        cov = None
-        if len(mocks) <= n_data + 2:
-            cov = lik.covariance_full
-            echo(f"  {len(mocks)} mocks for {n_data} data points: comparing with the likelihood's "
-                  f"{cfg['covariance']['kind']} covariance instead of the mocks' own")
-        res = validate(mocks, model, covariance=cov, plot=os.path.join(out, "validation.png"))
-        write_text(os.path.join(out, "validation.json"),
-                   json.dumps({k: (v if not isinstance(v, dict) else {str(a): b for a, b in v.items()})
-                               for k, v in res.items()}, indent=2, default=float))
-        for l in res["ells"]:
-            echo(f"  ell = {l}: chi2 = {res['chi2'][l]:.1f} for {res['dof'][l]} bins "
-                  f"(p = {res['p_value'][l]:.3f})")
-        echo(f"  total: chi2 = {res['chi2_total']:.1f} / {res['dof_total']} (p = {res['p_value_total']:.3f}); "
-              f"plot {res['plot']}")
-    return 0
+    echo(f"wrote {len(mocks)} data vectors (mock_0000.txt ...) and covariance.txt into {out}/")
+    if not check:
+        return None
+    model, _, k_ir = validation_model(cfg, mesh)
+    nb = lik.data_full.n_bins
+    if len(mocks) <= nb:
+        echo(f"  validation: no test possible: {len(mocks)} mocks, and the mocks' own scatter "
+             f"needs more mocks than bins per multipole ({nb}); use --n {n_data + 1} or more "
+             "for the per-multipole and total tests")
+        return None
+    res = validate(mocks, model, plot=os.path.join(out, "validation.png"))
+    res["k_ir"] = k_ir
+    res["shot_noise"] = "none (mocks not Poisson sampled; model without noise term)"
+    write_text(os.path.join(out, "validation.json"),
+               json.dumps({k: (v if not isinstance(v, dict) else {str(a): b for a, b in v.items()})
+                           for k, v in res.items()}, indent=2, default=float))
+    echo(f"  validation against the model the mocks were made from (no shot noise; observer "
+         f"k_ir = k_f = {k_ir:.3g} h/Mpc in both), using the scatter of the {len(mocks)} mocks:")
+    for l in res["ells"]:
+        echo(f"  ell = {l}: chi2 = {res['chi2'][l]:.1f} for {res['dof'][l]} bins "
+             f"(p = {res['p_value'][l]:.3g})")
+    if res["chi2_total"] is None:
+        echo(f"  total: no joint test ({len(mocks)} mocks for {n_data} data points; "
+             f"--n {n_data + 1} or more); plot {res['plot']}")
+    else:
+        echo(f"  total: chi2 = {res['chi2_total']:.1f} / {res['dof_total']} "
+             f"(p = {res['p_value_total']:.3g}); plot {res['plot']}")
+    return res

@@ -14,7 +14,9 @@ def validate(mocks, model, covariance=None, plot=None):
     χ² = (x̄ − m)ᵀ (C/N)⁻¹ (x̄ − m) with x̄ the mean of the N mocks. If ``covariance`` (of one
     mock) is given, χ² follows a χ² law with p dof (p-value from scipy.stats.chi2). If not, C is
     the sample covariance of the same mocks and T² = χ² follows Hotelling's law:
-    T² (N − p)/(p (N − 1)) ~ F(p, N − p) (Hotelling 1931), used for the p-value.
+    T² (N − p)/(p (N − 1)) ~ F(p, N − p) (Hotelling 1931), used for the p-value; it needs
+    N > p, so with more mocks than bins per multipole but not more than all data points the
+    per-multipole tests are made and the total is None (chi2_total, p_value_total).
     ``model``: a DataVector or an array of shape (n_ell, n_bins) of the *expected measurement*
     (window-convolved, bin-averaged), supplied by the caller. ``plot``: optional path of a PNG
     with the residuals (x̄ − m)/σ_mean per ℓ against k.
@@ -42,9 +44,9 @@ def validate(mocks, model, covariance=None, plot=None):
     resid = mean - mv.ravel()
     if covariance is None:
         cov = np.cov(x, rowvar=False, ddof=1)
-        if nm <= p:
-            raise ErgofitError(f"validate: {nm} mocks for {p} data points; the sample covariance "
-                               "needs more mocks than data points (or pass covariance=)")
+        if nm <= first.n_bins:
+            raise ErgofitError(f"validate: {nm} mocks for {first.n_bins} bins per multipole; the "
+                               "mocks' own scatter needs more mocks than bins (or pass covariance=)")
     else:
         cov = np.asarray(getattr(covariance, "covariance", covariance), dtype=float)
         check_covariance(cov, n=p, source="validate covariance")
@@ -53,8 +55,10 @@ def validate(mocks, model, covariance=None, plot=None):
     def stat(sl):
         c = cov[sl, sl] / nm
         r = resid[sl]
-        chi2 = float(r @ np.linalg.solve(c, r))
         d = r.size
+        if covariance is None and nm <= d:
+            return None, d, None            # the sample covariance of nm <= d mocks is singular
+        chi2 = float(r @ np.linalg.solve(c, r))
         if covariance is None:
             pv = float(stats.f.sf(chi2 * (nm - d) / (d * (nm - 1)), d, nm - d))
         else:

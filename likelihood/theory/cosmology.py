@@ -47,9 +47,9 @@ NU_MASS_DENSITY_EV = 93.14      # omega_nu = sum(m_nu)/93.14 eV (common practice
 # "planck2018": column TT,TE,EE+lowE+lensing; "planck2018_bao": column TT,TE,EE+lowE+lensing+BAO.
 # Both assume one massive neutrino with sum(m_nu) = 0.06 eV.
 PRESETS = {
-    "planck2018": dict(h=0.6736, omega_b=0.02237, omega_cdm=0.1200, n_s=0.9649,
+    "planck2018": dict(h=0.6736, omega_b=0.02237, omega_c=0.1200, n_s=0.9649,
                        A_s=math.exp(3.044) * 1e-10, m_nu=0.06, w=-1.0, T_cmb=2.7255),
-    "planck2018_bao": dict(h=0.6766, omega_b=0.02242, omega_cdm=0.11933, n_s=0.9665,
+    "planck2018_bao": dict(h=0.6766, omega_b=0.02242, omega_c=0.11933, n_s=0.9665,
                            A_s=math.exp(3.047) * 1e-10, m_nu=0.06, w=-1.0, T_cmb=2.7255),
 }
 # Derived values published in the same table (from memory, see above), used by the tests.
@@ -138,7 +138,7 @@ class Cosmology:
     Parameters
     ----------
     h : H0 / (100 km/s/Mpc), > 0.
-    omega_b, omega_cdm : physical densities Omega h^2 of baryons (>= 0) and cold dark matter.
+    omega_b, omega_c : physical densities Omega h^2 of baryons (>= 0) and cold dark matter.
     n_s : scalar spectral index.
     A_s : amplitude of the primordial curvature power Delta^2_R(k_pivot).
     sigma8 : rms linear density in 8 Mpc/h spheres at z = 0; give exactly one of A_s / sigma8
@@ -159,15 +159,15 @@ class Cosmology:
     arrays. Bad input raises :class:`likelihood.errors.ErgofitError`.
     """
 
-    def __init__(self, h, omega_b, omega_cdm, n_s, A_s=None, sigma8=None, w=-1.0, m_nu=0.06,
+    def __init__(self, h, omega_b, omega_c, n_s, A_s=None, sigma8=None, w=-1.0, m_nu=0.06,
                  T_cmb=2.7255, k_pivot=0.05, transfer="eh98", table_file=None,
                  table_kind=None):
-        self._params = dict(h=h, omega_b=omega_b, omega_cdm=omega_cdm, n_s=n_s, A_s=A_s,
+        self._params = dict(h=h, omega_b=omega_b, omega_c=omega_c, n_s=n_s, A_s=A_s,
                             sigma8=sigma8, w=w, m_nu=m_nu, T_cmb=T_cmb, k_pivot=k_pivot,
                             transfer=transfer, table_file=table_file, table_kind=table_kind)
         self.h = h = _checked("h", h)
         self.omega_b = omega_b = _checked("omega_b", omega_b)
-        self.omega_cdm = omega_cdm = _checked("omega_cdm", omega_cdm)
+        self.omega_c = omega_c = _checked("omega_c", omega_c)
         self.n_s = _checked("n_s", n_s)
         self.w = w = _checked("w", w)
         self.m_nu = m_nu = _checked("m_nu", m_nu)
@@ -177,8 +177,8 @@ class Cosmology:
             raise ErgofitError(f"cosmology parameter h must be > 0, got {h}")
         if omega_b < 0:
             raise ErgofitError(f"cosmology parameter omega_b must be >= 0, got {omega_b}")
-        if omega_cdm < 0:
-            raise ErgofitError(f"cosmology parameter omega_cdm must be >= 0, got {omega_cdm}")
+        if omega_c < 0:
+            raise ErgofitError(f"cosmology parameter omega_c must be >= 0, got {omega_c}")
         if m_nu < 0:
             raise ErgofitError(f"cosmology parameter m_nu must be >= 0 (eV), got {m_nu}")
         if w >= -1.0 / 3.0:
@@ -189,10 +189,10 @@ class Cosmology:
         if self.k_pivot <= 0:
             raise ErgofitError(f"cosmology parameter k_pivot must be > 0 (1/Mpc), got {k_pivot}")
         self.omega_nu = m_nu / NU_MASS_DENSITY_EV
-        self.omega_m = omega_b + omega_cdm + self.omega_nu
+        self.omega_m = omega_b + omega_c + self.omega_nu
         self.Omega_m0 = self.omega_m / h**2
         self.Omega_b0 = omega_b / h**2
-        self.Omega_cdm0 = omega_cdm / h**2
+        self.Omega_cdm0 = omega_c / h**2
         self.Omega_nu0 = self.omega_nu / h**2
         if not 0.0 < self.Omega_m0 <= 1.0:
             raise ErgofitError(f"cosmology parameters give Omega_m0 = {self.Omega_m0:.4g}; "

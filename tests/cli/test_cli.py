@@ -1,4 +1,5 @@
 """The command line end to end: check, theory, simulate, and bad input (exit code 2, one line)."""
+import json
 import os
 import subprocess
 import sys
@@ -52,17 +53,54 @@ def test_theory_writes_table_and_plot(write_config, tmp_path, capsys):
     assert t2[0, 4] > t2[0, 1]
 
 
-def test_simulate_and_validate(tmp_path, write_config, capsys):
-    over = {"survey": {"redshift": 1.0, "geometry": {"shape": "sphere", "radius": 500.0,
-                                                      "r_min": None, "r_max": None}},
-            "data": {"mock": {"k_min": 0.012, "k_max": 0.08, "n_bins": 6}}}
-    cfg = write_config(over)
+SMALL_SURVEY = {"survey": {"redshift": 1.0, "geometry": {"shape": "sphere", "radius": 500.0,
+                                                         "r_min": None, "r_max": None}},
+                "data": {"mock": {"k_min": 0.012, "k_max": 0.08, "n_bins": 6}}}
+
+
+def test_simulate_validate_is_a_real_test(tmp_path, write_config, capsys):
+    """--validate compares the mocks with the model they were made from, using their own scatter
+    (Hotelling's T², Hotelling 1931): it passes on mocks of the model and fails (p tiny) on
+    mocks made with another b1 (issue 15, item 4). 30 mocks for 12 data points."""
+    from likelihood.config.schema import load_config
+    from likelihood.data import DataVector
+    from likelihood.simulate.survey import choose_mesh, validation_model
+    from likelihood.simulate.validation import validate
+    from likelihood.model import build
+
+    cfg = write_config(SMALL_SURVEY)
     out = tmp_path / "mocks"
-    assert main(["simulate", cfg, "--n", "8", "--out", str(out), "--validate"]) == 0
-    assert len(list(out.glob("mock_*.txt"))) == 8
+    assert main(["simulate", cfg, "--n", "30", "--out", str(out), "--validate"]) == 0
+    assert len(list(out.glob("mock_*.txt"))) == 30
     assert (out / "covariance.txt").exists() and (out / "validation.png").exists()
     text = capsys.readouterr().out
-    assert "total: chi2" in text
+    assert "using the scatter of the 30 mocks" in text and "no shot noise" in text
+    res = json.loads((out / "validation.json").read_text())
+    assert res["n_mocks"] == 30 and res["dof_total"] == 12
+    assert res["p_value_total"] > 1e-3, res
+    # the model has no noise term: noise-free mocks are compared with noise-free theory
+    lik = build(load_config(cfg))
+    mesh = choose_mesh(lik)
+    model, vlik, k_ir = validation_model(load_config(cfg), mesh)
+    assert k_ir == pytest.approx(2 * np.pi / mesh.box, rel=1e-12)
+    assert vlik.sn_sub == 0.0
+    # mocks of another model (b1 = 2.4 instead of 2.0) fail the same validation
+    other = write_config(dict(SMALL_SURVEY, tracer={"b1": 2.4}), "other.yaml")
+    out2 = tmp_path / "other"
+    assert main(["simulate", other, "--n", "30", "--out", str(out2)]) == 0
+    mocks = [DataVector.load(f) for f in sorted(out2.glob("mock_*.txt"))]
+    bad = validate(mocks, model)
+    assert bad["p_value_total"] < 1e-6, bad
+
+
+def test_simulate_validate_says_when_too_few_mocks(tmp_path, write_config, capsys):
+    out = tmp_path / "few"
+    assert main(["simulate", write_config(SMALL_SURVEY), "--n", "4", "--out", str(out),
+                 "--validate"]) == 0
+    text = capsys.readouterr().out
+    assert "validation: no test possible: 4 mocks" in text and "--n 13" in text
+    assert "covariance.kind: mocks needs more than n_data + 2" in text
+    assert not (out / "validation.json").exists()
 
 
 def test_console_script_entry_point(write_config):

@@ -72,3 +72,20 @@ def test_hash_follows_contents_not_paths_or_sampler(tmp_path):
     with open(tmp_path / "demo_data.txt", "a") as fh:
         fh.write("# edited\n")
     assert load_config(tmp_path / "demo.yaml").hash != h0             # edited data: new hash
+
+
+def test_cosmology_names_follow_the_literature_notation():
+    """omega_c (ω_c = Ω_c h²) and ln_1e10_As (ln(10¹⁰ A_s)) set the cosmology (issue 15, item
+    20); the A_s they give is the definition exp(x)·1e-10 (Planck 2018 VI, Table 2 notation)."""
+    import math
+    from likelihood.model import factories
+    raw = yaml.safe_load(open(os.path.join(ROOT, "configs", "demo.yaml")))
+    raw["cosmology"]["overrides"] = {"omega_c": 0.13, "ln_1e10_As": 3.1}
+    cfg = validate(raw, src="t.yaml", base_dir=os.path.join(ROOT, "configs"))
+    cosmo = factories.cosmology(cfg)
+    assert cosmo.omega_c == 0.13
+    assert math.isclose(cosmo._params["A_s"], math.exp(3.1) * 1e-10, rel_tol=1e-12)
+    raw["cosmology"]["overrides"] = {"omega_cdm": 0.13}
+    with pytest.raises(ConfigError, match="t.yaml: cosmology.overrides: unknown key 'omega_cdm' "
+                                          r"\(renamed: write 'omega_c'"):
+        validate(raw, src="t.yaml", base_dir=os.path.join(ROOT, "configs"))

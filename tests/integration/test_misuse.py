@@ -55,6 +55,13 @@ CASES = [
     ("mock-bins", _set(["data"], {"mock": {"n_bins": 10**7}, "ells": [0, 2]}), "check",
      "data.mock.n_bins"),
     ("max-steps", _set(["sampling", "max_steps"], 10**12), "run", "sampling.max_steps"),
+    # old spellings of renamed parameters (issue 15, item 20): one line naming the new name
+    ("old-omega_cdm", _set(["cosmology", "overrides"], {"omega_cdm": 0.12}), "check",
+     "cosmology.overrides: unknown key 'omega_cdm' (renamed: write 'omega_c'"),
+    ("old-ln10As", _set(["parameters", "ln10As"], {"flat": [2.5, 3.5]}), "check",
+     "unknown parameter 'ln10As' (renamed: write 'ln_1e10_As'"),
+    ("old-truth-omega_cdm", _set(["data"], {"mock": {"truth": {"omega_cdm": 0.13}}, "ells": [0, 2]}),
+     "check", "data.mock.truth: unknown parameter 'omega_cdm' (renamed: write 'omega_c'"),
 ]
 
 
@@ -112,3 +119,42 @@ def test_log_prob_never_nan_and_checks_shape():
     assert np.all(lik.log_prob(bad) == -np.inf)
     with pytest.raises(ErgofitError, match=r"theta of shape \(3,\)"):
         lik.log_prob(one[:3])
+
+
+SMALL = {"run": "small", "survey": {"redshift": 1.0, "nbar": 3.0e-4,
+                                    "geometry": {"shape": "sphere", "radius": 500.0}},
+         "tracer": {"b1": 2.0, "fnl": 0.0, "b_e": 0.5, "s": 0.2},
+         "effects": {"observer": False},
+         "data": {"mock": {"seed": 3, "k_min": 0.012, "k_max": 0.08, "n_bins": 6}, "ells": [0, 2]},
+         "parameters": {"b1": {"flat": [0.5, 5.0], "start": 2.0, "scale": 0.02}}}
+
+
+def test_mock_covariance_workflow_as_documented(tmp_path, capsys, monkeypatch):
+    """The README workflow (issue 15, item 3): `ergofit simulate CONFIG --n N` writes
+    mock_0000.txt ... and covariance.txt into <output folder>/mocks; a config with
+    covariance: {kind: mocks, mocks: .../mock_*.txt} then builds. Too few mocks (n_mocks <= n_data
+    + 2, Hartlap, Simon & Schneider 2007) is one line with the number needed and exit 2; the
+    looser glob *.txt skips the covariance file by its header. Small mesh: a 500 Mpc/h sphere."""
+    import likelihood
+    monkeypatch.chdir(tmp_path)
+    _write(tmp_path, SMALL, "small.yaml")
+    assert main(["simulate", "small.yaml", "--n", "14"]) == 0
+    folder = tmp_path / "chains" / "small" / "mocks"
+    assert len(list(folder.glob("mock_*.txt"))) == 14 and (folder / "covariance.txt").exists()
+    for glob_ in ("../chains/small/mocks/mock_*.txt", "../chains/small/mocks/*.txt"):
+        cfg = copy.deepcopy(SMALL)
+        cfg["run"] = "small-mockcov"
+        cfg["covariance"] = {"kind": "mocks", "mocks": glob_}
+        (tmp_path / "cfgs").mkdir(exist_ok=True)
+        path = _write(tmp_path / "cfgs", cfg, "mockcov.yaml")
+        capsys.readouterr()
+        assert main(["check", path]) == 2          # 14 mocks for 12 data points
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len([l for l in err if "error:" in l]) == 1, err
+        assert "14 mocks for 12 data points" in err[-1] and "more than n_data + 2 = 14" in err[-1] \
+            and "--n 15" in err[-1] and glob_ in err[-1], err
+    assert main(["simulate", "small.yaml", "--n", "20"]) == 0     # the fix the message names
+    assert main(["check", path]) == 0
+    lik = likelihood.build(path)
+    assert lik.n_mocks == 20                          # covariance.txt not counted as a mock
+    assert lik.precision_scale == pytest.approx((20 - 12 - 2) / (20 - 1), rel=1e-12)

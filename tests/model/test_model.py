@@ -196,7 +196,7 @@ def test_pickles_as_its_config(write_config):
 
 
 @pytest.mark.parametrize("name, value", [("b_e", 1e3), ("s", 5.0), ("h", 0.7),
-                                         ("omega_cdm", 0.13), ("sigma8", 0.9)])
+                                         ("omega_c", 0.13), ("sigma8", 0.9)])
 def test_parameter_that_cannot_vary_is_refused(write_config, name, value):
     """A value the fast path would fold away (fixed b_e, s) or that fixes the templates'
     cosmology is refused by name, by every evaluation path, never silently dropped (issue 15)."""

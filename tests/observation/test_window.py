@@ -230,9 +230,14 @@ def test_load_randoms_formats_and_errors(tmp_path):
     np.savetxt(tmp_path / "nan.txt", bad, header="columns: x y z w")
     with pytest.raises(DataError, match="nan.txt.*NaN"):
         load_randoms(tmp_path / "nan.txt")
-    np.savetxt(tmp_path / "sky.txt", np.array([[10.0, 5.0, 0.3]] * 3), header="columns: ra dec z")
+    np.savetxt(tmp_path / "sky.txt", np.array([[10.0, 5.0, 0.3]] * 3),
+               header="columns: ra dec redshift")
     with pytest.raises(DataError, match="cosmology"):
         load_randoms(tmp_path / "sky.txt")
+    # 'z' is the Cartesian coordinate; the old sky header 'ra dec z' is ambiguous (issue 15, 20)
+    np.savetxt(tmp_path / "oldsky.txt", np.array([[10.0, 5.0, 0.3]] * 3), header="columns: ra dec z")
+    with pytest.raises(DataError, match="oldsky.txt: column 'z' beside ra/dec is ambiguous.*redshift"):
+        load_randoms(tmp_path / "oldsky.txt")
     with pytest.raises(DataError, match="only 20 randoms"):
         window_from_randoms(pos[:20], name="r.txt")
     with pytest.raises(DataError, match="too few randoms"):

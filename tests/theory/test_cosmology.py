@@ -16,7 +16,7 @@ from likelihood.theory.cosmology import (C_KMS, HUBBLE_DISTANCE, PRESETS, PUBLIS
                                          Cosmology, eh98_parameters, eh98_sound_horizon_fit)
 from likelihood.errors import DataError, ErgofitError
 
-PLANCK = dict(h=0.6736, omega_b=0.02237, omega_cdm=0.1200, n_s=0.9649)
+PLANCK = dict(h=0.6736, omega_b=0.02237, omega_c=0.1200, n_s=0.9649)
 Z = np.linspace(0.0, 5.0, 26)
 
 
@@ -58,7 +58,7 @@ def test_background_against_astropy(w):
 def test_einstein_de_sitter_limits():
     # Source: Einstein-de Sitter closed forms (textbook, common practice):
     # chi = 2 c/H0 (1 - 1/sqrt(1+z)), D = a, f = 1, calH'/calH^2 = -1/2 (calH = 2/eta).
-    c = Cosmology(h=0.5, omega_b=0.02, omega_cdm=0.23, n_s=1.0, A_s=2e-9, m_nu=0.0)
+    c = Cosmology(h=0.5, omega_b=0.02, omega_c=0.23, n_s=1.0, A_s=2e-9, m_nu=0.0)
     assert c.Omega_m0 == pytest.approx(1.0, abs=1e-14)
     np.testing.assert_allclose(c.comoving_distance(Z),
                                2 * HUBBLE_DISTANCE * (1 - 1 / np.sqrt(1 + Z)), rtol=1e-12)
@@ -102,13 +102,13 @@ def test_growth_against_heath_integral():
     assert c.growth_factor(0.0) == pytest.approx(1.0, abs=1e-14)
 
 
-@pytest.mark.parametrize("w,omega_cdm", [(-0.9, 0.12), (-1.3, 0.12), (-0.6, 0.05)])
-def test_growth_against_ode(w, omega_cdm):
+@pytest.mark.parametrize("w,omega_c", [(-0.9, 0.12), (-1.3, 0.12), (-0.6, 0.05)])
+def test_growth_against_ode(w, omega_c):
     # Source: linear growth equation of pressureless matter in a smooth dark-energy background
     # (e.g. Linder & Jenkins 2003, MNRAS 346, 573; from memory), in ln a form:
     # D'' + (2 + dlnH/dlna) D' = (3/2) Omega_m(a) D, solved with scipy solve_ivp from a = 1e-5
     # with the matter-era growing mode D = a, D' = a.
-    c = _cosmo(w, omega_cdm=omega_cdm)
+    c = _cosmo(w, omega_c=omega_c)
 
     def rhs(lna, y):
         a = math.exp(lna)
@@ -148,8 +148,8 @@ def test_matter_era_normalisation():
 
 # ------------------------------------------------------------------------ transfer function
 
-COSMOS = [dict(PLANCK), dict(h=0.7, omega_b=0.03, omega_cdm=0.2, n_s=1.0),
-          dict(h=0.6, omega_b=0.015, omega_cdm=0.08, n_s=0.95)]
+COSMOS = [dict(PLANCK), dict(h=0.7, omega_b=0.03, omega_c=0.2, n_s=1.0),
+          dict(h=0.6, omega_b=0.015, omega_c=0.08, n_s=0.95)]
 
 
 @pytest.mark.parametrize("params", COSMOS)
@@ -304,7 +304,7 @@ def test_table_extrapolation(tmp_path):
     p = 1e4 * k**0.9 / (1 + (k / 0.02)**2.5)
     path = tmp_path / "pk.txt"
     _write(path, "# k[h/Mpc] P[(Mpc/h)^3]", k, p)
-    c = Cosmology(h=0.7, omega_b=0.022, omega_cdm=0.12, n_s=0.9, transfer="table",
+    c = Cosmology(h=0.7, omega_b=0.022, omega_c=0.12, n_s=0.9, transfer="table",
                   table_file=str(path), table_kind="power")
     assert c.power(1e-6) == pytest.approx(p[0] * (1e-6 / k[0])**0.9, rel=1e-10)
     slope = math.log(p[-1] / p[-2]) / math.log(k[-1] / k[-2])
@@ -323,8 +323,8 @@ def test_table_extrapolation(tmp_path):
 
 @pytest.mark.parametrize("changes,word", [
     (dict(h=0.0), "h"), (dict(h=-0.7), "h"), (dict(omega_b=-0.01), "omega_b"),
-    (dict(omega_cdm=0.0, omega_b=0.0, m_nu=0.0), "Omega_m0"),
-    (dict(omega_cdm=0.5), "Omega_m0"), (dict(omega_cdm=-0.1), "omega_cdm"), (dict(w=-0.3), "w"),
+    (dict(omega_c=0.0, omega_b=0.0, m_nu=0.0), "Omega_m0"),
+    (dict(omega_c=0.5), "Omega_m0"), (dict(omega_c=-0.1), "omega_c"), (dict(w=-0.3), "w"),
     (dict(w=0.0), "w"), (dict(sigma8=0.8), "A_s and sigma8"), (dict(A_s=None), "A_s and sigma8"),
     (dict(A_s=-1e-9), "A_s"), (dict(h="abc"), "h"), (dict(h=float("nan")), "h"),
     (dict(transfer="bbks"), "transfer"), (dict(transfer="table"), "table_kind"),
