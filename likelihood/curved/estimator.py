@@ -150,8 +150,9 @@ class _KernelSet:
     names: list
 
 
-def _kernel_set(cone, cosmo, r, q, los, tracer, terms):
-    bg = cone.background(r)
+def _kernel_set(cone, cosmo, r, q, los, tracer, terms, snapshot_r=None):
+    # snapshot: every background and tracer coefficient (also χ in the 1/(χℋ) pieces) at r_eff
+    bg = cone.background(r if snapshot_r is None else np.full(r.shape, snapshot_r))
     tc = tracer.at(bg["z"])
     loc = local_pieces(bg, tc, [t for t in terms if t in LOCAL_TERMS])
     integ = integrated_pieces(bg, tc, [t for t in terms if t in INTEGRATED_TERMS])
@@ -246,15 +247,33 @@ def _kernels(J, kset, blk, sl, los, v, ic, combine):
         out.append(np.broadcast_to(accum / (qb * qb)[:, None], j.shape))
     if combine:
         out = [sum(out)]
-    if J == 0 and ic == "global":
-        out = [W - (W @ v)[:, None] for W in out]
+    if J == 0:
+        out = [ic_monopole(W, v, ic) for W in out]
     return np.stack(out)
+
+
+def ic_monopole(profile, v, ic):
+    """The integral constraint acting on the angular monopole a_00(r) (… , n_r) of the field on
+    the full sky (the only harmonic an IC changes there): "none" leaves it; "global" removes
+    the survey mean Σ_r v_r a_00(r) (v ∝ r² w dr, normalised); "radial" removes each
+    distance's angular mean, i.e. a_00(r) itself (exactly zero left)."""
+    if ic == "global":
+        return profile - (profile @ v)[..., None]
+    if ic == "radial":
+        return np.zeros_like(profile)
+    return profile
 
 
 def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"),
                         tracer_b=None, terms_b=None, ells=(0, 2, 4), ic="none",
-                        resolution=EstimatorResolution(), combine_pieces=False):
+                        resolution=EstimatorResolution(), combine_pieces=False,
+                        snapshot_z=None):
     """Templates of the expected estimator (module docstring) for every pair of pieces.
+
+    ``snapshot_z``: snapshot mode (design.md, "The curved sky"): b, b_e, s, D, f, ℋ, ℋ'/ℋ²,
+    Ω_m(z) and the χ of the 1/(χℋ) pieces all taken at the effective redshift instead of at
+    each distance, local terms only: the assumptions of the plane-parallel model and of
+    snapshot mocks (the geometry, i.e. the end-point line of sight, stays exact).
 
     ``tracer_a``/``tracer_b``: :class:`TracerCoefficients` (b, b_e, s numbers or callables of
     z); ``tracer_b`` None: auto spectrum of A. ``terms``: pieces from
@@ -285,9 +304,22 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
     meas = (2.0 / np.pi) * wq * q * q * pq
 
     need_int = any(t in INTEGRATED_TERMS for t in terms_a + terms_b)
+    snap_r = None
+    if snapshot_z is not None:
+        try:
+            snapshot_z = float(snapshot_z)
+        except (TypeError, ValueError):
+            raise ConfigError(f"snapshot_z = {snapshot_z!r}: expected a redshift") from None
+        if not 0.0 < snapshot_z < 0.99 * cone.z_max:
+            raise ConfigError(f"snapshot_z = {snapshot_z}: expected 0 < z < {0.99 * cone.z_max:.3g}")
+        if need_int:
+            raise ConfigError("snapshot_z: the snapshot mode has local terms only; drop "
+                              f"{[t for t in terms_a + terms_b if t in INTEGRATED_TERMS]}")
+        snap_r = float(cosmo.comoving_distance(snapshot_z))
     los = _LineOfSight(r, shell.r_min, shell.r_max, cone) if need_int else None
-    sets = [_kernel_set(cone, cosmo, r, q, los, tracer_a, terms_a)]
-    sets.append(sets[0] if auto else _kernel_set(cone, cosmo, r, q, los, tracer_b, terms_b))
+    sets = [_kernel_set(cone, cosmo, r, q, los, tracer_a, terms_a, snap_r)]
+    sets.append(sets[0] if auto else _kernel_set(cone, cosmo, r, q, los, tracer_b, terms_b,
+                                                 snap_r))
     jk = spherical_jn_all(j_max + 5, k[:, None] * r[None, :])
     names_a = ["total"] if combine_pieces else sets[0].names
     names_b = ["total"] if combine_pieces else sets[1].names
@@ -311,7 +343,7 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
                         near[id(part)] = weights * part.inner(bgn) if nodes.size else weights
         for J in range(0, n_top + 1):
             if J == 0 and ic == "radial":
-                continue
+                continue            # ic_monopole(…, "radial") = 0: nothing to add
             qa = int(np.searchsorted(qb * shell.r_max, bessel_x_min(max(J - 1, 0))))
             ka = k_lo[J]
             if qa >= qb.size or ka >= k.size:
@@ -364,7 +396,7 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
         noise = _noise(shell, r, wr, w, base, v, i2, k, wk, edges, ells, ic, jk)
     return Templates(ells, edges, pairs, noise, auto,
                      dict(j_max=j_max, n_q=q.size, n_r=r.size, n_k=k.size, q_max=float(q[-1]),
-                          ic=ic, **checks))
+                          ic=ic, snapshot_z=snapshot_z, **checks))
 
 
 TAIL_TOLERANCE = 1e-3     # relative to max |P̂_0|: the accuracy the grid rules are set for
@@ -454,11 +486,46 @@ def _noise(shell, r, wr, w, base, v, i2, k, wk, edges, ells, ic, jk):
     return _bin(out, wk, edges.size - 1)
 
 
+def radial_field_multipoles(shell, edges, r_tab, m_tab, ells=(0, 2, 4), ic="none",
+                            resolution=EstimatorResolution(k_nodes=16)):
+    """The estimator applied to a deterministic field isotropic about the observer, m(r)
+    (e.g. the constrained-field mean field ξ_gc(r)/σ_c of likelihood.observer), bin-averaged:
+
+        F_ℓ(k) = 4π (−i)^ℓ ∫ r² w m_IC(r) j_ℓ(kr) dr,   P̂_ℓ = (2ℓ+1)/I₂ F_ℓ F_0*,
+
+    (∫dΩ L_ℓ(k̂·x̂) e^{−ik·x} = 4π(−i)^ℓ j_ℓ(kr)), m_IC = ic_monopole(m): the field is pure J = 0,
+    so the radial IC removes it exactly and the global one leaves m − ⟨m⟩_w. Odd ℓ: Π_ℓ.
+    ``r_tab``, ``m_tab``: the profile tabulated on increasing r > 0 (cubic in ln r).
+    16 k nodes per bin by default: F_ℓ F_0 of a smooth profile oscillates in k on the scale
+    1/r_max (4 nodes miss it by up to 100 % in the bins where it changes sign).
+    """
+    from scipy.interpolate import CubicSpline
+    if ic not in IC_KINDS:
+        raise ConfigError(f"ic = {ic!r}: expected one of {IC_KINDS}")
+    edges = np.asarray(edges, dtype=float)
+    _, _, (r, wr), (k, wk) = resolution_grids(shell, edges, resolution)
+    r_tab, m_tab = np.asarray(r_tab, dtype=float), np.asarray(m_tab, dtype=float)
+    if r_tab.ndim != 1 or r_tab.shape != m_tab.shape or r_tab[0] > r[0] or r_tab[-1] < r[-1]:
+        raise ConfigError("radial field: r_tab, m_tab must be 1-D of equal length and cover "
+                          f"the shell [{shell.r_min}, {shell.r_max}] Mpc/h")
+    w = shell._eval("weight", shell.weight, r)
+    base = wr * r ** 2 * w
+    i2 = 4.0 * np.pi * np.sum(wr * r ** 2 * w ** 2)
+    m = ic_monopole(CubicSpline(np.log(r_tab), m_tab)(np.log(r)), base / base.sum(), ic)
+    f = {l: spherical_jn_all(max(ells), k[:, None] * r[None, :])[l] @ (base * m)
+         for l in set(ells) | {0}}
+    out = []
+    for l in ells:
+        phase = (-1j) ** l if l % 2 == 0 else (-1j) ** l / 1j
+        out.append((2 * l + 1) * (4 * np.pi) ** 2 / i2 * phase.real * f[l] * f[0])
+    return _bin(np.array(out), wk, edges.size - 1)
+
+
 def expected_multipoles(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"),
                         tracer_b=None, terms_b=None, ells=(0, 2, 4), ic="none",
-                        resolution=EstimatorResolution()):
+                        resolution=EstimatorResolution(), snapshot_z=None):
     """Direct computation (each tracer's pieces summed into one kernel first): (n_ell, n_bins)
     signal, plus the shot noise if ``shell.nbar`` is given (auto spectra)."""
     t = multipole_templates(cosmo, shell, edges, tracer_a, terms_a, tracer_b, terms_b, ells, ic,
-                            resolution, combine_pieces=True)
+                            resolution, combine_pieces=True, snapshot_z=snapshot_z)
     return t.combine({}, {})
