@@ -20,7 +20,7 @@ import time  # noqa: E402
 
 import numpy as np  # noqa: E402
 
-from likelihood.cosmology import Cosmology  # noqa: E402
+from likelihood.theory.cosmology import Cosmology  # noqa: E402
 from likelihood.curved import TracerCoefficients  # noqa: E402
 from likelihood.curved.estimator import Shell, multipole_templates  # noqa: E402
 

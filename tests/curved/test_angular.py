@@ -4,8 +4,8 @@ import pytest
 from scipy.interpolate import CubicSpline
 from scipy.special import eval_legendre, spherical_jn
 
-from likelihood import hankel
-from likelihood.cosmology import Cosmology
+from likelihood.numerics import hankel
+from likelihood.theory.cosmology import Cosmology
 from likelihood.curved import (AngularResolution, TracerCoefficients, angular_cl,
                                angular_cl_resolved)
 from likelihood.curved.bessel import spherical_jn_all

@@ -4,15 +4,15 @@ import warnings
 import numpy as np
 import pytest
 
-from likelihood.cosmology import Cosmology
+from likelihood.theory.cosmology import Cosmology
 from likelihood.curved import ResolutionWarning, TracerCoefficients
 from likelihood.curved.bessel import bessel_x_min
 from likelihood.curved.estimator import (EstimatorResolution, Shell, _LineOfSight,
                                          expected_multipoles, multipole_templates)
 from likelihood.curved.lightcone import LightCone
 from likelihood.curved.quadrature import composite_gl
-from likelihood.observation import KBins, WindowMatrix, theory_k_grid
-from likelihood.window import ShellWindow
+from likelihood.observation.matrix import KBins, WindowMatrix, theory_k_grid
+from likelihood.observation.window import ShellWindow
 
 
 class NoGrowth:

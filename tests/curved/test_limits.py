@@ -6,15 +6,15 @@ import warnings
 import numpy as np
 import pytest
 
-from likelihood import tracer as T
-from likelihood.cosmology import Cosmology
+from likelihood.theory import tracer as T
+from likelihood.theory.cosmology import Cosmology
 from likelihood.curved import TracerCoefficients
 from likelihood.curved.estimator import (EstimatorResolution, Shell, _z_at, multipole_templates,
                                          radial_field_multipoles)
 from likelihood.errors import ConfigError
-from likelihood.observation import KBins, WindowMatrix, theory_k_grid
-from likelihood.observer import ObserverTerm
-from likelihood.window import ShellWindow
+from likelihood.observation.matrix import KBins, WindowMatrix, theory_k_grid
+from likelihood.observation.observer import ObserverTerm
+from likelihood.observation.window import ShellWindow
 
 
 @pytest.fixture(scope="module")
