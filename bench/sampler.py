@@ -136,7 +136,7 @@ def pool_rows(which: str) -> dict:
     out = {}
     for cosmo in (False, True):
         lik = make_lik(cosmo)
-        n = 40 if cosmo else 600
+        n = 40 if cosmo else 3000
         key = "cosmo" if cosmo else "fast"
         if which == "serial":
             out[key] = {"run": steps_per_second(lik, None, n, False)[0]}
@@ -170,17 +170,17 @@ def mpi_rows() -> dict | str:
 
 
 def mpi_worker(kind: str) -> None:
-    from likelihood.sampling.pools import mpi_pool
+    from likelihood.sampling.pools import close_pool, mpi_pool
     warnings.simplefilter("ignore")
     cosmo = kind == "cosmo"
     lik = make_lik(cosmo)
     pool = mpi_pool()            # worker rank serves here and exits
-    n = 40 if cosmo else 600
+    n = 40 if cosmo else 3000
     try:
         res = {kind: {"forced": steps_per_second(lik, pool, n, True)[0],
-                      "run": steps_per_second(lik, pool, n, False)[0]}}
+                      "run": steps_per_second(lik, pool, n, False)[0]}}   # may close the pool
     finally:
-        pool.close()
+        close_pool(pool)
     print(json.dumps(res), flush=True)
 
 
