@@ -38,7 +38,7 @@ sys.path.insert(0, ROOT)
 from likelihood.config import validate  # noqa: E402
 from likelihood.model import build  # noqa: E402
 from likelihood.sampling import SamplerSettings, run_sampler  # noqa: E402
-from likelihood.sampling.moves import emcee_moves  # noqa: E402
+from likelihood.sampling.moves import default_moves, emcee_moves, evaluations_per_step  # noqa: E402
 from likelihood.sampling.pools import ChunkedLogProb, choose_evaluation  # noqa: E402
 
 MIXTURES = {
@@ -88,8 +88,10 @@ def run_mixture(lik, cosmo: bool, moves: dict, seed: int, tmp: str) -> dict:
 
 
 def moves_table(tmp: str, seeds_demo, seeds_cosmo) -> None:
-    print("moves (mean over seeds; tau = max over parameters; ESS/s over the whole run)")
-    print(f"{'config':<16} {'moves':<22} {'tau':>6} {'acc':>5} {'ESS/s':>7} {'steps':>6} "
+    print("moves (mean over seeds; tau = max over parameters; cost = tau x ensemble evaluations per "
+          "step, i.e. evaluations per independent sample, independent of machine load; ESS/s over "
+          "the whole run, start included)")
+    print(f"{'config':<16} {'moves':<22} {'tau':>6} {'cost':>6} {'acc':>5} {'ESS/s':>7} {'steps':>6} "
           f"{'t_conv [s]':>11}")
     for cosmo, seeds in ((False, seeds_demo), (True, seeds_cosmo)):
         lik = make_lik(cosmo)
@@ -98,7 +100,8 @@ def moves_table(tmp: str, seeds_demo, seeds_cosmo) -> None:
             m = {k: float(np.mean([r[k] for r in rows])) for k in ("tau", "acc", "ess_s", "t_conv",
                                                                      "steps")}
             conv = all(r["converged"] for r in rows)
-            print(f"{'cosmo (h, w_c)' if cosmo else 'demo':<16} {name:<22} {m['tau']:6.1f} "
+            cost = m["tau"] * evaluations_per_step(moves)
+            print(f"{'cosmo (h, w_c)' if cosmo else 'demo':<16} {name:<22} {m['tau']:6.1f} {cost:6.1f} "
                   f"{m['acc']:5.2f} {m['ess_s']:7.0f} {m['steps']:6.0f} "
                   f"{m['t_conv']:9.1f}{'' if conv else ' proj.'}", flush=True)
 
@@ -120,7 +123,7 @@ def steps_per_second(lik, pool, n_steps: int, force: bool) -> tuple[float, str]:
     else:
         fn, msg = choose_evaluation(serial, pool, p0)
     sampler = emcee.EnsembleSampler(n_walkers, lik.start.size, fn, vectorize=True,
-                                    moves=emcee_moves({"stretch": 0.5, "differential_evolution": 0.5}))
+                                    moves=emcee_moves(default_moves(n_walkers)))
     t0 = time.perf_counter()
     sampler.run_mcmc(p0, n_steps, progress=False)
     return n_steps / (time.perf_counter() - t0), msg
@@ -133,7 +136,7 @@ def pool_rows(which: str) -> dict:
     out = {}
     for cosmo in (False, True):
         lik = make_lik(cosmo)
-        n = 40 if cosmo else 600
+        n = 40 if cosmo else 3000
         key = "cosmo" if cosmo else "fast"
         if which == "serial":
             out[key] = {"run": steps_per_second(lik, None, n, False)[0]}
@@ -167,17 +170,17 @@ def mpi_rows() -> dict | str:
 
 
 def mpi_worker(kind: str) -> None:
-    from likelihood.sampling.pools import mpi_pool
+    from likelihood.sampling.pools import close_pool, mpi_pool
     warnings.simplefilter("ignore")
     cosmo = kind == "cosmo"
     lik = make_lik(cosmo)
     pool = mpi_pool()            # worker rank serves here and exits
-    n = 40 if cosmo else 600
+    n = 40 if cosmo else 3000
     try:
         res = {kind: {"forced": steps_per_second(lik, pool, n, True)[0],
-                      "run": steps_per_second(lik, pool, n, False)[0]}}
+                      "run": steps_per_second(lik, pool, n, False)[0]}}   # may close the pool
     finally:
-        pool.close()
+        close_pool(pool)
     print(json.dumps(res), flush=True)
 
 

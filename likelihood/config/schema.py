@@ -301,7 +301,7 @@ SCHEMA = {
         "tau_rtol": (_num(0.0, lo_open=True), 0.01),
         "seed": (_num(0, 2**32 - 1, integer=True), 0),
         "progress": (_bool, True),
-        "moves": (_moves, {"stretch": 0.5, "differential_evolution": 0.5}),
+        "moves": (_moves, None),          # default: sampling.moves.default_moves(walkers)
         "start": (_choice("optimum", "ball"), "optimum"),
     },
     "output": {
@@ -503,7 +503,12 @@ def validate(raw, src="<memory>", base_dir="."):
     cfg["parameters"] = {p.name: {"prior": p.prior.__dict__, "start": p.start, "scale": p.scale} for p in free}
     cfg["fixed"] = fixed
     cfg._param_objects = (free, fixed)
-    _moves(cfg["sampling"]["moves"], f"{src}: sampling.moves", cfg["sampling"]["walkers"])
+    smp = cfg["sampling"]
+    if "moves" in smp:
+        _moves(smp["moves"], f"{src}: sampling.moves", smp["walkers"])
+    else:
+        from ..sampling.moves import default_moves
+        smp["moves"] = default_moves(smp["walkers"])
     return cfg
 
 

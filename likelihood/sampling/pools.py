@@ -42,7 +42,7 @@ def pool_for(processes=0, mpi=False):
         try:
             yield pool
         finally:
-            pool.close()
+            close_pool(pool)
     elif processes > 1:
         import multiprocessing
         import signal
@@ -56,6 +56,21 @@ def pool_for(processes=0, mpi=False):
 # --------------------------------------------------------------------------------------------
 # Pools that pay: chunks of walkers per worker, and a measured fallback to one process
 # --------------------------------------------------------------------------------------------
+
+
+def close_pool(pool) -> None:
+    """Close an MPI pool once (idempotent): its workers leave ``pool.wait`` and exit."""
+    if pool is not None and not getattr(pool, "_ergofit_closed", False):
+        pool.close()
+        pool._ergofit_closed = True
+
+
+def release_unused(pool) -> None:
+    """A pool the run does not use: MPI workers wait for tasks by polling (mpich's blocking
+    receive spins), which takes a core from the master, so an MPI pool is closed at once and
+    its workers exit; a local process pool's idle workers sleep on a pipe and are left alone."""
+    if pool is not None and hasattr(pool, "is_master") and hasattr(pool, "workers"):
+        close_pool(pool)
 
 
 def pool_size(pool) -> int:
@@ -103,6 +118,7 @@ def choose_evaluation(evaluate, pool, coords, repeats: int = 3):
     n = pool_size(pool)
     t_serial = min(_timed(evaluate, coords) for _ in range(repeats))
     if t_serial < POOL_MIN_SECONDS:
+        release_unused(pool)
         return evaluate, (f"pool of {n} workers not used: one evaluation of all {len(coords)} walkers "
                           f"takes {1e3 * t_serial:.2f} ms in this process (vectorised), a pool would "
                           "be slower; running in one process")
@@ -112,6 +128,7 @@ def choose_evaluation(evaluate, pool, coords, repeats: int = 3):
     t_warm = time.perf_counter() - t0
     t_pool = min(_timed(chunked, coords) for _ in range(repeats))
     if t_pool >= t_serial:
+        release_unused(pool)
         return evaluate, (f"pool of {n} workers not used: {1e3 * t_pool:.1f} ms per step against "
                           f"{1e3 * t_serial:.1f} ms in one process; running in one process")
     return chunked, (f"pool of {n} workers: {1e3 * t_pool:.1f} ms per step against "

@@ -8,7 +8,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import ConfigError
-from .moves import DEFAULT_MOVES, check_moves
+from .moves import check_moves, default_moves
 
 class ConvergenceWarning(UserWarning):
     """The autocorrelation stop rule was not met before ``max_steps``."""
@@ -36,7 +36,8 @@ class SamplerSettings:
         with ``start="optimum"`` from N(best fit, ball^2 * C), C the inverse Hessian of −log posterior
         at the optimum (the parameter scales where it is not positive definite); walkers outside
         the prior are redrawn.
-    moves: move mixture ``{name: weight}`` (:mod:`.moves`); default stretch 0.5 + DE 0.5.
+    moves: move mixture ``{name: weight}`` (:mod:`.moves`); ``None``: the default,
+        stretch 0.5 + differential evolution 0.5.
     start: "optimum" (maximise the posterior first, :mod:`.start`) or "ball" (around the
         configured starts). Only a new chain uses it; a resumed chain continues where it stopped.
     """
@@ -51,7 +52,7 @@ class SamplerSettings:
     flush_every: int = 50
     flush_seconds: float = 10.0
     ball: float = 1.0
-    moves: dict = field(default_factory=lambda: dict(DEFAULT_MOVES))
+    moves: dict | None = None
     start: str = "optimum"
 
     def __post_init__(self) -> None:
@@ -91,6 +92,8 @@ class SamplerSettings:
                     f"sampler setting 'seed' = {self.seed!r}: expected a non-negative integer or null"
                 )
             self.seed = int(self.seed)
+        if self.moves is None:
+            self.moves = default_moves(self.n_walkers)
         self.moves = check_moves(self.moves, "sampler setting 'moves'", self.n_walkers)
         if self.start not in ("optimum", "ball"):
             raise ConfigError(f"sampler setting 'start' = {self.start!r}: expected 'optimum' or 'ball'")

@@ -15,7 +15,7 @@ from likelihood.config import load_config, validate
 from likelihood.errors import ConfigError
 from likelihood.model import build
 from likelihood.sampling import ConvergenceWarning, SamplerSettings, load_chain, run_sampler
-from likelihood.sampling.moves import check_moves, same_moves
+from likelihood.sampling.moves import check_moves, default_moves, evaluations_per_step, same_moves
 from likelihood.sampling.pools import ChunkedLogProb, choose_evaluation
 from likelihood.sampling.start import find_optimum
 from test_sampler import ToyGaussian, full_chain
@@ -69,6 +69,18 @@ def test_moves_and_sampler_settings_leave_the_config_hash_alone():
     assert base == load_config(DEMO).hash
     raw["sampling"].update(moves={"de_snooker": 1.0}, start="ball")
     assert validate(raw, src=DEMO, base_dir=os.path.dirname(DEMO)).hash == base
+
+
+def test_default_moves():
+    """The documented default (likelihood.sampling.moves docstring), for the smallest walker
+    count the config allows too; snooker costs two ensemble evaluations per step (emcee's
+    DESnookerMove updates the ensemble in four parts, the others in two)."""
+    mix = {"stretch": 0.5, "differential_evolution": 0.5}
+    assert SamplerSettings(n_walkers=32).moves == mix and SamplerSettings(n_walkers=4).moves == mix
+    assert load_config(DEMO)["sampling"]["moves"] == mix
+    import emcee
+    assert emcee.moves.DESnookerMove().nsplits == 4 and emcee.moves.DEMove().nsplits == 2
+    assert evaluations_per_step({"differential_evolution": 0.8, "de_snooker": 0.2}) == pytest.approx(1.2)
 
 
 def test_same_moves_normalises_weights():
@@ -262,7 +274,7 @@ def test_posterior_does_not_depend_on_the_moves_short(tmp_path):
     means within 0.3 sigma and sigmas within 15 % (loose: the Monte Carlo error of a mean from
     ~1500 effective samples is ~0.03 sigma per chain, of a sigma ~2 %; common practice)."""
     a = _demo_moments(tmp_path, {"stretch": 1.0}, 2000, 11)
-    b = _demo_moments(tmp_path, {"stretch": 0.5, "differential_evolution": 0.5}, 2000, 12)
+    b = _demo_moments(tmp_path, default_moves(32), 2000, 12)
     for n in ("fnl", "b1"):
         assert abs(a[n][0] - b[n][0]) < 0.3 * a[n][1], n
         assert abs(a[n][1] / b[n][1] - 1) < 0.15, n
@@ -273,7 +285,7 @@ def test_posterior_does_not_depend_on_the_moves_long(tmp_path):
     """The issue's check: converged chains (stop rule with tau_factor 100), means and sigmas of
     f_NL and b1 within 0.1 sigma between stretch and the default mixture."""
     a = _demo_moments(tmp_path, {"stretch": 1.0}, None, 21)
-    b = _demo_moments(tmp_path, {"stretch": 0.5, "differential_evolution": 0.5}, None, 22)
+    b = _demo_moments(tmp_path, default_moves(32), None, 22)
     for n in ("fnl", "b1"):
         assert abs(a[n][0] - b[n][0]) < 0.1 * a[n][1], n
         assert abs(a[n][1] - b[n][1]) < 0.1 * a[n][1], n

@@ -317,7 +317,7 @@ CHILD = textwrap.dedent(
     lik = ToyGaussian(delay=0.003, marker={marker!r}, marker_after=200)
     settings = SamplerSettings(n_walkers=16, max_steps=400, check_every=10**6, seed=11,
                                progress=False, flush_every={flush_every}, flush_seconds=1e6,
-                               start="ball")
+                               start="ball", moves={{"stretch": 1.0}})
     run_sampler(lik, settings, {out!r})
     """
 )
@@ -339,7 +339,7 @@ def _start_child(tmp_path, flush_every):
 
 
 def _reference(tmp_path):
-    s = quiet(check_every=10**6, max_steps=400, seed=11, start="ball")
+    s = quiet(check_every=10**6, max_steps=400, seed=11, start="ball", moves={"stretch": 1.0})
     run_quiet(ToyGaussian(), s, tmp_path / "reference")
     return full_chain(tmp_path / "reference"), s
 
