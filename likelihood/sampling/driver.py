@@ -331,7 +331,7 @@ def _start_walkers(lik: Any, start, scale, bounds, names, settings: SamplerSetti
     chi2 = _chi2_of(lik, opt.best, opt.log_prob)
     text = ", ".join(f"{n} = {v:.6g}" for n, v in zip(names, opt.best))
     line = (f"best fit (posterior maximum, {opt.n_evaluations} evaluations in "
-            f"{time.perf_counter() - t0:.1f} s): {text}; chi2 = {chi2:.3f}")
+            f"{time.perf_counter() - t0:.2g} s): {text}; chi2 = {chi2:.3f}")
     notes = [line]
     if report is not None:
         report(line)
