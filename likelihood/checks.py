@@ -15,6 +15,8 @@ def finite_number(value, name, error=ErgofitError):
     """``value`` as a finite float."""
     try:
         v = float(value)
+    except OverflowError:          # a Python int beyond the float range
+        raise error(f"{name} = {value!r}: expected a finite number") from None
     except (TypeError, ValueError):
         raise error(f"{name} = {value!r}: expected a number") from None
     if not np.isfinite(v):

@@ -33,3 +33,9 @@ def test_rejected_values(call, needle):
 def test_error_class_chosen_by_caller():
     with pytest.raises(ConfigError):
         finite_number(None, "observer smoothing", ConfigError)
+
+
+def test_finite_number_refuses_ints_beyond_the_float_range():
+    """A YAML integer like 2**80 cannot become a float: one clear error, not an OverflowError."""
+    with pytest.raises(ErgofitError, match="expected a finite number"):
+        finite_number(2 ** 1100, "sampling.seed")

@@ -338,12 +338,9 @@ def _positive_int(text):
 
 
 def _finite_float(text):
-    import math
-    try:
-        x = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not math.isfinite(x) or abs(x) > 1e6:
+    from ..checks import finite_number
+    x = finite_number(text, "value", argparse.ArgumentTypeError)
+    if abs(x) > 1e6:
         raise argparse.ArgumentTypeError(f"expected a finite number with |x| <= 1e6, got {text}")
     return x
 
