@@ -65,7 +65,7 @@ def _run(args, pool):
     chain = os.path.join(out, CHAIN_FILENAME)
     if os.path.isfile(chain) and not args.resume:
         return _existing_run(cfg, out, chain, chain_status(chain))
-    existed = os.path.isdir(out)
+    existed = _first_missing_folder(out)
     _out_dir(out)
     had_chain = os.path.isfile(chain)
     try:
@@ -100,8 +100,20 @@ def _existing_run(cfg, out, chain, status):
     return 0
 
 
-def _remove_unstarted(out, chain, existed, had_chain):
-    """Leave nothing behind from a run that did not start (no stored step)."""
+def _first_missing_folder(path):
+    """The outermost folder of ``path`` that does not exist yet (None if ``path`` exists)."""
+    path, missing = os.path.abspath(path), None
+    while not os.path.isdir(path):
+        missing, parent = path, os.path.dirname(path)
+        if parent == path:
+            break
+        path = parent
+    return missing
+
+
+def _remove_unstarted(out, chain, created, had_chain):
+    """Leave nothing behind from a run that did not start (no stored step): the chain file and
+    the empty folders this run created (``created``: the outermost of them, or None)."""
     from ..sampling.driver import chain_status
     if os.path.isfile(chain) and not had_chain:
         try:
@@ -111,8 +123,14 @@ def _remove_unstarted(out, chain, existed, had_chain):
         if started:
             return
         os.remove(chain)
-    if not existed and os.path.isdir(out) and not os.listdir(out):
-        os.rmdir(out)
+    if created is None:
+        return
+    folder = os.path.abspath(out)
+    while os.path.isdir(folder) and not os.listdir(folder):
+        os.rmdir(folder)
+        if folder == created:
+            break
+        folder = os.path.dirname(folder)
 
 
 def _sample_and_summarise(args, cfg, out, pool):
@@ -151,7 +169,7 @@ def _write_config_copy(src, dst):
     import glob
     import shutil
     import yaml
-    from ..config.schema import Config, load_config
+    from ..config.schema import GEOMETRY_FILES, Config, load_config
     cfg = load_config(src)
     run_dir = os.path.dirname(os.path.abspath(dst))
     with open(src, encoding="utf-8") as fh:
@@ -174,8 +192,9 @@ def _write_config_copy(src, dst):
         if isinstance(raw.get(sec), dict) and key in raw[sec]:
             raw[sec][key] = portable(raw[sec][key], pattern=(sec, key) == ("covariance", "mocks"))
     geo = (raw.get("survey") or {}).get("geometry") or {}
-    if "randoms" in geo:
-        geo["randoms"] = portable(geo["randoms"])
+    for key in GEOMETRY_FILES:
+        if key in geo:
+            geo[key] = portable(geo[key])
     raw.setdefault("run", cfg.run_name)
     write_text(dst, yaml.safe_dump(raw, sort_keys=False))
 
@@ -206,14 +225,18 @@ def cmd_summarize(args):
 
 def cmd_window(args):
     from ..theory.cosmology import Cosmology
+    from ..observation.geometry import randoms_volume
     from ..observation.randoms import load_randoms, window_from_randoms
     pos, wts = load_randoms(args.randoms, cosmo=Cosmology.from_preset(args.preset))
     wm = window_from_randoms(pos, wts, s_max=args.s_max, name=args.randoms)
+    wm.meta["volume"] = f"{randoms_volume(pos, wts):.6e}"   # read by survey.geometry shape: window
     out = _out_dir(args.out)
     table, png = os.path.join(out, "window.txt"), os.path.join(out, "window.png")
     wm.save(table)
     wm.plot(png)
-    print(f"window multipoles Q_0..Q_8 written to {table}; plot {png}")
+    print(f"window multipoles Q_0..Q_8 written to {table}; plot {png}; effective volume "
+          f"{wm.meta['volume']} (Mpc/h)^3. Use the table in a config with "
+          f"survey.geometry: {{shape: window, file: {table}}}")
     return 0
 
 
@@ -302,10 +325,11 @@ def make_parser():
     s.set_defaults(func=cmd_simulate)
 
     s = _sub(sub, "window", "window multipoles Q_l(s) from a random catalogue",
-             "ergofit window configs/demo_randoms.txt --out chains/window")
+             "ergofit window configs/demo_randoms.npz --out chains/window")
     s.add_argument("randoms", help="random catalogue: text file with a header naming its columns "
                    "(x y z in Mpc/h, or ra dec redshift), optional weight column")
-    s.add_argument("--out", required=True, help="output folder: window.txt (Q_l table) and window.png")
+    s.add_argument("--out", required=True, help="output folder: window.txt (Q_l table, read by "
+                   "survey.geometry shape: window) and window.png")
     s.add_argument("--s-max", dest="s_max", type=float, default=None,
                    help="largest pair separation [Mpc/h] (default: the catalogue's extent)")
     s.add_argument("--preset", default="planck2018",

@@ -15,8 +15,8 @@ The vocabulary (all sections but ``survey`` optional)::
                 (see likelihood.forecast)
     cosmology:  {preset, overrides: {h, omega_b, omega_c, n_s, ln_1e10_As | sigma8, w, m_nu},
                  transfer: eh98 | eh98_nowiggle | table, table: FILE, table_kind: power | transfer}
-    survey:     {redshift, nbar, geometry: {shape: box | sphere | shell | cap | randoms,
-                 volume | radius | r_min, r_max | fsky | randoms: FILE}}
+    survey:     {redshift, nbar, geometry: {shape: box | sphere | shell | cap | randoms | window,
+                 volume | radius | r_min, r_max | fsky | randoms: FILE | file: FILE [, volume]}}
     tracer:     {b1, fnl, p, b_e, s}
     effects:    {rsd, fnl, doppler, potential, window, integral_constraint: none | global, observer}
     observer:   {field: potential | density, smoothing, k_ir, nu_true}
@@ -324,7 +324,13 @@ GEOMETRY = {
     "cap": {"shape": None, "r_min": _num(0.0, R_MAX), "r_max": _num(0.0, R_MAX, lo_open=True),
             "fsky": _num(0.0, 1.0, lo_open=True)},
     "randoms": {"shape": None, "randoms": _str},
+    # a precomputed Q_ℓ(s) table (written by `ergofit window`); volume from its header or given
+    "window": {"shape": None, "file": _str, "volume": _num(0.0, V_MAX, lo_open=True)},
 }
+#: geometry keys that are optional (all others are required for their shape)
+GEOMETRY_OPTIONAL = {("window", "volume")}
+#: geometry keys that name an input file (hashed by contents, copied into the run folder)
+GEOMETRY_FILES = ("randoms", "file")
 
 MOCK = {"seed": (_num(0, integer=True), 1), "noise": (_bool, True), "truth": (_mapping, {}),
         "k_min": (_num(0.0, lo_open=True), 0.002), "k_max": (_num(0.0, lo_open=True), 0.05),
@@ -391,8 +397,9 @@ class Config(dict):
             if key in core.get(sec, {}):
                 core[sec][key] = self._file_digest(core[sec][key])
         geo = core.get("survey", {}).get("geometry", {})
-        if "randoms" in geo:
-            geo["randoms"] = self._file_digest(geo["randoms"])
+        for key in GEOMETRY_FILES:
+            if key in geo:
+                geo[key] = self._file_digest(geo[key])
         blob = json.dumps(core, sort_keys=True, default=str).encode()
         return hashlib.sha256(blob).hexdigest()[:16]
 
@@ -432,12 +439,19 @@ def validate(raw, src="<memory>", base_dir="."):
         if check is None:
             continue
         if key not in geo:
+            if (shape, key) in GEOMETRY_OPTIONAL:
+                continue
             raise ConfigError(f"{src}: survey.geometry.{key} is required for shape '{shape}'")
         geo[key] = check(geo[key], f"{src}: survey.geometry.{key}")
     if shape in ("shell", "cap") and not geo["r_min"] < geo["r_max"]:
         raise ConfigError(f"{src}: survey.geometry needs r_min < r_max, got {geo['r_min']} >= {geo['r_max']}")
-    if shape == "randoms":
-        _need_file(cfg, geo["randoms"], "survey.geometry.randoms")
+    for key in GEOMETRY_FILES:
+        if key in geo:
+            _need_file(cfg, geo[key], f"survey.geometry.{key}")
+    if shape in ("randoms", "window") and cfg["effects"]["observer"] and cfg["effects"]["window"]:
+        raise ConfigError(f"{src}: effects.observer needs an analytic geometry (sphere, shell, cap); "
+                          f"survey.geometry.shape '{shape}' is not supported by the observer term: "
+                          "set effects.observer: false")
     if shape == "box" and cfg["effects"]["window"]:
         cfg["effects"]["window"] = False  # a periodic box has no window to convolve with
 

@@ -38,6 +38,27 @@ def randoms_volume(positions, weights=None, n_mesh=64):
     return float(sw.sum() ** 2 / pairs * np.prod(span) / n_mesh ** 3)
 
 
+def precomputed_window(path, volume=None):
+    """(window, effective volume) of a Q_ℓ(s) table written by ``ergofit window``.
+
+    The volume that sets the mode count is ``volume`` if given (``survey.geometry.volume``),
+    else the ``volume`` entry of the table's header (the randoms' I₂²/I₄, see
+    :func:`randoms_volume`); a table with neither is refused naming the key to add.
+    """
+    wm = win.WindowMultipoles.load(path)
+    if volume is None:
+        try:
+            volume = float(wm.meta["volume"])
+        except (KeyError, ValueError):
+            raise DataError(f"{path}: the window table has no '# meta: volume = ...' line; give "
+                            "survey.geometry.volume (the survey's effective volume in (Mpc/h)^3)"
+                            ) from None
+        if not (np.isfinite(volume) and volume > 0):
+            raise DataError(f"{path}: header volume = {wm.meta['volume']}: expected a finite "
+                            "volume > 0 in (Mpc/h)^3")
+    return wm, float(volume)
+
+
 def window_and_volume(cfg, cosmo=None):
     """(window object or None, effective volume in (Mpc/h)^3) of ``survey.geometry``."""
     geo = cfg["survey"]["geometry"]
@@ -50,6 +71,8 @@ def window_and_volume(cfg, cosmo=None):
         w = win.ShellWindow(geo["r_min"], geo["r_max"])
     elif shape == "cap":
         w = win.CapShellWindow(geo["r_min"], geo["r_max"], geo["fsky"])
+    elif shape == "window":
+        return precomputed_window(cfg.resolve(geo["file"]), geo.get("volume"))
     else:
         path = cfg.resolve(geo["randoms"])
         pos, wts = load_randoms(path, cosmo=cosmo)

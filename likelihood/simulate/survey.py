@@ -38,7 +38,7 @@ def choose_mesh(lik, n_mesh=None):
         geo = lik.config["survey"]["geometry"]
         r_max = geo.get("r_max", geo.get("radius"))
         if r_max is None:
-            raise ErgofitError("simulate: a window from randoms cannot be meshed yet; "
+            raise ErgofitError("simulate: a window from randoms or a window table cannot be meshed yet; "
                                "use an analytic geometry (sphere, shell, cap) for mocks")
         box = 4.1 * float(r_max)
     if n_mesh is None:

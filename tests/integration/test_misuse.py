@@ -62,6 +62,16 @@ CASES = [
      "unknown parameter 'ln10As' (renamed: write 'ln_1e10_As'"),
     ("old-truth-omega_cdm", _set(["data"], {"mock": {"truth": {"omega_cdm": 0.13}}, "ells": [0, 2]}),
      "check", "data.mock.truth: unknown parameter 'omega_cdm' (renamed: write 'omega_c'"),
+    # a precomputed window table (issue 15, item 19)
+    ("window-file-missing", _set(["survey", "geometry"], {"shape": "window", "file": "nope.txt"}),
+     "check", "survey.geometry.file"),
+    ("window-with-observer", _set(["survey", "geometry"], {"shape": "window", "file": "demo_data.txt"}),
+     "check", "effects.observer needs an analytic geometry"),
+    ("window-not-a-table", lambda c: (_set(["survey", "geometry"], {"shape": "window",
+                                                                    "file": "demo_data.txt"})(c),
+                                      _set(["effects", "observer"], False)(c),
+                                      c["parameters"].pop("nu_obs")),
+     "run", "not a window multipole table"),
 ]
 
 
