@@ -32,8 +32,9 @@ _N_MU = 48          # Gauss–Legendre nodes: exact for polynomials in μ up to 
 _PARITY_RTOL = 1e-8
 
 
-def _spectra_list(spectra):
-    """[(X, Y, ells)] from ``spectra``; each auto spectrum with even ℓ only."""
+def spectra_list(spectra):
+    """[(X, Y, ells)] from ``spectra`` = [((X, Y), ells), ...], validated: distinct pairs,
+    distinct non-negative ℓ, even ℓ only for an auto spectrum (X = Y)."""
     out = []
     try:
         items = list(spectra)
@@ -143,7 +144,7 @@ def multi_tracer_covariance(n_modes, spectra, pkmu, noise):
                            f"{nm.shape})")
     if not callable(pkmu):
         raise ErgofitError(f"pkmu = {pkmu!r}: expected a callable (X, Y, mu) -> (n_k, n_mu) array")
-    specs = _spectra_list(spectra)
+    specs = spectra_list(spectra)
     tracers = []
     for x, y, _ in specs:
         tracers += [t for t in (x, y) if t not in tracers]

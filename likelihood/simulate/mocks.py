@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import math
 import os
+from dataclasses import dataclass
 from typing import Mapping
 
 import numpy as np
@@ -32,6 +33,28 @@ from ..errors import ConfigError, ErgofitError
 from ..numerics.mesh import fourier_array
 from ..observation.estimator import MAX_ELL, check_edges, extent_warning, measure_multipoles, multipole_list, window_weights
 from .fields import ConstraintTemplate, ObserverConstraint, clip_warning, constrain_at_origin, constraint_sigma, gaussian_field, observed_field, poisson_counts
+
+def _mesh_power(mesh, pk, k_cut, e):
+    """P(k) on the rfft layout in the mesh precision, zero above ``k_cut`` (> the last edge)."""
+    p = fourier_array(mesh, pk, "pk")
+    if k_cut is not None:
+        kc = finite_number(k_cut, "k_cut", ConfigError)
+        if kc <= e[-1]:
+            raise ErgofitError(f"k_cut = {k_cut!r}: must exceed the last bin edge k_max = "
+                               f"{e[-1]:.4g} h/Mpc")
+        p = np.where(mesh.kmag() <= kc, p, 0.0)
+    return np.asarray(p).astype(mesh.real_dtype, copy=False) if np.ndim(p) else p
+
+
+def _mesh_kernel(mesh, A, B, label):
+    """A(k), B(k) (B may be None) on the rfft layout in the mesh precision."""
+    rdt = mesh.real_dtype
+    a = fourier_array(mesh, A, f"A{label}")
+    bk = None if B is None else fourier_array(mesh, B, f"B{label}")
+    a = np.asarray(a).astype(rdt, copy=False) if np.ndim(a) else a
+    bk = bk if bk is None or not np.ndim(bk) else np.asarray(bk).astype(rdt, copy=False)
+    return a, bk
+
 
 def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10, seed=0,
                    nbar=None, constraint=None, subtract_mean=True, k_cut=None, progress=None):
@@ -51,26 +74,13 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
     """
     ells = multipole_list(ells, "ells", max_ell=MAX_ELL)
     e = check_edges(mesh, edges)
-    n = int(n_mocks)
-    if n < 1 or n != n_mocks:
-        raise ErgofitError(f"n_mocks = {n_mocks!r}: expected a positive integer")
+    n = _mock_count(n_mocks)
     if constraint is not None and not isinstance(constraint, ObserverConstraint):
         raise ErgofitError(f"constraint = {constraint!r}: expected an ObserverConstraint or None")
     w = window_weights(mesh, window, "window")
     extent_warning(mesh, w)
-    p = fourier_array(mesh, pk, "pk")
-    if k_cut is not None:
-        kc = finite_number(k_cut, "k_cut", ConfigError)
-        if kc <= e[-1]:
-            raise ErgofitError(f"k_cut = {k_cut!r}: must exceed the last bin edge k_max = "
-                               f"{e[-1]:.4g} h/Mpc")
-        p = np.where(mesh.kmag() <= kc, p, 0.0)
-    a = fourier_array(mesh, A, "A")
-    bk = None if B is None else fourier_array(mesh, B, "B")
-    rdt = mesh.real_dtype
-    p = np.asarray(p).astype(rdt, copy=False) if np.ndim(p) else p       # mesh precision
-    a = np.asarray(a).astype(rdt, copy=False) if np.ndim(a) else a
-    bk = bk if bk is None or not np.ndim(bk) else np.asarray(bk).astype(rdt, copy=False)
+    p = _mesh_power(mesh, pk, k_cut, e)
+    a, bk = _mesh_kernel(mesh, A, B, "")
     c_value = tpl = None
     if constraint is not None:
         tpl = ConstraintTemplate.make(mesh, constraint.kernel, p)
@@ -98,6 +108,124 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
     x = np.array([m.flat for m in mocks])
     cov = np.cov(x, rowvar=False, ddof=1) if n > 1 else np.zeros((x.shape[1],) * 2)
     return mocks, MockCovariance(np.atleast_2d(cov), n)
+
+
+@dataclass(frozen=True)
+class MeshTracer:
+    """One population for :func:`multi_tracer_mocks`: kernel Δ_X = [A + iμB + Fμ²] δ (A, B
+    functions of k, numbers or rfft-layout arrays, as :func:`observed_field`) and n̄ in (h/Mpc)³
+    for Poisson sampling (None: the continuous field, no shot noise)."""
+
+    A: object
+    B: object = None
+    F: float = 0.0
+    nbar: float = None
+
+
+@dataclass
+class MultiTracerMocks:
+    """Multipoles of several tracers measured on ``n`` mocks.
+
+    ``spectra``: [((X, Y), ells)]; ``vectors``: (n, n_data) ordered spectrum by spectrum, then
+    ℓ-major (the order of :func:`likelihood.covariance.multi_tracer_covariance`, odd ℓ as Π_ℓ);
+    ``edges``, ``k_eff``, ``n_modes``: the k bins (k and −k counted); ``max_clipped``: largest
+    fraction of in-window cells where 1 + Δ < 0 was clipped (0 without Poisson sampling).
+    """
+
+    spectra: list
+    edges: np.ndarray
+    k_eff: np.ndarray
+    n_modes: np.ndarray
+    vectors: np.ndarray
+    max_clipped: float = 0.0
+
+    @property
+    def mean(self):
+        return self.vectors.mean(axis=0)
+
+    def covariance(self):
+        """Unbiased sample covariance of the vectors, as a :class:`MockCovariance`."""
+        n = self.vectors.shape[0]
+        if n < 2:
+            raise ErgofitError(f"{n} mock: need at least 2 for a covariance")
+        return MockCovariance(np.atleast_2d(np.cov(self.vectors, rowvar=False, ddof=1)), n)
+
+    def index(self, pair, ell):
+        """Slice of the flat vector holding multipole ``ell`` of spectrum ``pair``."""
+        nb = self.k_eff.size
+        start = 0
+        for p, ells in self.spectra:
+            if tuple(p) == tuple(pair) and ell in ells:
+                s0 = start + list(ells).index(ell) * nb
+                return slice(s0, s0 + nb)
+            start += len(ells) * nb
+        raise ErgofitError(f"spectrum {pair!r} with ell = {ell} is not among the mocks' spectra")
+
+
+def multi_tracer_mocks(mesh, pk, tracers, spectra, edges, n_mocks=10, seed=0, window=None,
+                       subtract_mean=True, k_cut=None, progress=None):
+    """Mocks of several populations tracing one Gaussian field, with auto and cross multipoles.
+
+    Per mock i (streams spawned from ``seed``: mock i depends only on (seed, i)): one δ_k ~
+    :func:`gaussian_field` (pk, zero above ``k_cut``); for each tracer X (a :class:`MeshTracer`
+    in the dict ``tracers``) Δ_X = :func:`observed_field` with its own kernel, then, if X has an
+    n̄, independent Poisson counts N_X ~ Poisson(n̄_X H³ W [1 + Δ_X]₊) (its own stream; cells with
+    1 + Δ_X < 0 are clipped to 0 and a warning gives the largest clipped fraction over the
+    mocks when it exceeds 0.1 %); the spectra [((X, Y), ells), ...] are measured by
+    :func:`likelihood.observation.estimator.measure_spectra` (autos: the Poisson shot noise
+    S_X ≈ 1/n̄_X subtracted from ℓ = 0, the data convention ``data.shot_noise_subtracted: true``;
+    crosses: nothing subtracted, the samples are independent; odd ℓ of a cross as Π_ℓ).
+    Linear-theory Gaussian mocks: see the module notes for the regime of validity.
+    Returns :class:`MultiTracerMocks`.
+    """
+    from ..covariance import spectra_list
+    from ..observation.estimator import measure_spectra
+
+    specs = spectra_list(spectra)
+    e = check_edges(mesh, edges)
+    n = _mock_count(n_mocks)
+    if not hasattr(tracers, "items") or not tracers:
+        raise ErgofitError("tracers: expected a dict {name: MeshTracer}")
+    names = list(tracers)
+    for x in names:
+        if not isinstance(tracers[x], MeshTracer):
+            raise ErgofitError(f"tracers[{x!r}]: expected a MeshTracer(A, B, F, nbar)")
+    unknown = sorted({t for x, y, _ in specs for t in (x, y)} - set(names))
+    if unknown:
+        raise ErgofitError(f"spectra name tracer(s) {unknown} not in tracers {names}")
+    w = window_weights(mesh, window, "window")
+    extent_warning(mesh, w)
+    p = _mesh_power(mesh, pk, k_cut, e)
+    kern = {x: _mesh_kernel(mesh, tracers[x].A, tracers[x].B, f" of tracer {x}") for x in names}
+    nbar = {x: tracers[x].nbar for x in names if tracers[x].nbar is not None}
+    vectors, meta, max_clip = [], None, 0.0
+    for i, child in enumerate(np.random.SeedSequence(seed).spawn(n)):
+        streams = child.spawn(1 + len(names))
+        dk = gaussian_field(mesh, p, streams[0])
+        fields = {}
+        for x, s_poisson in zip(names, streams[1:]):
+            a, b = kern[x]
+            fields[x] = observed_field(mesh, dk, a, b, tracers[x].F)
+            if x in nbar:
+                fields[x], frac = poisson_counts(mesh, fields[x], nbar[x], w, s_poisson)
+                max_clip = max(max_clip, frac)
+        del dk
+        out = measure_spectra(mesh, fields, spectra, e, w, nbar=nbar, subtract_mean=subtract_mean)
+        del fields
+        meta = next(iter(out.values()))
+        vectors.append(np.concatenate([out[(x, y)].values.ravel() for x, y, _ in specs]))
+        if progress is not None:
+            progress(i + 1, n)
+    clip_warning(max_clip, stacklevel=3)
+    return MultiTracerMocks([((x, y), ells) for x, y, ells in specs], e, meta.k_eff,
+                            meta.n_modes, np.array(vectors), max_clip)
+
+
+def _mock_count(n_mocks):
+    n = int(n_mocks)
+    if n < 1 or n != n_mocks:
+        raise ErgofitError(f"n_mocks = {n_mocks!r}: expected a positive integer")
+    return n
 
 
 def _observer_from_settings(observer):
