@@ -57,13 +57,16 @@ def _mesh_kernel(mesh, A, B, label):
 
 
 def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10, seed=0,
-                   nbar=None, constraint=None, subtract_mean=True, k_cut=None, progress=None):
+                   nbar=None, constraint=None, subtract_mean=True, k_cut=None, progress=None,
+                   subtract_shot_noise=True):
     """Draw ``n_mocks`` Gaussian mocks, observe them and measure their multipoles.
 
     Per mock i (random streams spawned from ``seed``, so mock i depends only on (seed, i)):
     δ_k ~ :func:`gaussian_field` (pk); if ``constraint`` (an :class:`ObserverConstraint`) is
     given, c(x_o) = ν σ_c is imposed by :func:`constrain_at_origin`; Δ_g = :func:`observed_field`
-    (A, B, F); optional :func:`poisson_sample` (nbar); :func:`measure_multipoles` with the window.
+    (A, B, F); optional :func:`poisson_sample` (nbar); :func:`measure_multipoles` with the window,
+    which subtracts the Poisson shot noise S ≈ 1/n̄ from ℓ = 0 unless ``subtract_shot_noise`` is
+    False (then S is added back: the data convention ``data.shot_noise_subtracted: false``).
     Linear-theory Gaussian mocks: see the module notes for the regime of validity.
     ``k_cut`` (h/Mpc, optional): the mock density has no power above k_cut (P = 0 there). Use it
     with Poisson sampling, where the full linear power up to the Nyquist frequency can drive
@@ -86,7 +89,7 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
         tpl = ConstraintTemplate.make(mesh, constraint.kernel, p)
         c_value = constraint.nu * math.sqrt(tpl.sigma2)
     mocks = []
-    max_clip = 0.0
+    max_clip, max_gain = 0.0, 1.0
     for i, child in enumerate(np.random.SeedSequence(seed).spawn(n)):
         s_field, s_poisson = child.spawn(2)
         dk = gaussian_field(mesh, p, s_field)
@@ -95,16 +98,19 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
         gal = observed_field(mesh, dk, a, bk, F)
         del dk
         if nbar is not None:
-            gal, frac = poisson_counts(mesh, gal, nbar, w, s_poisson)
-            max_clip = max(max_clip, frac)
+            gal, frac, gain = poisson_counts(mesh, gal, nbar, w, s_poisson, gaussian_gain=True)
+            max_clip, max_gain = max(max_clip, frac), max(max_gain, gain)
         dv = measure_multipoles(mesh, gal, w, e, ells, nbar=nbar, subtract_mean=subtract_mean)
+        if nbar is not None and not subtract_shot_noise and 0 in ells:
+            dv.values[ells.index(0)] += float(dv.meta["shot_noise"])
+            dv.meta["shot_noise_subtracted"] = "False"
         dv.meta.update({"mock": str(i), "seed": str(seed)})
         if constraint is not None:
             dv.meta.update({"constraint": constraint.name, "nu_obs": f"{constraint.nu:.8g}"})
         mocks.append(dv)
         if progress is not None:
             progress(i + 1, n)
-    clip_warning(max_clip, stacklevel=3)  # once for the set (largest fraction over the mocks)
+    clip_warning(max_clip, stacklevel=3, gain=max_gain)  # once for the set (largest over the mocks)
     x = np.array([m.flat for m in mocks])
     cov = np.cov(x, rowvar=False, ddof=1) if n > 1 else np.zeros((x.shape[1],) * 2)
     return mocks, MockCovariance(np.atleast_2d(cov), n)
@@ -198,7 +204,7 @@ def multi_tracer_mocks(mesh, pk, tracers, spectra, edges, n_mocks=10, seed=0, wi
     p = _mesh_power(mesh, pk, k_cut, e)
     kern = {x: _mesh_kernel(mesh, tracers[x].A, tracers[x].B, f" of tracer {x}") for x in names}
     nbar = {x: tracers[x].nbar for x in names if tracers[x].nbar is not None}
-    vectors, meta, max_clip = [], None, 0.0
+    vectors, meta, max_clip, max_gain = [], None, 0.0, 1.0
     for i, child in enumerate(np.random.SeedSequence(seed).spawn(n)):
         streams = child.spawn(1 + len(names))
         dk = gaussian_field(mesh, p, streams[0])
@@ -207,8 +213,9 @@ def multi_tracer_mocks(mesh, pk, tracers, spectra, edges, n_mocks=10, seed=0, wi
             a, b = kern[x]
             fields[x] = observed_field(mesh, dk, a, b, tracers[x].F)
             if x in nbar:
-                fields[x], frac = poisson_counts(mesh, fields[x], nbar[x], w, s_poisson)
-                max_clip = max(max_clip, frac)
+                fields[x], frac, gain = poisson_counts(mesh, fields[x], nbar[x], w, s_poisson,
+                                                       gaussian_gain=True)
+                max_clip, max_gain = max(max_clip, frac), max(max_gain, gain)
         del dk
         out = measure_spectra(mesh, fields, spectra, e, w, nbar=nbar, subtract_mean=subtract_mean)
         del fields
@@ -216,7 +223,7 @@ def multi_tracer_mocks(mesh, pk, tracers, spectra, edges, n_mocks=10, seed=0, wi
         vectors.append(np.concatenate([out[(x, y)].values.ravel() for x, y, _ in specs]))
         if progress is not None:
             progress(i + 1, n)
-    clip_warning(max_clip, stacklevel=3)
+    clip_warning(max_clip, stacklevel=3, gain=max_gain)
     return MultiTracerMocks([((x, y), ells) for x, y, ells in specs], e, meta.k_eff,
                             meta.n_modes, np.array(vectors), max_clip)
 
@@ -255,15 +262,17 @@ def _observer_from_settings(observer):
 
 
 def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells, n_mocks, seed,
-                           nbar=None, observer=None, out_dir=None, k_cut=None, progress=None):
+                           nbar=None, observer=None, out_dir=None, k_cut=None, progress=None,
+                           subtract_shot_noise=True):
     """Mocks of a configured survey: one data-vector file per mock plus ``covariance.txt``.
 
     ``cosmo`` (``likelihood.theory.cosmology.Cosmology``) gives P(k, z); ``likelihood.theory.tracer.kernel(cosmo,
     z, k, tracer, effects)`` gives the observed-field kernel (A, B, F) evaluated once on the mesh's
     |k|; ``window`` a geometry or mask; ``observer`` None, an :class:`ObserverConstraint`, or a
     mapping like the config's ``observer`` section {"field": "potential"|"density", "nu_true": ν,
-    "smoothing": R, "k_ir": k}; ``k_cut``: see :func:`simulate_mocks`; ``progress(i, n)``: an
-    optional callback after each mock.
+    "smoothing": R, "k_ir": k}; ``nbar``: Poisson-sample the tracer with this n̄ (None: the
+    continuous field, no shot noise); ``k_cut``, ``subtract_shot_noise``: see
+    :func:`simulate_mocks`; ``progress(i, n)``: an optional callback after each mock.
     Files in ``out_dir`` (created): ``mock_0000.txt``, ... (the documented data-vector text format
     of ``likelihood.data``) and ``covariance.txt`` (``likelihood.data`` covariance format: header
     ``# ergofit covariance``, ``# ells:``, ``# n_bins:``, then the matrix in the ℓ-major order).
@@ -300,7 +309,8 @@ def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells,
             raise ErgofitError(f"out_dir = {out_dir}: cannot create the folder ({exc})") from None
     mocks, cov = simulate_mocks(mesh, pk, a, b if np.any(b) else None, fval, window, e, ells,
                                 n_mocks, seed, nbar=nbar, constraint=constraint,
-                                k_cut=k_cut, progress=progress)
+                                k_cut=k_cut, progress=progress,
+                                subtract_shot_noise=subtract_shot_noise)
     for m in mocks:
         m.meta["z"] = f"{zf:.6g}"
     if out_dir is not None:

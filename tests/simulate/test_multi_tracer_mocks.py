@@ -179,3 +179,24 @@ def test_many_mocks_mean_and_covariance():
                 big = np.abs(c_an) / norm > 0.2          # ≤ 10 % where the correlation is large
                 if np.any(big):
                     assert abs(np.mean(c_mc[big] / c_an[big]) - 1) < 0.10, (auto, la, lc)
+
+
+def test_clip_gain_keeps_the_linear_response():
+    # Stein's lemma (Stein 1981, Ann. Stat. 9, 1135): E[g(X) X] = σ² E[g'(X)] for X ~ N(0, σ²), so
+    # with g = max(aX, −1) and a = clip_gain(σ) the Monte Carlo E[g X]/σ² must be 1; and for a
+    # weakly correlated pair (ρ = 0.1) Cov[g(X), g(Y)] = ρσ² + O(ρ²) (Price 1958).
+    from likelihood.simulate.fields import clip_gain
+    rng = np.random.default_rng(3)
+    for sigma in (0.3, 0.5, 0.8):
+        a = clip_gain(sigma)
+        x = sigma * rng.standard_normal(2_000_000)
+        g = np.maximum(a * x, -1.0)
+        assert np.mean(g * x) / sigma ** 2 == pytest.approx(1.0, abs=5e-3)
+        if sigma >= 0.5:     # clipping alone (a = 1) loses > 1 % of the response
+            assert np.mean(np.maximum(x, -1.0) * x) / sigma ** 2 < 0.99
+        rho = 0.1
+        y = rho * x + math.sqrt(1 - rho ** 2) * sigma * rng.standard_normal(x.size)
+        h = np.maximum(a * y, -1.0)
+        cov = np.mean((g - g.mean()) * (h - h.mean()))
+        assert cov / (rho * sigma ** 2) == pytest.approx(1.0, abs=0.03)
+    assert clip_gain(0.05) == 1.0
