@@ -6,8 +6,8 @@ Hermitian covariance (k and −k counted separately, δ_X(−k) = δ_X(k)^*)
     C_XY(k, μ) = P_m(k) Z_X Z_Y^* + N_XY,     N_XX = 1/n̄_X (Poisson), N_XY = shared noise (else 0),
 
 with Z_X = A_X + iμB_X + Fμ² the kernel of :func:`likelihood.theory.tracer.kernel`. The Fisher
-information of one mode is (Tegmark, Taylor & Heavens 1997, ApJ 480, 22, eq. 15, second term;
-½ because k and −k carry the same complex amplitude)
+information of one mode is (Tegmark, Taylor & Heavens 1997, ApJ 480, 22, eq. 15, the term in the
+derivatives of C, cited from memory; ½ because k and −k carry the same complex amplitude)
 
     F_ij(k, μ) = ½ Tr[C⁻¹ ∂_i C C⁻¹ ∂_j C],   ∂_i C = P_m (∂_i Z Z^† + Z ∂_i Z^†),
 
@@ -89,7 +89,7 @@ def mode_counts(volume, edges):
 def per_mode_fisher(C, dC):
     """F_ij = ½ Re Tr[C⁻¹ ∂_i C C⁻¹ ∂_j C] for Hermitian C (..., n, n), dC (p, ..., n, n).
 
-    Returns (..., p, p). (Gaussian field, zero mean: Tegmark, Taylor & Heavens 1997, eq. 15.)"""
+    Returns (..., p, p). (Zero-mean Gaussian field: Tegmark, Taylor & Heavens 1997, eq. 15.)"""
     C = np.asarray(C)
     dC = np.asarray(dC)
     M = np.linalg.solve(C[None], dC)             # C⁻¹ ∂_i C, (p, ..., n, n)
