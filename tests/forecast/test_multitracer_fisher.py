@@ -64,6 +64,34 @@ def test_one_tracer_equals_multipole_fisher(cosmo, effects, ells):
     np.testing.assert_allclose(got.matrix, ref, rtol=1e-7)
 
 
+def test_one_tracer_reproduces_the_forecast_of_a_config(write_config):
+    # The existing single-tracer forecast (likelihood.forecast.likelihood_fisher on a built config:
+    # periodic box, no integral constraint, Kaiser + f_NL, multipoles 0, 2, 4 with the Gaussian
+    # covariance) against multi_tracer_fisher on the same k_eff and mode counts. The config's model
+    # is averaged over each bin, this module evaluates at k_eff: with 96 narrow bins the two agree
+    # to 0.1 % (1.3 % with 24 bins, measured).
+    import likelihood
+    from likelihood.forecast import likelihood_fisher
+    path = write_config({
+        "survey": {"redshift": 1.2, "nbar": 3e-4,
+                   "geometry": {"shape": "box", "volume": 5e10, "r_min": None, "r_max": None}},
+        "tracer": {"b1": 2.0, "fnl": 0.0, "b_e": 0.0, "s": 0.0},
+        "effects": {"observer": False, "doppler": False, "potential": False,
+                    "integral_constraint": "none"},
+        "data": {"mock": {"truth": {"fnl": 0.0}, "k_min": 0.003, "k_max": 0.05, "n_bins": 96},
+                 "ells": [0, 2, 4]},
+        "parameters": {"b1": {"flat": [0.5, 5.0], "start": 2.0, "scale": 0.02},
+                       "fnl": {"flat": [-200.0, 200.0], "start": 0.0, "scale": 2.0},
+                       "shot_noise": {"fixed": 1.0}}})
+    lik = likelihood.build(path)
+    ref = likelihood_fisher(lik, names=["fnl", "b1"])
+    dv = lik.data_full
+    got = multi_tracer_fisher(lik.cosmo, lik.z, dv.k_eff, dv.n_modes,
+                              [Tracer(b1=2.0, nbar=3e-4, name="g")], ("fnl", "rsd"))
+    np.testing.assert_allclose(got.matrix, ref.matrix, rtol=5e-3)
+    assert got.sigma("fnl") == pytest.approx(ref.errors[0], rel=5e-3)
+
+
 def test_two_tracers_closed_form_at_finite_noise(cosmo):
     # Closed form from the setup of McDonald & Seljak 2009 (δ_X = Z_X δ_m + ε_X, white noise
     # 1/n̄_X, real kernels Z_X = b_X + f_NL (b_X − p) α(k) + fμ²), derived with
