@@ -261,6 +261,57 @@ def _observer_from_settings(observer):
     raise ConfigError(f"observer field = {kind!r}: expected 'potential' or 'density'")
 
 
+def _redshift(z):
+    try:
+        zf = float(z)
+    except (TypeError, ValueError):
+        raise ConfigError(f"z = {z!r}: expected a redshift") from None
+    if not (np.isfinite(zf) and zf >= 0):
+        raise ConfigError(f"z = {z!r}: expected a finite redshift >= 0")
+    return zf
+
+
+def _tracer_on_mesh(cosmo, z, tracer, effects, mesh):
+    """The kernel (A, B or None, F) of ``likelihood.theory.tracer.kernel`` on the mesh's |k|
+    (evaluated once per distinct |k|², in the mesh precision; 0 at k = 0)."""
+    from ..theory.tracer import kernel as tracer_kernel
+
+    q = mesh.k_squared_index()
+    kq = mesh.k_fundamental * np.sqrt(np.arange(1, int(q.max()) + 1, dtype=float))
+    ker = tracer_kernel(cosmo, z, kq, tracer, effects)
+    tab_a = np.concatenate([[0.0], np.broadcast_to(np.asarray(ker.A, float), kq.shape)])
+    tab_b = np.concatenate([[0.0], np.broadcast_to(np.asarray(ker.B, float), kq.shape)])
+    if not (np.all(np.isfinite(tab_a)) and np.all(np.isfinite(tab_b))):
+        raise ErgofitError("tracer kernel: A(k) or B(k) is not finite on the mesh wavenumbers")
+    rdt = mesh.real_dtype
+    a = tab_a.astype(rdt)[q]
+    b = tab_b.astype(rdt)[q] if np.any(tab_b) else None
+    return a, b, float(np.asarray(ker.F))
+
+
+def simulate_tracers(cosmo, z, tracers, effects, mesh, spectra, edges, n_mocks, seed=0,
+                     window=None, poisson=True, k_cut=None, progress=None):
+    """Mocks of several populations of ``likelihood.theory.tracer.Tracer`` (dict {name: Tracer}):
+    each kernel from ``likelihood.theory.tracer.kernel(cosmo, z, k, tracer, effects)`` on the
+    mesh, P(k, z) from ``cosmo``, Poisson sampling with each tracer's n̄ (``poisson``), then
+    :func:`multi_tracer_mocks` (which see). One tracer with the same seed gives the same numbers
+    as :func:`simulate_from_settings`. Returns :class:`MultiTracerMocks`."""
+    from ..theory.tracer import Tracer
+
+    zf = _redshift(z)
+    if not hasattr(tracers, "items") or not tracers:
+        raise ErgofitError("tracers: expected a dict {name: likelihood.theory.tracer.Tracer}")
+    mesh_tracers = {}
+    for name, t in tracers.items():
+        if not isinstance(t, Tracer):
+            raise ErgofitError(f"tracers[{name!r}]: expected a likelihood.theory.tracer.Tracer")
+        a, b, f = _tracer_on_mesh(cosmo, zf, t, effects, mesh)
+        mesh_tracers[name] = MeshTracer(a, b, f, t.nbar if poisson else None)
+    pk = mesh.on_grid(lambda k: cosmo.power(k, zf), "cosmology power").astype(mesh.real_dtype)
+    return multi_tracer_mocks(mesh, pk, mesh_tracers, spectra, edges, n_mocks, seed, window,
+                              k_cut=k_cut, progress=progress)
+
+
 def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells, n_mocks, seed,
                            nbar=None, observer=None, out_dir=None, k_cut=None, progress=None,
                            subtract_shot_noise=True):
@@ -278,36 +329,19 @@ def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells,
     ``# ergofit covariance``, ``# ells:``, ``# n_bins:``, then the matrix in the ℓ-major order).
     Returns (list of DataVector, MockCovariance).
     """
-    from ..theory.tracer import kernel as tracer_kernel
-
-    try:
-        zf = float(z)
-    except (TypeError, ValueError):
-        raise ConfigError(f"z = {z!r}: expected a redshift") from None
-    if not (np.isfinite(zf) and zf >= 0):
-        raise ConfigError(f"z = {z!r}: expected a finite redshift >= 0")
+    zf = _redshift(z)
     constraint = _observer_from_settings(observer)
     ells = multipole_list(ells, "ells", max_ell=MAX_ELL)
     e = check_edges(mesh, edges)
     pk = mesh.on_grid(lambda k: cosmo.power(k, zf), "cosmology power").astype(mesh.real_dtype)
-    q = mesh.k_squared_index()
-    kq = mesh.k_fundamental * np.sqrt(np.arange(1, int(q.max()) + 1, dtype=float))
-    ker = tracer_kernel(cosmo, zf, kq, tracer, effects)
-    tab_a = np.concatenate([[0.0], np.broadcast_to(np.asarray(ker.A, float), kq.shape)])
-    tab_b = np.concatenate([[0.0], np.broadcast_to(np.asarray(ker.B, float), kq.shape)])
-    if not (np.all(np.isfinite(tab_a)) and np.all(np.isfinite(tab_b))):
-        raise ErgofitError("tracer kernel: A(k) or B(k) is not finite on the mesh wavenumbers")
-    rdt = mesh.real_dtype
-    a, b = tab_a.astype(rdt)[q], tab_b.astype(rdt)[q]
-    del q
-    fval = float(np.asarray(ker.F))
+    a, b, fval = _tracer_on_mesh(cosmo, zf, tracer, effects, mesh)
     if out_dir is not None:
         out_dir = os.fspath(out_dir)
         try:
             os.makedirs(out_dir, exist_ok=True)
         except OSError as exc:
             raise ErgofitError(f"out_dir = {out_dir}: cannot create the folder ({exc})") from None
-    mocks, cov = simulate_mocks(mesh, pk, a, b if np.any(b) else None, fval, window, e, ells,
+    mocks, cov = simulate_mocks(mesh, pk, a, b, fval, window, e, ells,
                                 n_mocks, seed, nbar=nbar, constraint=constraint,
                                 k_cut=k_cut, progress=progress,
                                 subtract_shot_noise=subtract_shot_noise)

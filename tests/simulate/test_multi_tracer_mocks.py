@@ -200,3 +200,29 @@ def test_clip_gain_keeps_the_linear_response():
         cov = np.mean((g - g.mean()) * (h - h.mean()))
         assert cov / (rho * sigma ** 2) == pytest.approx(1.0, abs=0.03)
     assert clip_gain(0.05) == 1.0
+
+
+def test_simulate_tracers_one_tracer_equals_single_tracer_mocks():
+    # simulate_tracers builds its kernels with likelihood.theory.tracer.kernel like
+    # simulate_from_settings; with one tracer and the same seed the numbers must be identical
+    # (same random streams, measure_spectra = measure_multipoles), Poisson sampling included.
+    from likelihood.simulate.mocks import simulate_from_settings, simulate_tracers
+    from likelihood.theory.cosmology import Cosmology
+    from likelihood.theory.tracer import Tracer
+    cosmo = Cosmology.from_preset()
+    mesh = Mesh(16, 3000.0, dtype="float32")
+    edges = mesh.k_fundamental * np.array([1.5, 3.5, 5.5, 7.5])
+    t = Tracer(b1=1.8, nbar=2e-4, b_e=1.0, s=0.3, name="g")
+    eff = ("rsd", "fnl", "doppler", "potential")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        one, _ = simulate_from_settings(cosmo, 1.2, t, eff, mesh, None, edges, (0, 2), 3, 7,
+                                        nbar=t.nbar)
+        many = simulate_tracers(cosmo, 1.2, {"g": t}, eff, mesh, [(("g", "g"), (0, 2))], edges, 3, 7)
+        two = simulate_tracers(cosmo, 1.2, {"g": t, "h": Tracer(b1=1.1, nbar=5e-4, name="h")}, eff,
+                               mesh, [(("g", "g"), (0,)), (("g", "h"), (0, 1)), (("h", "h"), (0,))],
+                               edges, 2, 7)
+    np.testing.assert_allclose(many.vectors, np.array([m.flat for m in one]), rtol=1e-10)
+    assert two.vectors.shape == (2, 4 * 3) and np.all(np.isfinite(two.vectors))
+    with pytest.raises(ErgofitError, match="Tracer"):
+        simulate_tracers(cosmo, 1.2, {"g": 2.0}, eff, mesh, [(("g", "g"), (0,))], edges, 1)
