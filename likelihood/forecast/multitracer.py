@@ -119,6 +119,65 @@ def _tracer_table(tracers):
     return names, [t for _, t in items]
 
 
+def _checked_bins(k, n_modes):
+    k = np.atleast_1d(np.asarray(k, float))
+    nm = np.atleast_1d(np.asarray(n_modes, float))
+    if k.ndim != 1 or not np.all(np.isfinite(k)) or np.any(k <= 0):
+        raise ErgofitError("k: expected positive wavenumbers in h/Mpc")
+    if nm.shape != k.shape or not np.all(np.isfinite(nm)) or np.any(nm <= 0):
+        raise ErgofitError(f"n_modes: expected {k.size} positive mode counts (one per k)")
+    return k, nm
+
+
+def _noise_matrix(names, trs, shared_noise):
+    noise = np.diag([t.shot_noise for t in trs]).astype(float)
+    for (x, y), v in (shared_noise or {}).items():
+        if x not in names or y not in names or x == y:
+            raise ErgofitError(f"shared_noise ({x!r}, {y!r}): expected two different tracers "
+                               f"among {names}")
+        noise[names.index(x), names.index(y)] = noise[names.index(y), names.index(x)] = float(v)
+    return noise
+
+
+def _field_covariance(cosmo, z, k, trs, effects, mu, noise):
+    """Z (n_k, n_mu, n_tr) and C = P_m Z Z^† + N (n_k, n_mu, n_tr, n_tr)."""
+    Z = []
+    for t in trs:
+        ker = kernel(cosmo, z, k, t, effects)
+        A = np.broadcast_to(ker.A, k.shape)[:, None]
+        B = np.broadcast_to(ker.B, k.shape)[:, None]
+        Z.append(A + 1j * mu[None, :] * B + ker.F * mu[None, :] ** 2)
+    Z = np.moveaxis(np.array(Z), 0, -1)
+    P = np.asarray(cosmo.power(k, z), float)[:, None, None, None]
+    return Z, P * Z[..., :, None] * np.conj(Z[..., None, :]) + noise
+
+
+def _derivatives(cosmo, z, k, names, trs, effects, mu, Z, params):
+    """∂C/∂θ for θ in ``params`` (exact: the kernel is linear in f_NL and b1)."""
+    alpha = fnl_alpha(cosmo, k, z) if "fnl" in (effects or ()) else np.zeros_like(k)
+    P = np.asarray(cosmo.power(k, z), float)[:, None, None, None]
+    dC = []
+    for p in params:
+        d = np.zeros(Z.shape, complex)
+        for i, (n, t) in enumerate(zip(names, trs)):
+            if p == "fnl":
+                d[..., i] = ((t.b1 - t.p) * alpha)[:, None]
+            elif p == f"b1_{n}":
+                d[..., i] = (1.0 + t.fnl * alpha)[:, None]
+        outer = d[..., :, None] * np.conj(Z[..., None, :])
+        dC.append(P * (outer + np.conj(np.swapaxes(outer, -1, -2))))
+    return np.array(dC)
+
+
+def _parameters(names, parameters):
+    all_params = ["fnl"] + [f"b1_{n}" for n in names]
+    params = all_params if parameters is None else list(parameters)
+    bad = [p for p in params if p not in all_params]
+    if bad or not params:
+        raise ErgofitError(f"parameters {bad or params}: expected some of {all_params}")
+    return params
+
+
 def multi_tracer_fisher(cosmo, z, k, n_modes, tracers, effects=DEFAULT_EFFECTS,
                         shared_noise=None, parameters=None):
     """Fisher matrix of f_NL and each tracer's b1 from N tracer fields in a volume.
@@ -131,52 +190,54 @@ def multi_tracer_fisher(cosmo, z, k, n_modes, tracers, effects=DEFAULT_EFFECTS,
     all). Formula: module docstring. Returns a :class:`MultiTracerFisher`.
     """
     names, trs = _tracer_table(tracers)
-    k = np.atleast_1d(np.asarray(k, float))
-    nm = np.atleast_1d(np.asarray(n_modes, float))
-    if k.ndim != 1 or not np.all(np.isfinite(k)) or np.any(k <= 0):
-        raise ErgofitError("k: expected positive wavenumbers in h/Mpc")
-    if nm.shape != k.shape or not np.all(np.isfinite(nm)) or np.any(nm <= 0):
-        raise ErgofitError(f"n_modes: expected {k.size} positive mode counts (one per k)")
-    all_params = ["fnl"] + [f"b1_{n}" for n in names]
-    params = all_params if parameters is None else list(parameters)
-    bad = [p for p in params if p not in all_params]
-    if bad or not params:
-        raise ErgofitError(f"parameters {bad or params}: expected some of {all_params}")
+    k, nm = _checked_bins(k, n_modes)
+    params = _parameters(names, parameters)
     mu, wq = np.polynomial.legendre.leggauss(_N_MU)
-    pm = np.asarray(cosmo.power(k, z), float)
-    fnl_on = "fnl" in (effects or ())
-    alpha = fnl_alpha(cosmo, k, z) if fnl_on else np.zeros_like(k)
-    Z, dZ = [], {p: [] for p in params}
-    for n, t in zip(names, trs):
-        ker = kernel(cosmo, z, k, t, effects)
-        A = np.broadcast_to(ker.A, k.shape)[:, None]
-        B = np.broadcast_to(ker.B, k.shape)[:, None]
-        Z.append(A + 1j * mu[None, :] * B + ker.F * mu[None, :] ** 2)
-        for p in params:
-            if p == "fnl":
-                d = (t.b1 - t.p) * alpha
-            elif p == f"b1_{n}":
-                d = 1.0 + t.fnl * alpha
-            else:
-                d = np.zeros_like(k)
-            dZ[p].append(np.broadcast_to(d[:, None], (k.size, mu.size)).astype(complex))
-    Z = np.moveaxis(np.array(Z), 0, -1)                       # (n_k, n_mu, n_tr)
-    noise = np.diag([t.shot_noise for t in trs]).astype(float)
-    for (x, y), v in (shared_noise or {}).items():
-        if x not in names or y not in names or x == y:
-            raise ErgofitError(f"shared_noise ({x!r}, {y!r}): expected two different tracers "
-                               f"among {names}")
-        noise[names.index(x), names.index(y)] = noise[names.index(y), names.index(x)] = float(v)
-    P = pm[:, None, None, None]
-    C = P * Z[..., :, None] * np.conj(Z[..., None, :]) + noise
-    dC = []
-    for p in params:
-        d = np.moveaxis(np.array(dZ[p]), 0, -1)
-        outer = d[..., :, None] * np.conj(Z[..., None, :])
-        dC.append(P * (outer + np.conj(np.swapaxes(outer, -1, -2))))
-    per_mode = per_mode_fisher(C, np.array(dC))                # (n_k, n_mu, p, p)
+    Z, C = _field_covariance(cosmo, z, k, trs, effects, mu, _noise_matrix(names, trs, shared_noise))
+    dC = _derivatives(cosmo, z, k, names, trs, effects, mu, Z, params)
+    per_mode = per_mode_fisher(C, dC)                          # (n_k, n_mu, p, p)
     F = np.einsum("k,m,kmij->ij", nm, 0.5 * wq, per_mode)
     return MultiTracerFisher(params, F, per_mode, mu)
+
+
+def multi_tracer_bias(cosmo, z, k, n_modes, tracers, effects, neglect, shared_noise=None,
+                      parameters=None):
+    """First-order shift of (f_NL, b1's) when the analysis drops the effects ``neglect``.
+
+    The truth has ``effects``, the analysis ``effects`` minus ``neglect`` (same fiducial values).
+    Maximising the expected Gaussian log-likelihood of the analysis model, whose covariance
+    C_a(θ) is wrong by ΔC = C_t − C_a, to first order (the systematic-shift formula, e.g.
+    Huterer, Takada, Bernstein & Jain 2006, MNRAS 366, 101, eq. 4, cited from memory, written
+    for a parameter-dependent covariance):
+
+        Δθ_i = (F⁻¹)_ij Σ_modes ½ Tr[C_a⁻¹ ∂_j C_a C_a⁻¹ ΔC],
+
+    F the analysis Fisher matrix (:func:`multi_tracer_fisher`). For one tracer it is the shift
+    of the multipole forecast with the Gaussian covariance (checked against
+    ``likelihood.forecast.bias_forecast``). Returns (dict {name: Δθ}, the analysis
+    :class:`MultiTracerFisher`).
+    """
+    names, trs = _tracer_table(tracers)
+    k, nm = _checked_bins(k, n_modes)
+    params = _parameters(names, parameters)
+    effects = tuple(effects or ())
+    unknown = [n for n in neglect if n not in effects]
+    if unknown:
+        raise ErgofitError(f"neglect {unknown}: not among the truth effects {list(effects)}")
+    analysis = tuple(e for e in effects if e not in set(neglect))
+    mu, wq = np.polynomial.legendre.leggauss(_N_MU)
+    noise = _noise_matrix(names, trs, shared_noise)
+    _, C_t = _field_covariance(cosmo, z, k, trs, effects, mu, noise)
+    Z_a, C_a = _field_covariance(cosmo, z, k, trs, analysis, mu, noise)
+    dC = _derivatives(cosmo, z, k, names, trs, analysis, mu, Z_a, params)
+    per_mode = per_mode_fisher(C_a, dC)
+    fisher = MultiTracerFisher(params, np.einsum("k,m,kmij->ij", nm, 0.5 * wq, per_mode),
+                               per_mode, mu)
+    M = np.linalg.solve(C_a[None], dC)                         # C⁻¹ ∂_i C
+    R = np.linalg.solve(C_a, C_t - C_a)                        # C⁻¹ ΔC
+    b = np.einsum("k,m,ikmab,kmba->i", nm, 0.5 * wq, M, R).real * 0.5
+    shift = fisher.covariance @ b
+    return dict(zip(params, shift.tolist())), fisher
 
 
 def bias_split_gain(cosmo, z, k, n_modes, b_mean, splits, nbar_totals, p=1.0, fnl=0.0,
