@@ -16,7 +16,10 @@ Regime of validity
   (a warning says so) when comparing with a theory that assumes an infinite volume.
 * One redshift: the whole mock is a snapshot at the effective z (growth, bias, f and the
   projection coefficients γ1, γ2 do not evolve across the survey; no light cone).
-* Poisson sampling is done per mesh cell (1 + Δ clipped at 0): mock galaxies are cell-resolved.
+* Poisson sampling is done per mesh cell: mock galaxies are cell-resolved. Cells with
+  1 + aΔ < 0 are clipped to 0, after the gain a of :func:`likelihood.simulate.fields.clip_gain`
+  that keeps the large-scale power of the clipped field equal to the Gaussian one to first order
+  (Price 1958); a warning gives the clipped fraction above 0.1 %.
 """
 from __future__ import annotations
 
@@ -64,7 +67,8 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
     Per mock i (random streams spawned from ``seed``, so mock i depends only on (seed, i)):
     δ_k ~ :func:`gaussian_field` (pk); if ``constraint`` (an :class:`ObserverConstraint`) is
     given, c(x_o) = ν σ_c is imposed by :func:`constrain_at_origin`; Δ_g = :func:`observed_field`
-    (A, B, F); optional :func:`poisson_sample` (nbar); :func:`measure_multipoles` with the window,
+    (A, B, F); optional Poisson counts with n̄ (``nbar``; clipping with the gain of
+    ``fields.clip_gain``, see the module notes); :func:`measure_multipoles` with the window,
     which subtracts the Poisson shot noise S ≈ 1/n̄ from ℓ = 0 unless ``subtract_shot_noise`` is
     False (then S is added back: the data convention ``data.shot_noise_subtracted: false``).
     Linear-theory Gaussian mocks: see the module notes for the regime of validity.
@@ -175,9 +179,9 @@ def multi_tracer_mocks(mesh, pk, tracers, spectra, edges, n_mocks=10, seed=0, wi
     Per mock i (streams spawned from ``seed``: mock i depends only on (seed, i)): one δ_k ~
     :func:`gaussian_field` (pk, zero above ``k_cut``); for each tracer X (a :class:`MeshTracer`
     in the dict ``tracers``) Δ_X = :func:`observed_field` with its own kernel, then, if X has an
-    n̄, independent Poisson counts N_X ~ Poisson(n̄_X H³ W [1 + Δ_X]₊) (its own stream; cells with
-    1 + Δ_X < 0 are clipped to 0 and a warning gives the largest clipped fraction over the
-    mocks when it exceeds 0.1 %); the spectra [((X, Y), ells), ...] are measured by
+    n̄, independent Poisson counts N_X ~ Poisson(n̄_X H³ W [1 + a_X Δ_X]₊) (its own stream; a_X
+    the gain of ``fields.clip_gain`` for the rms of Δ_X, see the module notes; a warning gives the
+    largest clipped fraction over the mocks when it exceeds 0.1 %); the spectra [((X, Y), ells), ...] are measured by
     :func:`likelihood.observation.estimator.measure_spectra` (autos: the Poisson shot noise
     S_X ≈ 1/n̄_X subtracted from ℓ = 0, the data convention ``data.shot_noise_subtracted: true``;
     crosses: nothing subtracted, the samples are independent; odd ℓ of a cross as Π_ℓ).
@@ -204,7 +208,7 @@ def multi_tracer_mocks(mesh, pk, tracers, spectra, edges, n_mocks=10, seed=0, wi
     p = _mesh_power(mesh, pk, k_cut, e)
     kern = {x: _mesh_kernel(mesh, tracers[x].A, tracers[x].B, f" of tracer {x}") for x in names}
     nbar = {x: tracers[x].nbar for x in names if tracers[x].nbar is not None}
-    vectors, meta, max_clip, max_gain = [], None, 0.0, 1.0
+    vectors, first, max_clip, max_gain = [], None, 0.0, 1.0
     for i, child in enumerate(np.random.SeedSequence(seed).spawn(n)):
         streams = child.spawn(1 + len(names))
         dk = gaussian_field(mesh, p, streams[0])
@@ -219,13 +223,13 @@ def multi_tracer_mocks(mesh, pk, tracers, spectra, edges, n_mocks=10, seed=0, wi
         del dk
         out = measure_spectra(mesh, fields, spectra, e, w, nbar=nbar, subtract_mean=subtract_mean)
         del fields
-        meta = next(iter(out.values()))
+        first = next(iter(out.values()))
         vectors.append(np.concatenate([out[(x, y)].values.ravel() for x, y, _ in specs]))
         if progress is not None:
             progress(i + 1, n)
     clip_warning(max_clip, stacklevel=3, gain=max_gain)
-    return MultiTracerMocks([((x, y), ells) for x, y, ells in specs], e, meta.k_eff,
-                            meta.n_modes, np.array(vectors), max_clip)
+    return MultiTracerMocks([((x, y), ells) for x, y, ells in specs], e, first.k_eff,
+                            first.n_modes, np.array(vectors), max_clip)
 
 
 def _mock_count(n_mocks):
