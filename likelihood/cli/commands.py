@@ -260,7 +260,8 @@ def cmd_forecast(args):
 
 def cmd_simulate(args):
     from ..simulate.survey import simulate_survey
-    simulate_survey(args.config, args.n, out=args.out, mesh_n=args.mesh, check=args.validate)
+    simulate_survey(args.config, args.n, out=args.out, mesh_n=args.mesh, check=args.validate,
+                    poisson=not args.no_poisson)
     return 0
 
 
@@ -313,7 +314,7 @@ def make_parser():
                    help="run a scan's points on a process pool of this size")
     s.set_defaults(func=cmd_forecast)
 
-    s = _sub(sub, "simulate", "Gaussian mock surveys measured with the FFT estimator",
+    s = _sub(sub, "simulate", "Poisson-sampled Gaussian mock surveys measured with the FFT estimator",
              "ergofit simulate configs/demo.yaml --n 10 --mesh 128")
     s.add_argument("config", help=cfg_help + " (the survey and fiducial model of the mocks)")
     s.add_argument("--n", type=_positive_int, default=10, help="number of mocks")
@@ -322,6 +323,8 @@ def make_parser():
     s.add_argument("--mesh", type=_positive_int, default=None, help="FFT cells per side")
     s.add_argument("--validate", action="store_true",
                    help="compare the mean of the mocks with the model they were made from")
+    s.add_argument("--no-poisson", action="store_true",
+                   help="mocks of the continuous field, without Poisson sampling (no shot noise)")
     s.set_defaults(func=cmd_simulate)
 
     s = _sub(sub, "window", "window multipoles Q_l(s) from a random catalogue",

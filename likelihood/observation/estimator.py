@@ -151,9 +151,10 @@ def _fft_at(mesh, arr, flat):
     return sfft.rfftn(arr, workers=-1).ravel()[flat].astype(np.complex128) * mesh.cell ** 3
 
 
-def _multipole_transforms(mesh, F, ells, flat, khat):
-    """F_ℓ(k) = H³ Σ_x F(x) e^{-ik·x} L_ℓ(k̂·x̂) at the selected modes, for ℓ in ``ells`` and 0."""
-    out = {0: _fft_at(mesh, F, flat)}
+def _multipole_transforms(mesh, F, ells, flat, khat, with_monopole=True):
+    """F_ℓ(k) = H³ Σ_x F(x) e^{-ik·x} L_ℓ(k̂·x̂) at the selected modes, for ℓ in ``ells`` (and 0
+    when ``with_monopole``)."""
+    out = {0: _fft_at(mesh, F, flat)} if with_monopole else {}
     higher = sorted(l for l in ells if l > 0)
     if not higher:
         return out
@@ -171,11 +172,6 @@ def _multipole_transforms(mesh, F, ells, flat, khat):
             acc += c * gk * _fft_at(mesh, Fz * gx, flat)
         out[ell] = acc
     return out
-
-
-def _binned(values, b, mult, nb):
-    num = np.bincount(b, weights=mult * values, minlength=nb)
-    return num
 
 
 def measure_multipoles(mesh, field, window_mask=None, edges=None, ells=(0, 2, 4), nbar=None,
@@ -227,6 +223,16 @@ def measure_multipoles(mesh, field, window_mask=None, edges=None, ells=(0, 2, 4)
         shot = 0.0
     else:
         G = F
+    bins = _bins(mesh, e)
+    Fl = _multipole_transforms(mesh, F, ells, bins["flat"], bins["khat"])
+    F0 = Fl[0] if G is F else _fft_at(mesh, G, bins["flat"])
+    vals = [_binned_multipole(Fl[ell], F0, ell, bins, i2) - (shot if ell == 0 else 0.0)
+            for ell in ells]
+    return _data_vector(mesh, e, ells, bins, vals, i2, shot, subtract_mean, "measure_multipoles")
+
+
+def _bins(mesh, e):
+    """The selected modes (``_mode_selection``), their per-bin counts and mean |k|."""
     flat, b, kmag, khat, mult = _mode_selection(mesh, e)
     nbins = e.size - 1
     counts = np.bincount(b, weights=mult, minlength=nbins)
@@ -235,20 +241,71 @@ def measure_multipoles(mesh, field, window_mask=None, edges=None, ells=(0, 2, 4)
         raise ErgofitError(f"edges: bin [{e[i]:.4g}, {e[i + 1]:.4g}) h/Mpc contains no Fourier mode "
                            f"of the mesh (k_f = {mesh.k_fundamental:.4g} h/Mpc); widen the bins")
     k_eff = np.bincount(b, weights=mult * kmag, minlength=nbins) / counts
-    Fl = _multipole_transforms(mesh, F, ells, flat, khat)
-    F0 = Fl[0] if G is F else _fft_at(mesh, G, flat)
-    vals = []
-    for ell in ells:
-        prod = Fl[ell] * np.conj(F0)
-        part = prod.imag if ell % 2 else prod.real
-        p = (2 * ell + 1) / i2 * np.bincount(b, weights=mult * part, minlength=nbins) / counts
-        if ell == 0:
-            p = p - shot
-        vals.append(p)
+    return {"flat": flat, "b": b, "khat": khat, "mult": mult, "counts": counts, "k_eff": k_eff,
+            "nbins": nbins}
+
+
+def _binned_multipole(Fl, F0, ell, bins, i2):
+    """(2ℓ+1)/I₂ <F_ℓ F_0*>_bin: real part for even ℓ, imaginary part (Π_ℓ) for odd ℓ."""
+    prod = Fl * np.conj(F0)
+    part = prod.imag if ell % 2 else prod.real
+    return (2 * ell + 1) / i2 * np.bincount(bins["b"], weights=bins["mult"] * part,
+                                            minlength=bins["nbins"]) / bins["counts"]
+
+
+def _data_vector(mesh, e, ells, bins, vals, i2, shot, subtract_mean, source):
     meta = {"estimator": "FFT local line of sight (end point)", "mesh_n": str(mesh.n),
             "box": f"{mesh.box:.8g}", "I2": f"{i2:.10e}", "shot_noise": f"{shot:.10e}",
             "subtract_mean": str(bool(subtract_mean))}
-    return DataVector(ells, e, k_eff, counts, np.array(vals), meta=meta, source="measure_multipoles")
+    return DataVector(ells, e, bins["k_eff"], bins["counts"], np.array(vals), meta=meta,
+                      source=source)
+
+
+def measure_spectra(mesh, fields, spectra, edges, window_mask=None, nbar=None,
+                    subtract_mean=True):
+    """Auto and cross multipoles of several tracers on one mesh, each transform computed once.
+
+    ``fields``: {name: field} (overdensity, or counts when the tracer's n̄ is given, as in
+    :func:`measure_multipoles`); ``spectra``: [((X, Y), ells), ...] (odd ℓ only for X ≠ Y);
+    ``nbar``: {name: n̄} for the tracers given as counts (others absent or None); one window for
+    all tracers. P̂_ℓ^XY = (2ℓ+1)/I₂ <F_ℓ^X F_0^Y*>_bin (line of sight at X's points), minus the
+    shot noise S_X of :func:`measure_multipoles` for ℓ = 0 of an auto spectrum; none for a cross
+    (independent samples). Identical to :func:`measure_multipoles` pair by pair.
+    Returns {(X, Y): DataVector} in the order of ``spectra``.
+    """
+    from ..covariance import spectra_list
+
+    specs = spectra_list(spectra)
+    e = check_edges(mesh, edges)
+    nbar = {} if nbar is None else dict(nbar)
+    try:
+        missing = sorted({t for x, y, _ in specs for t in (x, y)} - set(fields))
+    except TypeError:
+        raise ErgofitError("fields: expected a dict {tracer name: field on the mesh}") from None
+    if missing:
+        raise ErgofitError(f"fields: no field for tracer(s) {missing} named in the spectra")
+    w = window_weights(mesh, window_mask)
+    bins = _bins(mesh, e)
+    prepared, transforms = {}, {}
+    for x, y, ells in specs:
+        multipole_list(ells, f"spectrum ({x}, {y}) ells", max_ell=MAX_ELL)
+        for t in (x, y):
+            if t not in prepared:
+                prepared[t] = _estimator_field(mesh, fields[t], w, nbar.get(t), subtract_mean, t)
+                transforms[t] = {0: _fft_at(mesh, prepared[t][0], bins["flat"])}
+        need = [l for l in ells if l and l not in transforms[x]]
+        if need:
+            transforms[x].update(_multipole_transforms(mesh, prepared[x][0], need, bins["flat"],
+                                                       bins["khat"], with_monopole=False))
+    out = {}
+    for x, y, ells in specs:
+        _, shot, i2 = prepared[x]
+        shot = shot if x == y else 0.0
+        vals = [_binned_multipole(transforms[x][l], transforms[y][0], l, bins, i2)
+                - (shot if l == 0 else 0.0) for l in ells]
+        out[(x, y)] = _data_vector(mesh, e, ells, bins, vals, i2, shot, subtract_mean,
+                                   f"measure_spectra ({x}, {y})")
+    return out
 
 
 def _estimator_field(mesh, field, w, nbar, subtract_mean, name):

@@ -61,7 +61,8 @@ SMALL_SURVEY = {"survey": {"redshift": 1.0, "geometry": {"shape": "sphere", "rad
 def test_simulate_validate_is_a_real_test(tmp_path, write_config, capsys):
     """--validate compares the mocks with the model they were made from, using their own scatter
     (Hotelling's T², Hotelling 1931): it passes on mocks of the model and fails (p tiny) on
-    mocks made with another b1 (issue 15, item 4). 30 mocks for 12 data points."""
+    mocks made with another b1 (issue 15, item 4). 30 mocks for 12 data points, of the continuous
+    field (--no-poisson: the Hotelling test itself, without shot noise or clipping)."""
     from likelihood.config.schema import load_config
     from likelihood.data import DataVector
     from likelihood.simulate.survey import choose_mesh, validation_model
@@ -70,7 +71,7 @@ def test_simulate_validate_is_a_real_test(tmp_path, write_config, capsys):
 
     cfg = write_config(SMALL_SURVEY)
     out = tmp_path / "mocks"
-    assert main(["simulate", cfg, "--n", "30", "--out", str(out), "--validate"]) == 0
+    assert main(["simulate", cfg, "--n", "30", "--out", str(out), "--validate", "--no-poisson"]) == 0
     assert len(list(out.glob("mock_*.txt"))) == 30
     assert (out / "covariance.txt").exists() and (out / "validation.png").exists()
     text = capsys.readouterr().out
@@ -81,16 +82,40 @@ def test_simulate_validate_is_a_real_test(tmp_path, write_config, capsys):
     # the model has no noise term: noise-free mocks are compared with noise-free theory
     lik = build(load_config(cfg))
     mesh = choose_mesh(lik)
-    model, vlik, k_ir = validation_model(load_config(cfg), mesh)
+    model, vlik, k_ir = validation_model(load_config(cfg), mesh, poisson=False)
     assert k_ir == pytest.approx(2 * np.pi / mesh.box, rel=1e-12)
     assert vlik.sn_sub == 0.0
     # mocks of another model (b1 = 2.4 instead of 2.0) fail the same validation
     other = write_config(dict(SMALL_SURVEY, tracer={"b1": 2.4}), "other.yaml")
     out2 = tmp_path / "other"
-    assert main(["simulate", other, "--n", "30", "--out", str(out2)]) == 0
+    assert main(["simulate", other, "--n", "30", "--out", str(out2), "--no-poisson"]) == 0
     mocks = [DataVector.load(f) for f in sorted(out2.glob("mock_*.txt"))]
     bad = validate(mocks, model)
     assert bad["p_value_total"] < 1e-6, bad
+
+
+def test_simulate_poisson_by_default(tmp_path, write_config, capsys):
+    """Default mocks are Poisson sampled (n̄ = 3e-4): their monopole keeps the model's mean (1/n̄
+    subtracted as data.shot_noise_subtracted: true; the ~4 % of cells with 1 + Δ < 0 clipped
+    after the first-order gain of likelihood.simulate.fields.clip_gain, Price 1958) and their
+    variance exceeds that of the same fields without noise by about (1 + 1/(n̄ P_0))² =
+    1.15–1.23 in these bins (FKP 1994; n̄P_0 = 9–14 here)."""
+    from likelihood.data import DataVector
+
+    small = dict(SMALL_SURVEY, data={"mock": {"k_min": 0.012, "k_max": 0.05, "n_bins": 6}})
+    cfg = write_config(small)
+    out, out_g = tmp_path / "poisson", tmp_path / "gauss"
+    assert main(["simulate", cfg, "--n", "30", "--out", str(out), "--validate"]) == 0
+    text = capsys.readouterr().out
+    assert "Poisson sampled with n̄ = 0.0003" in text and "shot noise as in the mocks" in text
+    res = json.loads((out / "validation.json").read_text())
+    assert res["p_value"]["0"] > 1e-3, res
+    assert main(["simulate", cfg, "--n", "30", "--out", str(out_g), "--no-poisson"]) == 0
+    p0 = np.array([DataVector.load(f).values[0] for f in sorted(out.glob("mock_*.txt"))])
+    g0 = np.array([DataVector.load(f).values[0] for f in sorted(out_g.glob("mock_*.txt"))])
+    ratio = p0.var(0, ddof=1) / g0.var(0, ddof=1)
+    assert 1.08 < ratio.mean() < 1.35, ratio
+    assert abs(p0.mean() / g0.mean() - 1) < 0.02        # the clipping does not bias the power
 
 
 def test_simulate_validate_says_when_too_few_mocks(tmp_path, write_config, capsys):
