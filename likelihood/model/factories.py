@@ -198,6 +198,9 @@ def warn_regime(srv, cosmo, dv, mask, ic):
 def build(config):
     """Build the likelihood of a validated config (or a path to a YAML file)."""
     cfg = config if isinstance(config, Config) else load_config(config)
+    if "tracers" in cfg:                      # several tracers: likelihood.model.multitracer
+        from .multitracer import build_multi
+        return build_multi(cfg)
     params = parameters(cfg)
     cosmo = cosmology(cfg)
     srv = survey(cfg, cosmo)

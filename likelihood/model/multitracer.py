@@ -1,0 +1,488 @@
+"""Several tracers in one fit: auto and cross spectra, their fast-path templates, the likelihood.
+
+Model of a spectrum X × Y (plane-parallel engine)
+-------------------------------------------------
+Each tracer has the kernel Z_X = A_X + iμB_X + Fμ² of :mod:`likelihood.theory.tracer` and the
+cross power P_XY(k, μ) = Z_X Z_Y^* P_m (even ℓ real, odd ℓ = iΠ_ℓ: the Doppler dipole and octupole,
+McDonald 2009; Bonvin, Hui & Gaztañaga 2014). The observation operator of the spectrum is a
+:class:`~likelihood.observation.matrix.WindowMatrix` from the theory multipoles (0, 2, 4 for an
+auto spectrum; 0..4 for a cross spectrum) to its own bins and multipoles; the Wilson et al. (2017)
+coupling (ℓ ℓ' L; 0 0 0)² holds for odd ℓ too. Both populations fill the same survey, so they
+share the window; each tracer's own mean is estimated, and in the global form of the integral
+constraint the cross spectrum loses P̂^XY_0(0) W²_ℓ(k)/W²_0(0), the same linear operator as an
+auto spectrum. Shot noise: A_sn,X/n̄_X (white-noise response of the operator) in the auto
+spectrum of X; none in a cross spectrum of disjoint populations; A_sn,XY n̄_XY/(n̄_X n̄_Y) when the
+populations share n̄_XY objects per volume (``shared_nbar``). The flat Poisson 1/n̄_X subtracted
+from measured auto monopoles (``data.shot_noise_subtracted``) is moved to the data side.
+
+Fast path: Z_X = Σ_a x^X_a Z^X_a (basis of :func:`likelihood.model.templates.basis_kernels`,
+x^X = (1, b1_X, f_NL(b1_X − p_X), b_e,X, 𝒬_X)), hence
+
+    model_XY = Σ_ab x^X_a x^Y_b T^XY_ab + Σ noise amplitudes × noise rows,
+
+T^XY_ab = M_XY[multipoles of Z^X_a Z^Y_b^* P_m] (a ≤ b symmetrised for autos). The direct path
+recomputes every spectrum from the tracers and must agree to 1e-10 (tests).
+"""
+from __future__ import annotations
+
+import functools
+import warnings
+
+import numpy as np
+
+from ..config.multitracer import parameter_table
+from ..data import DataVector, check_covariance, condition_number
+from ..errors import ConfigError, DataError, ErgofitError
+from ..observation.matrix import KBins, WindowMatrix, theory_k_grid
+from ..spectra import SpectraVector, load_spectra, load_spectra_covariance, pair_label
+from ..theory import tracer as tr
+from .fiducial import COSMO_PARAMS, held_values
+from .likelihood import Likelihood
+from .templates import basis_kernels
+
+ELLS_AUTO = (0, 2, 4)
+ELLS_CROSS = (0, 1, 2, 3, 4)
+
+
+def covariance_function():
+    """``multi_tracer_covariance`` of likelihood.covariance, or the interim stand-in."""
+    try:
+        from ..covariance import multi_tracer_covariance
+    except ImportError:
+        from ..covariance_interim import multi_tracer_covariance
+    return multi_tracer_covariance
+
+
+class Spectrum:
+    """One fitted spectrum: pair, tracer indices, operator, noise row, mask, data part."""
+
+    def __init__(self, pair, ix, iy, part, operator, mask, noise_name, noise_scale, sn_sub):
+        self.pair, self.ix, self.iy, self.part = tuple(pair), ix, iy, part
+        self.auto = ix == iy
+        self.operator, self.mask = operator, mask
+        self.noise_name, self.noise_scale = noise_name, noise_scale
+        n_b = part.n_bins
+        self.monopole = np.repeat(np.array([l == 0 for l in part.ells], float), n_b)
+        #: the flat 1/n̄ subtracted from a measured auto monopole (0 for crosses)
+        self.sn_flat = self.monopole * noise_scale * sn_sub if self.auto else 0.0 * self.monopole
+        self.noise_row = (operator.white_noise_response() * noise_scale
+                          if noise_name is not None else None)
+
+    @property
+    def label(self):
+        return pair_label(self.pair)
+
+
+class MultiForwardModel:
+    """Model vector of several spectra of several tracers (direct path and templates).
+
+    tracers: the config's ``tracers`` entries; spectra: [Spectrum]; held: floats of every
+    parameter not sampled; lin_free: {tracer name: sampled b_e/s}.
+    """
+
+    def __init__(self, survey, tracers, spectra, k_theory, held, lin_free, cosmology, cosmo_keys):
+        self.survey, self.z, self.effects = survey, survey.z, survey.effects
+        self.tracers, self.spectra = tracers, spectra
+        self.names = [t["name"] for t in tracers]
+        self.k_theory = k_theory
+        self.held, self.lin_free = held, lin_free
+        self.cosmology, self.cosmo_keys = cosmology, list(cosmo_keys)
+        self.mask = np.concatenate([s.mask for s in spectra])
+        self.sn_flat = np.concatenate([s.sn_flat for s in spectra])
+        self.offsets = np.cumsum([0] + [s.mask.size for s in spectra])
+
+    # --- direct path ----------------------------------------------------------------------------
+    def tracer(self, values, name, i=0):
+        t = self.tracers[self.names.index(name)]
+
+        def g(key):
+            v = values[key]
+            return float(v[i] if np.ndim(v) else v)
+        return tr.Tracer(b1=g(f"b1_{name}"), fnl=g("fnl"), p=t["p"], nbar=t["nbar"],
+                         b_e=g(f"b_e_{name}"), s=g(f"s_{name}"), name=name)
+
+    def full(self, values, cosmo_keys=None):
+        """(n, N) full (unmasked) model vectors by the direct path, the constant −1/n̄ of
+        subtracted auto monopoles included (as in the single-tracer model)."""
+        cosmo_keys = self.cosmo_keys if cosmo_keys is None else cosmo_keys
+        cosmo = self.cosmology({k: float(np.atleast_1d(values[k])[0]) for k in cosmo_keys if k in values})
+        n = max([np.size(v) for v in values.values()] + [1])
+        out = []
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", tr.PlaneParallelWarning)
+            for i in range(n):
+                parts = []
+                for s in self.spectra:
+                    tx, ty = self.tracer(values, s.pair[0], i), self.tracer(values, s.pair[1], i)
+                    if s.auto:
+                        pl = tr.multipoles(cosmo, self.z, self.k_theory, tx, effects=self.effects,
+                                           ells=ELLS_AUTO, shot_noise=False)
+                    else:
+                        pl = tr.cross_multipoles(cosmo, self.z, self.k_theory, tx, ty,
+                                                 effects=self.effects, ells=ELLS_CROSS)
+                    m = s.operator(pl) - s.sn_flat
+                    if s.noise_name is not None:
+                        amp = values[s.noise_name]
+                        m = m + float(amp[i] if np.ndim(amp) else amp) * s.noise_row
+                    parts.append(m)
+                out.append(np.concatenate(parts))
+        return np.array(out)
+
+    # --- templates ------------------------------------------------------------------------------
+    def bases(self, cosmo, k):
+        return {t["name"]: basis_kernels(cosmo, self.z, k, self.effects, self.held[f"b_e_{t['name']}"],
+                                         self.held[f"s_{t['name']}"], self.lin_free[t["name"]])
+                for t in self.tracers}
+
+    def templates(self, cosmo):
+        """Unwhitened template rows over the masked vector, and the index maps of :meth:`design`."""
+        k = self.k_theory
+        pm = cosmo.power(k, self.z)
+        bases = self.bases(cosmo, k)
+        col0 = {}                                  # first column of each tracer's x in X
+        pos = 0
+        for name in self.names:
+            col0[name] = pos
+            pos += len(bases[name])
+        n_masked = int(self.mask.sum())
+        rows, ia, ib, noise_names = [], [], [], []
+        starts = np.concatenate([[0], np.cumsum([s.mask.sum() for s in self.spectra])])
+        for j, s in enumerate(self.spectra):
+            bx, by = bases[s.pair[0]], bases[s.pair[1]]
+            pairs = ([(a, b) for a in range(len(bx)) for b in range(a, len(bx))] if s.auto else
+                     [(a, b) for a in range(len(bx)) for b in range(len(by))])
+            for a, b in pairs:
+                pab = tr.pair_multipoles(bx[a][1], by[b][1], pm, ELLS_AUTO if s.auto else ELLS_CROSS)
+                if s.auto and a != b:
+                    pab = pab + tr.pair_multipoles(bx[b][1], bx[a][1], pm, ELLS_AUTO)
+                row = np.zeros(n_masked)
+                row[starts[j]:starts[j + 1]] = s.operator(pab)[s.mask]
+                rows.append(row)
+                ia.append(col0[s.pair[0]] + a)
+                ib.append(col0[s.pair[1]] + b)
+        n_pairs = len(rows)
+        for j, s in enumerate(self.spectra):
+            if s.noise_name is not None:
+                row = np.zeros(n_masked)
+                row[starts[j]:starts[j + 1]] = s.noise_row[s.mask]
+                rows.append(row)
+                noise_names.append(s.noise_name)
+        return dict(M=np.array(rows), ia=np.array(ia), ib=np.array(ib), n_pairs=n_pairs,
+                    pair_list=list(zip(ia, ib)), noise_names=noise_names,
+                    sigma8=cosmo.sigma8, growth=cosmo.growth_factor(self.z) / cosmo.growth_factor(0.0))
+
+    def coefficients(self, values):
+        """(n, Σ_X n_basis_X) coefficient vectors x^X of all tracers side by side."""
+        cols = []
+        for t in self.tracers:
+            name = t["name"]
+            b1 = values[f"b1_{name}"]
+            cols += [1.0, b1]
+            if "fnl" in self.effects:
+                cols.append(values["fnl"] * (b1 - t["p"]))
+            for par in self.lin_free[name]:
+                cols.append(values[f"{par}_{name}"])
+        n = max(np.size(c) for c in cols)
+        x = np.empty((n, len(cols)))
+        for j, c in enumerate(cols):
+            x[:, j] = c
+        return x
+
+    def design(self, values, tpl):
+        """(n, n_templates) coefficients of the template rows ``tpl["M"]``."""
+        x = self.coefficients(values)
+        out = np.empty((x.shape[0], tpl["M"].shape[0]))
+        npair = tpl["n_pairs"]
+        out[:, :npair] = x[:, tpl["ia"]] * x[:, tpl["ib"]]
+        for j, name in enumerate(tpl["noise_names"]):
+            out[:, npair + j] = values[name]
+        return out
+
+
+class MultiLikelihood(Likelihood):
+    """Gaussian likelihood of several spectra of several tracers (same public surface as
+    :class:`~likelihood.model.likelihood.Likelihood`; parameters named per tracer)."""
+
+    def __init__(self, cfg, params, cosmo, survey, data_full, forward, covariance_full, fiducial,
+                 known):
+        self.config, self.config_hash = cfg, cfg.hash
+        self.params, self.parameter_names = params, params.names
+        self.labels, self.prior_bounds = params.labels, params.bounds
+        self.start, self.start_scale = params.start, params.start_scale
+        self.survey, self.z, self.effects = survey, survey.z, survey.effects
+        self.window, self.volume, self.observer_on = survey.window, survey.volume, False
+        self.observer = None
+        self.cosmo = cosmo
+        self.cosmo_free = [n for n in self.parameter_names if n in COSMO_PARAMS]
+        self.forward, self.known, self.fiducial = forward, known, fiducial
+        self.data_full, self.mask = data_full, forward.mask
+        self.covariance_full, self.mock_cov, self.n_mocks = covariance_full, None, None
+        self.t_likelihood, self.precision_scale, self.percival_m1 = False, 1.0, None
+        self.data = data_full.flat[self.mask]
+        cov = covariance_full[np.ix_(self.mask, self.mask)]
+        self.chol = check_covariance(cov, n=self.data.size, source="covariance")
+        self.covariance = cov
+        self.condition_number = condition_number(cov)
+        self.dof = int(self.data.size - len(self.parameter_names))
+        self._fixed_floats = forward.held
+        self._chol_inv = np.linalg.inv(self.chol)
+        self._sn_shift = forward.sn_flat[self.mask]
+        self._d_w = self._chol_inv @ (self.data + self._sn_shift)
+        self._dd = float(self._d_w @ self._d_w)
+        self._templates = self._whitened_templates(cosmo)
+        # scalar fast path: which parameter feeds each x column (name, p or None)
+        self._x_spec = []
+        for t in forward.tracers:
+            n = t["name"]
+            self._x_spec += [(None, None), (f"b1_{n}", None)]
+            if "fnl" in self.effects:
+                self._x_spec.append((f"b1_{n}", t["p"]))
+            self._x_spec += [(f"{par}_{n}", None) for par in forward.lin_free[n]]
+
+    def _log_prob_single(self, theta):
+        lo, hi, mean, inv_sig, _ = self.params.prior_arrays()
+        th = theta.tolist()
+        lp = 0.0
+        for i, v in enumerate(th):
+            if not lo[i] <= v <= hi[i]:
+                return -np.inf
+            if inv_sig[i]:
+                lp -= 0.5 * ((v - mean[i]) * inv_sig[i]) ** 2
+        vals = dict(self._fixed_floats)
+        vals.update(zip(self.parameter_names, th))
+        fnl = vals["fnl"]
+        x = [1.0 if name is None else (vals[name] if p is None else fnl * (vals[name] - p))
+             for name, p in self._x_spec]
+        tpl = self._templates
+        c = [x[a] * x[b] for a, b in tpl["pair_list"]] + [vals[n] for n in tpl["noise_names"]]
+        c = np.array(c)
+        chi2 = self._dd - 2.0 * (c @ tpl["g"]) + c @ (tpl["G"] @ c)
+        res = lp - 0.5 * chi2
+        return res if res == res else -np.inf
+
+    @property
+    def varied_names(self):
+        names = set(self.parameter_names) | {n for n in self.known if n.startswith(("b1_", "shot_noise_"))}
+        if "fnl" in self.effects:
+            names.add("fnl")
+        return names
+
+    def _values(self, params):
+        vals = {k: np.atleast_1d(float(v)) for k, v in self._fixed_floats.items()}
+        varied = self.varied_names
+        for k, v in params.items():
+            if k not in self.known:
+                from ..config.parameters import suggest
+                raise ConfigError(f"unknown parameter '{k}'{suggest(k, self.known)}")
+            x = np.atleast_1d(np.asarray(v, float))
+            if k not in varied and not np.all(x == self._fixed_floats[k]):
+                raise ConfigError(f"parameter '{k}' = {float(x[0]):g} cannot be varied by this "
+                                  f"likelihood: it is held at {self._fixed_floats[k]:g}; sample it "
+                                  f"(parameters.{k}) to vary it")
+            vals[k] = x
+        return vals
+
+    def model_vector(self, params, direct=True):
+        vals = self._values(params)
+        if direct:
+            return self.forward.full(vals)[0][self.mask]
+        tpl = self._templates
+        return (self.forward.design(vals, tpl) @ tpl["M"])[0] - self._sn_shift
+
+    derived_names = []
+    derived_labels = []
+
+    def derived(self, theta):
+        return np.empty((np.atleast_2d(theta).shape[0], 0))
+
+    def observables(self):
+        """Data per (spectrum, multipole) for plots: spectra, ells, k, data, sigma (masked)."""
+        sig = np.sqrt(np.diag(self.covariance))
+        out = dict(spectra=[], ells=[], k=[], data=[], sigma=[])
+        pos = 0
+        for s in self.forward.spectra:
+            m2 = s.mask.reshape(len(s.part.ells), -1)
+            for j, l in enumerate(s.part.ells):
+                n = int(m2[j].sum())
+                if not n:
+                    continue
+                out["spectra"].append(s.label)
+                out["ells"].append(l)
+                out["k"].append(s.part.k_eff[m2[j]])
+                out["data"].append(self.data[pos:pos + n])
+                out["sigma"].append(sig[pos:pos + n])
+                pos += n
+        return out
+
+    def describe(self):
+        cfg = self.config
+        lines = [f"run: {cfg['run']}  (config hash {self.config_hash})",
+                 f"survey: z = {self.z:g}, geometry {cfg['survey']['geometry']['shape']}, volume "
+                 f"{self.volume:.4g} (Mpc/h)^3; window: {'yes' if self.window is not None else 'no'}, "
+                 f"integral constraint: {self.survey.ic}",
+                 "tracers: " + "; ".join(f"{t['name']} (nbar {t['nbar']:g} (h/Mpc)^3, b1 {t['b1']:g}, "
+                                         f"p {t['p']:g})" for t in self.forward.tracers),
+                 f"effects on: {', '.join(self.effects) or 'none'}",
+                 f"data: {self.data.size} points in {len(self.forward.spectra)} spectra"]
+        for s in self.forward.spectra:
+            k = s.part.k_eff[s.mask.reshape(len(s.part.ells), -1).any(0)]
+            lines.append(f"  {s.label:<16s} ells {list(s.part.ells)}, k in [{k.min():.4g}, {k.max():.4g}] "
+                         f"h/Mpc, {int(s.mask.sum())} points"
+                         + (f", noise {s.noise_name}" if s.noise_name else ""))
+        lines.append(f"covariance: {cfg['covariance']['kind']}, condition number {self.condition_number:.3g}")
+        lines.append("sampled parameters:")
+        for p in self.params.free:
+            lines.append(f"  {p.name:<18s} {p.prior.describe():<30s} start {p.start:g}")
+        if self.params.fixed:
+            lines.append("fixed: " + ", ".join(f"{k} = {v:g}" for k, v in self.params.fixed.items()))
+        return "\n".join(lines)
+
+
+# --- factories --------------------------------------------------------------------------------
+def fiducial_values(cfg, known):
+    """Fiducial values of a multi-tracer config: the table's defaults (tracers entries) < fixed
+    parameters < mock truth."""
+    vals = {n: info.default for n, info in known.items()}
+    vals.update(cfg["fixed"])
+    mock = cfg["data"].get("mock")
+    if mock:
+        vals.update(mock["truth"])
+    return vals
+
+
+def data_spectra(cfg, srv):
+    """The data vector of ``data.file`` (a multi-tracer file, or a single-tracer file when the
+    config has one tracer), reordered to the config's spectra; or empty bins for ``data.mock``."""
+    names = [t["name"] for t in cfg["tracers"]]
+    pairs = [tuple(s["pair"]) for s in cfg["spectra"]]
+    d = cfg["data"]
+    if "file" in d:
+        sv = load_spectra(cfg.resolve(d["file"]), names[0] if len(names) == 1 else None)
+        if set(sv.tracers) != set(names):
+            raise DataError(f"{d['file']}: the file's tracers {list(sv.tracers)} differ from the "
+                            f"config's {names}")
+        parts = []
+        for pair, spec in zip(pairs, cfg["spectra"]):
+            i = sv.index(pair)
+            if i is None:
+                raise DataError(f"{d['file']}: no spectrum {pair_label(pair)} (the file has "
+                                f"{', '.join(pair_label(p) for p in sv.pairs)})")
+            if sv.pairs[i] != pair:
+                raise DataError(f"{d['file']}: spectrum {pair_label(sv.pairs[i])} is stored as "
+                                f"<{sv.pairs[i][0]} {sv.pairs[i][1]}^*>; write the config pair in "
+                                f"that order, [{sv.pairs[i][0]}, {sv.pairs[i][1]}] (odd multipoles "
+                                "change sign with the order)")
+            missing = [l for l in spec["ells"] if l not in sv.parts[i].ells]
+            if missing:
+                raise DataError(f"{d['file']}: spectrum {pair_label(pair)}: the config asks for "
+                                f"ells {missing} but the file has {list(sv.parts[i].ells)}")
+            parts.append(sv.parts[i])
+        return SpectraVector(sv.tracers, pairs, parts, sv.meta, source=sv.source)
+    m = d["mock"]
+    edges = np.linspace(m["k_min"], m["k_max"], m["n_bins"] + 1)
+    kb = KBins.from_edges(edges, volume=srv.volume)
+    parts = [DataVector(tuple(s["ells"]), edges, kb.k_eff, kb.n_modes,
+                        np.zeros((len(s["ells"]), edges.size - 1)), source="mock")
+             for s in cfg["spectra"]]
+    return SpectraVector(names, pairs, parts, source="mock")
+
+
+def spectra_models(cfg, srv, sv, k_theory):
+    """[Spectrum] of the config: operator, mask and noise row of each fitted spectrum."""
+    nbar = {t["name"]: t["nbar"] for t in cfg["tracers"]}
+    out = []
+    names = [t["name"] for t in cfg["tracers"]]
+    for spec, pair, part in zip(cfg["spectra"], sv.pairs, sv.parts):
+        x, y = pair
+        auto = x == y
+        bins = KBins(part.edges, part.k_eff, part.n_modes)
+        op = WindowMatrix(k_theory, ELLS_AUTO if auto else ELLS_CROSS, bins, part.ells,
+                          window=srv.window, ic=srv.ic)
+        mask = part.mask(tuple(spec["ells"]), spec.get("k_min"), spec.get("k_max"))
+        if auto:
+            noise_name, scale = f"shot_noise_{x}", 1.0 / nbar[x]
+        elif "shared_nbar" in spec:
+            noise_name, scale = f"shot_noise_{x}_{y}", spec["shared_nbar"] / (nbar[x] * nbar[y])
+        else:
+            noise_name, scale = None, 0.0
+        out.append(Spectrum(pair, names.index(x), names.index(y), part, op, mask, noise_name, scale,
+                            cfg["data"]["shot_noise_subtracted"]))
+    return out
+
+
+def gaussian_covariance(cfg, sv, cosmo, forward, fiducial):
+    """Analytic Gaussian covariance of all spectra at the fiducial model (common k bins)."""
+    first = sv.parts[0]
+    for pair, p in zip(sv.pairs, sv.parts):
+        if not np.array_equal(p.edges, first.edges):
+            raise DataError(f"{sv.source}: covariance.kind: gaussian needs the same k bins for every "
+                            f"spectrum ({pair_label(pair)} differs); give a covariance file")
+    k = first.k_eff
+    pm = cosmo.power(k, forward.z)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", tr.PlaneParallelWarning)
+        kern = {n: tr.kernel(cosmo, forward.z, k, forward.tracer(fiducial, n), effects=forward.effects)
+                for n in forward.names}
+
+    def pkmu(a, b, mu):
+        za, zb = kern[a], kern[b]
+        m = mu[None, :]
+        return ((za.A[:, None] + 1j * m * za.B[:, None] + za.F * m ** 2)
+                * (zb.A[:, None] - 1j * m * zb.B[:, None] + zb.F * m ** 2) * pm[:, None])
+
+    noise = {}
+    for s in forward.spectra:
+        if s.noise_name is not None:
+            noise[s.pair] = s.noise_scale
+    spectra = [(pair, part.ells) for pair, part in zip(sv.pairs, sv.parts)]
+    return covariance_function()(first.n_modes, spectra, pkmu, noise)
+
+
+def build_multi(cfg):
+    """The :class:`MultiLikelihood` of a validated multi-tracer config."""
+    from . import factories as fac
+    known = parameter_table(cfg)
+    params = fac.parameters(cfg)
+    cosmo = fac.cosmology(cfg)
+    srv = fac.survey(cfg, cosmo)
+    fiducial = fiducial_values(cfg, known)
+    sv = data_spectra(cfg, srv)
+    k_theory = theory_k_grid()
+    spectra = spectra_models(cfg, srv, sv, k_theory)
+    cosmo_free = [n for n in params.names if n in COSMO_PARAMS]
+    forward = MultiForwardModel(
+        srv, cfg["tracers"], spectra, k_theory, held=held_values(fiducial, params.fixed),
+        lin_free={t["name"]: [p for p in ("b_e", "s") if params.is_free(f"{p}_{t['name']}")]
+                  for t in cfg["tracers"]},
+        cosmology=functools.partial(fac.cosmology, cfg),
+        cosmo_keys=[k for k in COSMO_PARAMS if k in cosmo_free or k in cfg["fixed"]])
+    for s in spectra:
+        fac.warn_regime(srv, cosmo, s.part, s.mask, srv.ic)
+    kind = cfg["covariance"]["kind"]
+    if kind == "file":
+        cov = load_spectra_covariance(cfg.resolve(cfg["covariance"]["file"]), sv)
+    elif kind == "gaussian":
+        cov = gaussian_covariance(cfg, sv, cosmo, forward, fiducial)
+    else:
+        raise ConfigError(f"{cfg.path}: covariance.kind: {kind} is not available with several "
+                          "tracers yet; use gaussian or file")
+    if cfg["data"].get("mock") is not None:
+        m = cfg["data"]["mock"]
+        truth = {k: np.atleast_1d(v) for k, v in fiducial.items()}
+        keys = [k for k in COSMO_PARAMS if k in m["truth"] or k in cosmo_free or k in cfg["fixed"]]
+        mean = forward.full(truth, cosmo_keys=keys)[0]
+        if m["noise"]:
+            rng = np.random.default_rng(m["seed"])
+            mean = mean + np.linalg.cholesky(cov) @ rng.standard_normal(mean.size)
+        parts, pos = [], 0
+        for p in sv.parts:
+            n = p.flat.size
+            parts.append(DataVector(p.ells, p.edges, p.k_eff, p.n_modes,
+                                    mean[pos:pos + n].reshape(p.values.shape), source="mock"))
+            pos += n
+        meta = {"generated": "ergofit mock", "seed": m["seed"], "noise": m["noise"]}
+        meta.update({f"truth.{k}": v for k, v in m["truth"].items()})
+        sv = SpectraVector(sv.tracers, sv.pairs, parts, meta, source="mock")
+        for s, p in zip(spectra, parts):
+            s.part = p
+    return MultiLikelihood(cfg, params, cosmo, srv, sv, forward, cov, fiducial, known)
