@@ -70,6 +70,13 @@ def _parse_spectrum_line(path, text):
     return (names[0], names[1]), ells
 
 
+def _check_odd(src, pair, ells):
+    odd = [l for l in ells if l % 2]
+    if pair[0] == pair[1] and odd:
+        raise DataError(f"{src}: auto spectrum {pair[0]} has odd multipoles {odd}; an auto "
+                        "spectrum is even in mu (odd ell only in cross spectra)")
+
+
 @dataclass
 class SpectraVector:
     """Several spectra: ``tracers`` (names), ``pairs`` [(X, Y)], ``parts`` [DataVector] (same order)."""
@@ -104,10 +111,7 @@ class SpectraVector:
             if key in seen:
                 raise DataError(f"{src}: spectrum {pair_label(pair)} is given twice")
             seen.add(key)
-            odd = [l for l in part.ells if l % 2]
-            if pair[0] == pair[1] and odd:
-                raise DataError(f"{src}: auto spectrum {pair[0]} has odd multipoles {odd}; an auto "
-                                "spectrum is even in mu (odd ell only in cross spectra)")
+            _check_odd(src, pair, part.ells)
 
     # -- views ------------------------------------------------------------------------------
     @property
@@ -174,6 +178,8 @@ class SpectraVector:
                             "line per spectrum")
         tracers = tuple(header["tracers"][0].split())
         specs = [_parse_spectrum_line(path, s) for s in header["spectrum"]]
+        for pair, ells in specs:               # header checks before any row is read
+            _check_odd(path, pair, ells)
         rows = {}
         try:
             with open(path, encoding="utf-8") as fh:
