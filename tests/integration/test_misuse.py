@@ -158,3 +158,70 @@ def test_mock_covariance_workflow_as_documented(tmp_path, capsys, monkeypatch):
     lik = likelihood.build(path)
     assert lik.n_mocks == 20                          # covariance.txt not counted as a mock
     assert lik.precision_scale == pytest.approx((20 - 12 - 2) / (20 - 1), rel=1e-12)
+
+
+# --- several tracers: the two-tracer demo config (configs/multi_demo.yaml) with its data files ---
+with open(os.path.join(DEMO, "multi_demo.yaml")) as fh:
+    MULTI = yaml.safe_load(fh)
+
+
+def _spectrum(i, key, value):
+    def change(cfg):
+        cfg["spectra"][i][key] = value
+    return change
+
+
+def _rename_tracer(cfg):
+    cfg["tracers"][1]["name"] = "dim"
+    for s in cfg["spectra"]:
+        s["pair"] = ["dim" if t == "faint" else t for t in s["pair"]]
+    for key in list(cfg["parameters"]):
+        if key.endswith("_faint"):
+            cfg["parameters"][key.replace("_faint", "_dim")] = cfg["parameters"].pop(key)
+
+
+def _drop_auto(cfg):
+    cfg["spectra"] = cfg["spectra"][:2]
+    cfg["covariance"] = {"kind": "gaussian"}
+
+
+MULTI_CASES = [
+    ("unknown-tracer", _spectrum(1, "pair", ["bright", "faynt"]), "check",
+     "spectra[1].pair: unknown tracer 'faynt' (did you mean 'faint'?)"),
+    ("odd-ell-auto", _spectrum(0, "ells", [0, 1, 2]), "check",
+     "spectra[0].ells: odd multipoles [1] in an auto spectrum"),
+    ("same-name", lambda c: c["tracers"][1].update(name="bright"), "check",
+     "tracers: two tracers are named 'bright'"),
+    ("header-tracers", _rename_tracer, "check", "the file's tracers ['bright', 'faint'] differ"),
+    ("header-ells", _spectrum(1, "ells", [0, 1, 2, 3, 4]), "check",
+     "spectrum bright x faint: the config asks for ells [4]"),
+    ("header-order", _spectrum(1, "pair", ["faint", "bright"]), "check",
+     "write the config pair in that order, [bright, faint]"),
+    ("cross-without-auto", _drop_auto, "check", "cross spectrum bright x faint without the auto "
+     "spectrum of faint"),
+    ("spectrum-twice", lambda c: c["spectra"].append({"pair": ["faint", "bright"]}), "check",
+     "spectrum faint x bright is listed twice"),
+    ("tracer-and-tracers", lambda c: c.update(tracer={"b1": 2.0}), "check",
+     "tracer: not allowed together with tracers"),
+    ("per-tracer-typo", lambda c: c["parameters"].update(b1_brite={"flat": [0, 3]}), "check",
+     "unknown parameter 'b1_brite' (did you mean 'b1_bright'?)"),
+    ("name-underscore", lambda c: c["tracers"][0].update(name="very_bright"), "check",
+     "tracers[0].name: expected a letter then letters/digits"),
+]
+
+
+@pytest.mark.parametrize("case", MULTI_CASES, ids=[c[0] for c in MULTI_CASES])
+def test_malformed_multi_tracer_input_exits_2_with_one_line(case, tmp_path, capsys, monkeypatch):
+    _, change, command, words = case
+    for name in ("multi_demo_data.txt", "multi_demo_cov.txt"):
+        shutil.copy(os.path.join(DEMO, name), tmp_path / name)
+    cfg = copy.deepcopy(MULTI)
+    change(cfg)
+    monkeypatch.chdir(tmp_path)
+    before = sorted(os.listdir(tmp_path))
+    path = _write(tmp_path, cfg)
+    code = main([command, path])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2
+    assert len([l for l in err if "error:" in l]) == 1 and words in err[-1], err
+    assert sorted(os.listdir(tmp_path)) == sorted(before + ["c.yaml"])
