@@ -171,21 +171,27 @@ class MultiForwardModel:
                     pair_list=list(zip(ia, ib)), noise_names=noise_names,
                     sigma8=cosmo.sigma8, growth=cosmo.growth_factor(self.z) / cosmo.growth_factor(0.0))
 
-    def coefficients(self, values):
-        """(n, Σ_X n_basis_X) coefficient vectors x^X of all tracers side by side."""
+    def x_layout(self):
+        """Columns of the side-by-side coefficient vectors: [(parameter or None, p or None)]:
+        None → 1; (b1_X, None) → b1_X; (b1_X, p_X) → f_NL (b1_X − p_X); (b_e_X/s_X, None)."""
         cols = []
         for t in self.tracers:
-            name = t["name"]
-            b1 = values[f"b1_{name}"]
-            cols += [1.0, b1]
+            n = t["name"]
+            cols += [(None, None), (f"b1_{n}", None)]
             if "fnl" in self.effects:
-                cols.append(values["fnl"] * (b1 - t["p"]))
-            for par in self.lin_free[name]:
-                cols.append(values[f"{par}_{name}"])
-        n = max(np.size(c) for c in cols)
-        x = np.empty((n, len(cols)))
-        for j, c in enumerate(cols):
-            x[:, j] = c
+                cols.append((f"b1_{n}", t["p"]))
+            cols += [(f"{par}_{n}", None) for par in self.lin_free[n]]
+        return cols
+
+    def coefficients(self, values):
+        """(n, Σ_X n_basis_X) coefficient vectors x^X of all tracers side by side."""
+        layout = self.x_layout()
+        n = max(np.size(values[k]) for k in {k for k, _ in layout if k is not None} | {"fnl"})
+        x = np.ones((n, len(layout)))
+        fnl = values["fnl"]
+        for j, (key, p) in enumerate(layout):
+            if key is not None:
+                x[:, j] = values[key] if p is None else fnl * (values[key] - p)
         return x
 
     def design(self, values, tpl):
@@ -230,14 +236,7 @@ class MultiLikelihood(Likelihood):
         self._d_w = self._chol_inv @ (self.data + self._sn_shift)
         self._dd = float(self._d_w @ self._d_w)
         self._templates = self._whitened_templates(cosmo)
-        # scalar fast path: which parameter feeds each x column (name, p or None)
-        self._x_spec = []
-        for t in forward.tracers:
-            n = t["name"]
-            self._x_spec += [(None, None), (f"b1_{n}", None)]
-            if "fnl" in self.effects:
-                self._x_spec.append((f"b1_{n}", t["p"]))
-            self._x_spec += [(f"{par}_{n}", None) for par in forward.lin_free[n]]
+        self._x_spec = forward.x_layout()     # scalar fast path: what feeds each x column
 
     def _log_prob_single(self, theta):
         lo, hi, mean, inv_sig, _ = self.params.prior_arrays()
