@@ -457,6 +457,13 @@ def build_multi(cfg):
         cosmo_keys=[k for k in COSMO_PARAMS if k in cosmo_free or k in cfg["fixed"]])
     for s in spectra:
         fac.warn_regime(srv, cosmo, s.part, s.mask, srv.ic)
+        fitted = s.mask.reshape(len(s.part.ells), -1).any(1)
+        if not s.auto and any(f for l, f in zip(s.part.ells, fitted) if l % 2):
+            warnings.warn(f"spectrum {s.label}: odd multipoles fitted with the plane-parallel model; "
+                          "wide-angle corrections of order 1/(k chi) to the cross spectrum (not "
+                          "included) are of the same order as the Doppler dipole on the largest "
+                          "scales: read the README's regime of validity", tr.PlaneParallelWarning,
+                          stacklevel=2)
     kind = cfg["covariance"]["kind"]
     if kind == "file":
         cov = load_spectra_covariance(cfg.resolve(cfg["covariance"]["file"]), sv)
