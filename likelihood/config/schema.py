@@ -494,9 +494,6 @@ def validate(raw, src="<memory>", base_dir="."):
     if multi:
         if cov["kind"] == "gaussian":
             require_autos(cfg, src)
-        if cfg["effects"]["observer"]:
-            raise ConfigError(f"{src}: effects.observer: the observer term is not available with "
-                              "several tracers yet; set it to false")
     if cfg["effects"]["observer"] and cfg["observer"]["field"] == "density" \
             and "smoothing" not in cfg["observer"]:
         raise ConfigError(f"{src}: observer.smoothing (radius in Mpc/h, > 0) is required for field: density")

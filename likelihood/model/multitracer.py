@@ -54,12 +54,14 @@ def covariance_function():
 
 
 class Spectrum:
-    """One fitted spectrum: pair, tracer indices, operator, noise row, mask, data part."""
+    """One fitted spectrum: pair, tracer indices, operator, noise row, mask, data part and its
+    observer term (None when off)."""
 
-    def __init__(self, pair, ix, iy, part, operator, mask, noise_name, noise_scale, sn_sub):
+    def __init__(self, pair, ix, iy, part, operator, mask, noise_name, noise_scale, sn_sub,
+                 observer=None):
         self.pair, self.ix, self.iy, self.part = tuple(pair), ix, iy, part
         self.auto = ix == iy
-        self.operator, self.mask = operator, mask
+        self.operator, self.mask, self.observer = operator, mask, observer
         self.noise_name, self.noise_scale = noise_name, noise_scale
         n_b = part.n_bins
         self.monopole = np.repeat(np.array([l == 0 for l in part.ells], float), n_b)
@@ -89,7 +91,7 @@ class MultiForwardModel:
         self.cosmology, self.cosmo_keys = cosmology, list(cosmo_keys)
         self.mask = np.concatenate([s.mask for s in spectra])
         self.sn_flat = np.concatenate([s.sn_flat for s in spectra])
-        self.offsets = np.cumsum([0] + [s.mask.size for s in spectra])
+        self.observer_on = spectra[0].observer is not None
 
     # --- direct path ----------------------------------------------------------------------------
     def tracer(self, values, name, i=0):
@@ -121,6 +123,14 @@ class MultiForwardModel:
                         pl = tr.cross_multipoles(cosmo, self.z, self.k_theory, tx, ty,
                                                  effects=self.effects, ells=ELLS_CROSS)
                     m = s.operator(pl) - s.sn_flat
+                    if s.observer is not None:
+                        nu = values["nu_obs"]
+                        w = float(nu[i] if np.ndim(nu) else nu) ** 2 - 1.0
+                        kx = tr.kernel(cosmo, self.z, self.k_theory, tx, effects=self.effects)
+                        corr = (s.observer.correction(cosmo, self.z, self.k_theory, kx) if s.auto else
+                                s.observer.cross_correction(cosmo, self.z, self.k_theory, kx, tr.kernel(
+                                    cosmo, self.z, self.k_theory, ty, effects=self.effects)))
+                        m = m + w * corr
                     if s.noise_name is not None:
                         amp = values[s.noise_name]
                         m = m + float(amp[i] if np.ndim(amp) else amp) * s.noise_row
@@ -161,6 +171,17 @@ class MultiForwardModel:
                 ia.append(col0[s.pair[0]] + a)
                 ib.append(col0[s.pair[1]] + b)
         n_pairs = len(rows)
+        if self.observer_on:
+            for j, s in enumerate(self.spectra):
+                kx = [z for _, z in bases[s.pair[0]]]
+                if s.auto:
+                    pairs = [(a, b) for a in range(len(kx)) for b in range(a, len(kx))]
+                    obs = s.observer.templates(cosmo, self.z, k, kx, pairs)
+                else:
+                    obs = s.observer.cross_templates(cosmo, self.z, k, kx, [z for _, z in bases[s.pair[1]]])
+                block = np.zeros((obs.shape[0], n_masked))
+                block[:, starts[j]:starts[j + 1]] = obs[:, s.mask]
+                rows.extend(block)
         for j, s in enumerate(self.spectra):
             if s.noise_name is not None:
                 row = np.zeros(n_masked)
@@ -168,7 +189,7 @@ class MultiForwardModel:
                 rows.append(row)
                 noise_names.append(s.noise_name)
         return dict(M=np.array(rows), ia=np.array(ia), ib=np.array(ib), n_pairs=n_pairs,
-                    pair_list=list(zip(ia, ib)), noise_names=noise_names,
+                    noise_names=noise_names,
                     sigma8=cosmo.sigma8, growth=cosmo.growth_factor(self.z) / cosmo.growth_factor(0.0))
 
     def x_layout(self):
@@ -200,8 +221,11 @@ class MultiForwardModel:
         out = np.empty((x.shape[0], tpl["M"].shape[0]))
         npair = tpl["n_pairs"]
         out[:, :npair] = x[:, tpl["ia"]] * x[:, tpl["ib"]]
+        if self.observer_on:
+            out[:, npair:2 * npair] = out[:, :npair] * (np.reshape(values["nu_obs"], (-1, 1)) ** 2 - 1.0)
+        first = 2 * npair if self.observer_on else npair
         for j, name in enumerate(tpl["noise_names"]):
-            out[:, npair + j] = values[name]
+            out[:, first + j] = values[name]
         return out
 
 
@@ -216,8 +240,9 @@ class MultiLikelihood(Likelihood):
         self.labels, self.prior_bounds = params.labels, params.bounds
         self.start, self.start_scale = params.start, params.start_scale
         self.survey, self.z, self.effects = survey, survey.z, survey.effects
-        self.window, self.volume, self.observer_on = survey.window, survey.volume, False
-        self.observer = None
+        self.window, self.volume = survey.window, survey.volume
+        self.observer_on = forward.observer_on
+        self.observer = None          # one observer term per spectrum: forward.spectra[i].observer
         self.cosmo = cosmo
         self.cosmo_free = [n for n in self.parameter_names if n in COSMO_PARAMS]
         self.forward, self.known, self.fiducial = forward, known, fiducial
@@ -250,11 +275,13 @@ class MultiLikelihood(Likelihood):
         vals = dict(self._fixed_floats)
         vals.update(zip(self.parameter_names, th))
         fnl = vals["fnl"]
-        x = [1.0 if name is None else (vals[name] if p is None else fnl * (vals[name] - p))
-             for name, p in self._x_spec]
+        x = np.array([1.0 if name is None else (vals[name] if p is None else fnl * (vals[name] - p))
+                      for name, p in self._x_spec])
         tpl = self._templates
-        c = [x[a] * x[b] for a, b in tpl["pair_list"]] + [vals[n] for n in tpl["noise_names"]]
-        c = np.array(c)
+        c = x[tpl["ia"]] * x[tpl["ib"]]
+        noise = [vals[n] for n in tpl["noise_names"]]
+        c = (np.concatenate([c, (vals["nu_obs"] ** 2 - 1.0) * c, noise]) if self.observer_on
+             else np.concatenate([c, noise]))
         chi2 = self._dd - 2.0 * (c @ tpl["g"]) + c @ (tpl["G"] @ c)
         res = lp - 0.5 * chi2
         return res if res == res else -np.inf
@@ -264,6 +291,8 @@ class MultiLikelihood(Likelihood):
         names = set(self.parameter_names) | {n for n in self.known if n.startswith(("b1_", "shot_noise_"))}
         if "fnl" in self.effects:
             names.add("fnl")
+        if self.observer_on:
+            names.add("nu_obs")
         return names
 
     def _values(self, params):
@@ -321,7 +350,8 @@ class MultiLikelihood(Likelihood):
                  f"integral constraint: {self.survey.ic}",
                  "tracers: " + "; ".join(f"{t['name']} (nbar {t['nbar']:g} (h/Mpc)^3, b1 {t['b1']:g}, "
                                          f"p {t['p']:g})" for t in self.forward.tracers),
-                 f"effects on: {', '.join(self.effects) or 'none'}",
+                 f"effects on: {', '.join(self.effects) or 'none'}; observer term: "
+                 + (f"yes ({cfg['observer']['field']})" if self.observer_on else "no"),
                  f"data: {self.data.size} points in {len(self.forward.spectra)} spectra"]
         for s in self.forward.spectra:
             k = s.part.k_eff[s.mask.reshape(len(s.part.ells), -1).any(0)]
@@ -342,6 +372,7 @@ def fiducial_values(cfg, known):
     """Fiducial values of a multi-tracer config: the table's defaults (tracers entries) < fixed
     parameters < mock truth."""
     vals = {n: info.default for n, info in known.items()}
+    vals["nu_obs"] = cfg["observer"]["nu_true"]
     vals.update(cfg["fixed"])
     mock = cfg["data"].get("mock")
     if mock:
@@ -387,7 +418,8 @@ def data_spectra(cfg, srv):
 
 
 def spectra_models(cfg, srv, sv, k_theory):
-    """[Spectrum] of the config: operator, mask and noise row of each fitted spectrum."""
+    """[Spectrum] of the config: operator, mask, noise row and observer term of each spectrum."""
+    from . import factories as fac
     nbar = {t["name"]: t["nbar"] for t in cfg["tracers"]}
     out = []
     names = [t["name"] for t in cfg["tracers"]]
@@ -404,8 +436,10 @@ def spectra_models(cfg, srv, sv, k_theory):
             noise_name, scale = f"shot_noise_{x}_{y}", spec["shared_nbar"] / (nbar[x] * nbar[y])
         else:
             noise_name, scale = None, 0.0
+        used = part.k_eff[mask.reshape(len(part.ells), -1).any(0)]
+        obs = fac.observer(cfg, srv, bins, part.ells, op.ic, float(used[0]))
         out.append(Spectrum(pair, names.index(x), names.index(y), part, op, mask, noise_name, scale,
-                            cfg["data"]["shot_noise_subtracted"]))
+                            cfg["data"]["shot_noise_subtracted"], obs))
     return out
 
 

@@ -207,8 +207,6 @@ MULTI_CASES = [
      "unknown parameter 'b1_brite' (did you mean 'b1_bright'?)"),
     ("name-underscore", lambda c: c["tracers"][0].update(name="very_bright"), "check",
      "tracers[0].name: expected a letter then letters/digits"),
-    ("observer-on", lambda c: c["effects"].update(observer=True), "check",
-     "effects.observer: the observer term is not available with several tracers yet"),
 ] + [(f"{cmd}-not-yet", lambda c: None, cmd, f"ergofit {cmd} does not handle several tracers yet")
      for cmd in ("theory", "forecast", "simulate")]
 

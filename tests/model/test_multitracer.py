@@ -55,47 +55,72 @@ def two():
     return _build(TWO)
 
 
-def test_one_tracer_reproduces_single_tracer_likelihood(tmp_path):
+@pytest.fixture(scope="module")
+def two_obs():
+    """Two tracers with the observer term on (potential at the observer, ν sampled)."""
+    raw = copy.deepcopy(TWO)
+    raw["effects"] = {"observer": True}
+    raw["parameters"]["nu_obs"] = {"gauss": [0, 1]}
+    return _build(raw)
+
+
+@pytest.mark.parametrize("observer", [False, True])
+def test_one_tracer_reproduces_single_tracer_likelihood(tmp_path, observer):
     """One tracer through the multi-tracer path (a single-tracer data file and covariance read as
-    the auto spectrum of that tracer) gives today's single-tracer log-likelihood to 1e-10."""
-    single = _build(SINGLE)
+    the auto spectrum of that tracer) gives today's single-tracer log-likelihood to 1e-10, with
+    and without the observer term."""
+    base = copy.deepcopy(SINGLE)
+    base["effects"] = {"observer": observer}
+    if observer:
+        base["parameters"]["nu_obs"] = {"gauss": [0, 1]}
+    single = _build(base)
     single.data_full.save(tmp_path / "d.txt")
     save_covariance(tmp_path / "c.txt", single.covariance_full, single.data_full.ells,
                     single.data_full.n_bins)
-    raw = copy.deepcopy(SINGLE)
+    raw = copy.deepcopy(base)
     raw["data"] = {"file": "d.txt", "ells": [0, 2]}
     raw["covariance"] = {"kind": "file", "file": "c.txt"}
     ref = _build(raw, tmp_path)
     multi = {
         "run": "one", "survey": {"redshift": 1.2, "geometry": SHELL},
         "tracers": [{"name": "g", "nbar": 3.0e-4, "b1": 1.8, "b_e": 1.5, "s": 0.25}],
-        "spectra": [{"pair": ["g", "g"], "ells": [0, 2]}], "effects": {"observer": False},
+        "spectra": [{"pair": ["g", "g"], "ells": [0, 2]}], "effects": {"observer": observer},
         "data": {"file": "d.txt"}, "covariance": {"kind": "file", "file": "c.txt"},
         "parameters": {"b1_g": {"flat": [0.5, 5]}, "fnl": {"flat": [-200, 200]},
                        "shot_noise_g": {"flat": [0, 3]}, "b_e_g": {"flat": [-5, 5]}}}
+    if observer:
+        multi["parameters"]["nu_obs"] = {"gauss": [0, 1]}
     lik = _build(multi, tmp_path)
     assert isinstance(lik, MultiLikelihood)
     rng = np.random.default_rng(4)
     theta = np.column_stack([rng.uniform(1.5, 2.1, 6), rng.uniform(-30, 30, 6),
-                             rng.uniform(0.8, 1.2, 6), rng.uniform(0, 3, 6)])
+                             rng.uniform(0.8, 1.2, 6), rng.uniform(0, 3, 6)]
+                            + ([rng.uniform(-2, 2, 6)] if observer else []))
     a, b = ref.log_prob(theta), lik.log_prob(theta)
     np.testing.assert_allclose(b, a, rtol=1e-10)
     for th in theta[:2]:
         assert lik.log_prob(th) == pytest.approx(ref.log_prob(th), rel=1e-10)
     p = {"b1": 1.9, "fnl": 12.0, "shot_noise": 1.1, "b_e": 0.5}
     q = {"b1_g": 1.9, "fnl": 12.0, "shot_noise_g": 1.1, "b_e_g": 0.5}
+    if observer:
+        p["nu_obs"] = q["nu_obs"] = 1.7
     assert lik.log_likelihood_direct(q) == pytest.approx(ref.log_likelihood_direct(p), rel=1e-10)
 
 
-def test_fast_path_equals_direct_path_two_tracers(two):
+@pytest.mark.parametrize("which", ["two", "two_obs"])
+def test_fast_path_equals_direct_path_two_tracers(which, request):
     """Templates per pair of kernel pieces (autos symmetrised, cross all pairs, sampled b_e and s
-    of one tracer each, shared noise of overlapping populations) = direct recomputation, 1e-10."""
+    of one tracer each, shared noise of overlapping populations, the observer term of autos and
+    of the cross spectrum) = direct recomputation, 1e-10."""
+    two = request.getfixturevalue(which)
     rng = np.random.default_rng(0)
     for _ in range(3):
         p = {"fnl": rng.uniform(-50, 50), "b1_bright": rng.uniform(2, 3), "b1_faint": rng.uniform(1, 2),
              "shot_noise_bright": rng.uniform(0.5, 1.5), "shot_noise_faint": rng.uniform(0.5, 1.5),
              "shot_noise_bright_faint": rng.uniform(0.5, 1.5), "b_e_faint": rng.uniform(-2, 3),
              "s_bright": rng.uniform(-0.5, 1)}
+        if "nu_obs" in two.parameter_names:
+            p["nu_obs"] = rng.uniform(-2.5, 2.5)
         fast, direct = two.model_vector(p, direct=False), two.model_vector(p, direct=True)
         assert np.max(np.abs(fast - direct)) < 1e-10 * np.max(np.abs(direct))
         assert two.log_likelihood(p) == pytest.approx(two.log_likelihood_direct(p), rel=1e-10)
