@@ -188,3 +188,15 @@ def parameter_table(cfg):
         table[f"shot_noise_{x}_{y}"] = ParamInfo(f"A_{{\\rm sn}}^{{\\rm {x}\\times {y}}}", 1.0, "noise",
                                                  f"shared shot-noise amplitude of {x} x {y}")
     return table
+
+
+def check_analytic(par, cfg, src):
+    """A parameter marked ``analytic: true`` must enter the model linearly: the shot-noise
+    amplitudes of a config with ``tracers`` (the marginal is then a Gaussian integral)."""
+    if "tracers" not in cfg:
+        raise ConfigError(f"{src}: parameters.{par.name}.analytic: analytic marginalisation needs "
+                          "the tracers section (a config with one tracer entry works too)")
+    if not par.name.startswith("shot_noise_"):
+        raise ConfigError(f"{src}: parameters.{par.name}.analytic: only parameters entering the model "
+                          "linearly (shot_noise_NAME, shot_noise_X_Y) can be marginalised analytically")
+    return par

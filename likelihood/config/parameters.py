@@ -125,6 +125,7 @@ class Parameter:
     start: float
     scale: float
     info: ParamInfo | None = None     # set for names outside KNOWN (per-tracer parameters)
+    analytic: bool = False            # marginalised analytically, not sampled (linear parameters)
 
     @property
     def label(self):
@@ -196,7 +197,8 @@ def parse_parameter(name, spec, where, known=None):
     ``known``: the parameter table (default KNOWN; a multi-tracer config passes its own, see
     :func:`likelihood.config.multitracer.parameter_table`).
     Vocabulary: ``{fixed: v}`` or ``{flat: [lo, hi] | gauss: [mean, sigma], bounds: [lo, hi],
-    start: v, scale: s}``. Returns ``(Parameter or None, fixed value or None)``.
+    start: v, scale: s, analytic: false}`` (``analytic: true``: integrate the parameter out
+    analytically instead of sampling it; parameters entering the model linearly only). Returns ``(Parameter or None, fixed value or None)``.
     """
     check_name(name, where, known)
     info = (KNOWN if known is None else known)[name]
@@ -208,7 +210,7 @@ def parse_parameter(name, spec, where, known=None):
             return None, float(spec)
         raise ConfigError(f"{where}.{name}: expected a mapping like {{flat: [lo, hi], start: x}} "
                           f"or {{fixed: x}}, got {spec!r}")
-    allowed = ("fixed", "flat", "gauss", "bounds", "start", "scale")
+    allowed = ("fixed", "flat", "gauss", "bounds", "start", "scale", "analytic")
     for key in spec:
         if key not in allowed:
             raise ConfigError(f"{where}.{name}: unknown key '{key}'{suggest(key, allowed)}; "
@@ -244,7 +246,12 @@ def parse_parameter(name, spec, where, known=None):
             raise ConfigError(f"{where}.{name}.{key}: expected a finite number, got {val!r}")
         return float(val)
 
+    analytic = spec.get("analytic", False)
+    if not isinstance(analytic, bool):
+        raise ConfigError(f"{where}.{name}.analytic: expected true or false, got {analytic!r}")
     if kind == "fixed":
+        if analytic:
+            raise ConfigError(f"{where}.{name}.analytic: a fixed parameter is not marginalised")
         return None, number("fixed", None)
     try:
         if kind == "flat":
@@ -262,4 +269,4 @@ def parse_parameter(name, spec, where, known=None):
     scale = number("scale", 1e-2 * width)
     if scale <= 0:
         raise ConfigError(f"{where}.{name}.scale: must be > 0, got {scale}")
-    return Parameter(name, prior, start, scale, None if name in KNOWN else info), None
+    return Parameter(name, prior, start, scale, None if name in KNOWN else info, analytic), None

@@ -46,7 +46,7 @@ import numpy as np
 import yaml
 
 from ..errors import ConfigError
-from .multitracer import parameter_table, require_autos, validate_tracers
+from .multitracer import check_analytic, parameter_table, require_autos, validate_tracers
 from .parameters import KNOWN, ParameterSet, parse_parameter, suggest
 
 _NUM = (int, float)
@@ -500,11 +500,13 @@ def validate(raw, src="<memory>", base_dir="."):
 
     params = raw.get("parameters", {}) or {}
     _mapping(params, f"{src}: parameters")
-    free, fixed = [], {}
+    free, fixed, analytic = [], {}, []
     for name, spec in params.items():
         par, val = parse_parameter(name, spec, f"{src}: parameters", known)
         if par is None:
             fixed[name] = val
+        elif par.analytic:
+            analytic.append(check_analytic(par, cfg, src))
         else:
             free.append(par)
     if not free:
@@ -516,6 +518,9 @@ def validate(raw, src="<memory>", base_dir="."):
     cfg["parameters"] = {p.name: {"prior": p.prior.__dict__, "start": p.start, "scale": p.scale} for p in free}
     cfg["fixed"] = fixed
     cfg._param_objects = (free, fixed)
+    cfg._analytic = analytic
+    if analytic:
+        cfg["analytic"] = {p.name: p.prior.__dict__ for p in analytic}
     smp = cfg["sampling"]
     if "moves" in smp:
         _moves(smp["moves"], f"{src}: sampling.moves", smp["walkers"])

@@ -262,8 +262,76 @@ class MultiLikelihood(Likelihood):
         self._dd = float(self._d_w @ self._d_w)
         self._templates = self._whitened_templates(cosmo)
         self._x_spec = forward.x_layout()     # scalar fast path: what feeds each x column
+        self._setup_analytic(getattr(cfg, "_analytic", []))
+
+    # --- analytic marginalisation over linear parameters ------------------------------------------
+    def _setup_analytic(self, pars):
+        """Linear parameters integrated out (Taylor & Kitching 2010, MNRAS 408, 865, eqs. 8-10 for
+        a Gaussian prior; the flat-prior limit drops the prior terms). With the whitened model
+        m = Σ_n c_n W_n + Σ_j A_j T_j and the prior A ~ N(μ, diag σ²) (flat: 1/σ² = 0, bounds
+        ignored, the integral runs over all A), the Gaussian integral over A gives
+
+            −2 ln L_marg = |r|² + μᵀS⁻¹μ − bᵀF⁻¹b + ln det F + const,
+            r = d_w − Σ c_n W_n,  F = TᵀT + S⁻¹,  b = Tᵀr + S⁻¹μ;
+
+        F depends on the noise templates only (no cosmology), so ln det F is a constant and is
+        left out: the value reported as χ² is min over A of χ² + prior penalty (A = F⁻¹b)."""
+        names = self._templates["noise_names"]
+        for p in pars:
+            if p.name not in names:
+                raise ConfigError(f"{self.config.path}: parameters.{p.name}.analytic: {p.name} does not "
+                                  f"enter this model (its noise terms: {', '.join(names) or 'none'})")
+        first = self._templates["n_pairs"] * (2 if self.observer_on else 1)
+        self._lin_names = [p.name for p in pars]
+        self._lin = np.array([first + names.index(p.name) for p in pars], int)
+        gauss = [p.prior.kind == "gauss" for p in pars]
+        self._lin_ivar = np.array([1.0 / p.prior.sigma ** 2 if g else 0.0 for p, g in zip(pars, gauss)])
+        self._lin_mean = np.array([p.prior.mean if g else 0.0 for p, g in zip(pars, gauss)])
+        self.dof -= len(pars)
+        self._templates = self._whitened_templates(self.cosmo)
+
+    def _whitened_templates(self, cosmo):
+        tpl = super()._whitened_templates(cosmo)
+        lin = getattr(self, "_lin", None)
+        if lin is not None and lin.size:
+            F = tpl["G"][np.ix_(lin, lin)] + np.diag(self._lin_ivar)
+            tpl["F_inv"] = np.linalg.inv(F)
+        return tpl
+
+    def _analytic_best(self, c, tpl):
+        """(n, n_lin) conditional best fit A = F⁻¹b of the marginalised parameters, and b."""
+        lin = self._lin
+        b = tpl["g"][lin] + self._lin_ivar * self._lin_mean - c @ tpl["G"][:, lin]
+        return b @ tpl["F_inv"], b
+
+    def _chi2_fast(self, values, tpl):
+        c = self.forward.design(values, tpl)
+        if not self._lin.size:
+            return self._dd - 2.0 * (c @ tpl["g"]) + np.sum((c @ tpl["G"]) * c, axis=1)
+        c[:, self._lin] = 0.0
+        chi2 = self._dd - 2.0 * (c @ tpl["g"]) + np.sum((c @ tpl["G"]) * c, axis=1)
+        a, b = self._analytic_best(c, tpl)
+        return chi2 + float(self._lin_ivar @ self._lin_mean ** 2) - np.sum(a * b, axis=1)
+
+    def model_observables(self, theta):
+        """Model per (spectrum, ℓ) at theta; marginalised parameters at their conditional best fit."""
+        params = self.theta_to_dict(theta)
+        if self._lin.size:
+            vals = self._values(params)
+            c = self.forward.design(vals, self._templates)
+            c[:, self._lin] = 0.0
+            a = self._analytic_best(c, self._templates)[0][0]
+            params.update(zip(self._lin_names, a))
+        vec = self.model_vector(params, direct=False)
+        parts, pos = [], 0
+        for k in self.observables()["k"]:
+            parts.append(vec[pos:pos + k.size])
+            pos += k.size
+        return parts
 
     def _log_prob_single(self, theta):
+        if self._lin.size:
+            return float(self.log_prob(theta[None])[0])
         lo, hi, mean, inv_sig, _ = self.params.prior_arrays()
         th = theta.tolist()
         lp = 0.0
@@ -359,6 +427,10 @@ class MultiLikelihood(Likelihood):
                          f"h/Mpc, {int(s.mask.sum())} points"
                          + (f", noise {s.noise_name}" if s.noise_name else ""))
         lines.append(f"covariance: {cfg['covariance']['kind']}, condition number {self.condition_number:.3g}")
+        if self._lin.size:
+            lines.append("marginalised analytically: " + ", ".join(
+                f"{n} ({'Gaussian N(%g, %g)' % (m, iv ** -0.5) if iv else 'flat, unbounded'})"
+                for n, m, iv in zip(self._lin_names, self._lin_mean, self._lin_ivar)))
         lines.append("sampled parameters:")
         for p in self.params.free:
             lines.append(f"  {p.name:<18s} {p.prior.describe():<30s} start {p.start:g}")
