@@ -60,6 +60,8 @@ CASES = [
      "cosmology.overrides: unknown key 'omega_cdm' (renamed: write 'omega_c'"),
     ("old-ln10As", _set(["parameters", "ln10As"], {"flat": [2.5, 3.5]}), "check",
      "unknown parameter 'ln10As' (renamed: write 'ln_1e10_As'"),
+    ("analytic-one-tracer", _set(["parameters", "shot_noise"], {"flat": [0, 3], "analytic": True}),
+     "check", "analytic marginalisation needs the tracers section"),
     ("old-truth-omega_cdm", _set(["data"], {"mock": {"truth": {"omega_cdm": 0.13}}, "ells": [0, 2]}),
      "check", "data.mock.truth: unknown parameter 'omega_cdm' (renamed: write 'omega_c'"),
 ]
@@ -207,6 +209,10 @@ MULTI_CASES = [
      "unknown parameter 'b1_brite' (did you mean 'b1_bright'?)"),
     ("name-underscore", lambda c: c["tracers"][0].update(name="very_bright"), "check",
      "tracers[0].name: expected a letter then letters/digits"),
+    ("analytic-nonlinear", lambda c: c["parameters"]["b1_faint"].update(analytic=True), "check",
+     "parameters.b1_faint.analytic: only parameters entering the model linearly"),
+    ("analytic-not-bool", lambda c: c["parameters"]["shot_noise_faint"].update(analytic="yes"),
+     "check", "parameters.shot_noise_faint.analytic: expected true or false"),
 ] + [(f"{cmd}-not-yet", lambda c: None, cmd, f"ergofit {cmd} does not handle several tracers yet")
      for cmd in ("theory", "forecast", "simulate")]
 
