@@ -165,12 +165,12 @@ def _write_config_copy(src, dst):
     with open(src, encoding="utf-8") as fh:
         raw = yaml.safe_load(fh)
 
-    def portable(rel, pattern=False):
+    def portable(rel, pattern=False, folder="inputs"):
         path = cfg.resolve(rel)
         files = sorted(glob.glob(path)) if pattern else [path]
         if sum(os.path.getsize(f) for f in files) > COPY_INPUTS_MAX_BYTES:
             return os.path.relpath(path, run_dir)
-        sub = os.path.join("inputs", "mocks") if pattern else "inputs"
+        sub = os.path.join(folder, "mocks") if pattern else folder
         os.makedirs(os.path.join(run_dir, sub), exist_ok=True)
         for f in files:
             target = os.path.join(run_dir, sub, os.path.basename(f))
@@ -178,9 +178,12 @@ def _write_config_copy(src, dst):
                 shutil.copyfile(f, target)
         return os.path.join(sub, os.path.basename(path))
 
-    for sec, key in Config.INPUT_FILES:
-        if isinstance(raw.get(sec), dict) and key in raw[sec]:
-            raw[sec][key] = portable(raw[sec][key], pattern=(sec, key) == ("covariance", "mocks"))
+    # several samples: each sample's files go to inputs/<sample name>/ (names may repeat)
+    blocks = [(raw, "inputs")] + [(s, os.path.join("inputs", s["name"])) for s in raw.get("samples") or []]
+    for block, folder in blocks:
+        for sec, key in Config.INPUT_FILES:
+            if isinstance(block.get(sec), dict) and key in block[sec]:
+                block[sec][key] = portable(block[sec][key], (sec, key) == ("covariance", "mocks"), folder)
     geo = (raw.get("survey") or {}).get("geometry") or {}
     if "randoms" in geo:
         geo["randoms"] = portable(geo["randoms"])

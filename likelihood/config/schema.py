@@ -21,6 +21,8 @@ The vocabulary (all sections but ``survey`` optional)::
     tracers:    [{name, nbar, b1, p, b_e, s}, ...]   several populations (replaces tracer and
     spectra:    [{pair: [X, Y], ells, k_min, k_max, shared_nbar}, ...]   survey.nbar; see
                 likelihood.config.multitracer)
+    samples:    [{name, survey, tracers, spectra, data, covariance}, ...]   independent samples
+                (see likelihood.config.samples)
     effects:    {rsd, fnl, doppler, potential, window, integral_constraint: none | global, observer}
     observer:   {field: potential | density, smoothing, k_ir, nu_true}
     data:       {file: FILE | mock: {seed, noise, truth: {...}, k_min, k_max, n_bins},
@@ -334,7 +336,7 @@ MOCK = {"seed": (_num(0, integer=True), 1), "noise": (_bool, True), "truth": (_m
         "k_min": (_num(0.0, lo_open=True), 0.002), "k_max": (_num(0.0, lo_open=True), 0.05),
         "n_bins": (_num(2, 1000, integer=True), 16)}
 
-TOP = ("run", *SCHEMA, "parameters", "tracers", "spectra")
+TOP = ("run", *SCHEMA, "parameters", "tracers", "spectra", "samples")
 
 
 def _check_keys(mapping, allowed, where):
@@ -419,6 +421,9 @@ def validate(raw, src="<memory>", base_dir="."):
     cfg.raw = copy.deepcopy(raw)   # what validate() read: lets pool workers rebuild the model
     run = raw.get("run", os.path.splitext(os.path.basename(src))[0] or "run")
     cfg["run"] = _run_name(run, f"{src}: run")
+    if raw.get("samples") is not None:          # several samples: likelihood.config.samples
+        from .samples import validate_samples
+        return validate_samples(raw, src, base_dir, validate, cfg["run"])
     for name in SCHEMA:
         cfg[name] = _section(raw, name, src)
 

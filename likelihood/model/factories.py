@@ -198,6 +198,9 @@ def warn_regime(srv, cosmo, dv, mask, ic):
 def build(config):
     """Build the likelihood of a validated config (or a path to a YAML file)."""
     cfg = config if isinstance(config, Config) else load_config(config)
+    if "samples" in cfg:                      # several samples: likelihood.model.samples
+        from .samples import build_samples
+        return build_samples(cfg)
     if "tracers" in cfg:                      # several tracers: likelihood.model.multitracer
         from .multitracer import build_multi
         return build_multi(cfg)

@@ -1,0 +1,117 @@
+"""Several independent samples in one run: the log-likelihood is the sum of the samples'.
+
+Each sample is a :class:`~likelihood.model.multitracer.MultiLikelihood` of its own validated
+config (survey, tracers, spectra, data, covariance); the global parameter vector θ holds the
+shared parameters (f_NL, ν, cosmology) and every sample's nuisance parameters, and each sample
+reads its own columns. The prior is evaluated once, on θ.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from ..config import parameter_set
+from ..errors import ErgofitError
+from .fiducial import COSMO_PARAMS
+from .likelihood import Likelihood
+
+
+class SampleSum(Likelihood):
+    """Sum of independent sample likelihoods over one parameter vector (public surface of
+    :class:`~likelihood.model.likelihood.Likelihood` for the sampler and the reports)."""
+
+    def __init__(self, cfg, parts):
+        self.config, self.config_hash = cfg, cfg.hash
+        self.params = parameter_set(cfg)
+        self.parameter_names = self.params.names
+        self.labels, self.prior_bounds = self.params.labels, self.params.bounds
+        self.start, self.start_scale = self.params.start, self.params.start_scale
+        self.parts = parts
+        self.names = [s["name"] for s in cfg["samples"]]
+        self.cosmo_free = [n for n in self.parameter_names if n in COSMO_PARAMS]
+        self.columns = [np.array([self.parameter_names.index(n) for n in p.parameter_names], int)
+                        for p in parts]
+        self.fiducial = {}
+        for p in parts:
+            self.fiducial.update(p.fiducial)
+        self.dof = int(sum(p.data.size for p in parts) - len(self.parameter_names)
+                       - sum(len(p._lin_names) for p in parts))
+        self.effects = parts[0].effects
+
+    def _sample_loglike(self, theta):
+        """(n,) sum of the samples' log-likelihoods for (n, n_dim) theta (no prior)."""
+        total = 0.0
+        for p, cols in zip(self.parts, self.columns):
+            total = total + p._loglike_from_chi2(p._chi2(p._theta_values(theta[:, cols])))
+        return total
+
+    def log_prob(self, theta):
+        """Log posterior for (n_walkers, n_dim) or (n_dim,) theta; −inf outside the prior."""
+        theta = np.asarray(theta, float)
+        single = theta.ndim == 1
+        n_dim = len(self.parameter_names)
+        if theta.ndim not in (1, 2) or theta.shape[-1] != n_dim:
+            raise ErgofitError(f"log_prob: theta of shape {theta.shape}: expected ({n_dim},) or "
+                               f"(n_walkers, {n_dim}) for the parameters {', '.join(self.parameter_names)}")
+        theta = np.atleast_2d(theta)
+        lp = self.params.log_prior(theta)
+        ok = np.isfinite(lp)
+        out = np.full(theta.shape[0], -np.inf)
+        if ok.any():
+            with np.errstate(over="ignore", invalid="ignore"):
+                res = lp[ok] + self._sample_loglike(theta[ok])
+            out[ok] = np.where(np.isfinite(res), res, -np.inf)
+        return out[0] if single else out
+
+    def chi2(self, theta):
+        th = np.atleast_2d(np.asarray(theta, float))
+        return float(sum(p.chi2(th[0, cols]) for p, cols in zip(self.parts, self.columns)))
+
+    def log_likelihood(self, params):
+        """Sum of the samples' log-likelihoods for a dict of values (each sample takes its own)."""
+        return float(sum(p.log_likelihood({k: v for k, v in params.items() if k in p.known})
+                         for p in self.parts))
+
+    def log_likelihood_direct(self, params):
+        return float(sum(p.log_likelihood_direct({k: v for k, v in params.items() if k in p.known})
+                         for p in self.parts))
+
+    derived_names = []
+    derived_labels = []
+
+    def derived(self, theta):
+        return np.empty((np.atleast_2d(theta).shape[0], 0))
+
+    def observables(self):
+        """Data per (sample, spectrum, multipole), labelled 'sample: spectrum'."""
+        out = dict(spectra=[], ells=[], k=[], data=[], sigma=[])
+        for name, p in zip(self.names, self.parts):
+            o = p.observables()
+            out["spectra"] += [f"{name}: {s}" for s in o["spectra"]]
+            for key in ("ells", "k", "data", "sigma"):
+                out[key] += list(o[key])
+        return out
+
+    def model_observables(self, theta):
+        theta = np.asarray(theta, float)
+        return [m for p, cols in zip(self.parts, self.columns) for m in p.model_observables(theta[cols])]
+
+    def describe(self):
+        lines = [f"run: {self.config['run']}  (config hash {self.config_hash}); "
+                 f"{len(self.parts)} independent samples, log-likelihood = sum"]
+        for name, p in zip(self.names, self.parts):
+            lines.append(f"== sample {name}")
+            lines += ["  " + line for line in p.describe().splitlines()[1:]
+                      if not line.startswith(("sampled parameters", "  ", "fixed:"))
+                      or line.startswith("  ") and " ells " in line]
+        lines.append("sampled parameters:")
+        for q in self.params.free:
+            lines.append(f"  {q.name:<18s} {q.prior.describe():<30s} start {q.start:g}")
+        if self.params.fixed:
+            lines.append("fixed: " + ", ".join(f"{k} = {v:g}" for k, v in self.params.fixed.items()))
+        return "\n".join(lines)
+
+
+def build_samples(cfg):
+    """The :class:`SampleSum` of a validated config with ``samples``."""
+    from .multitracer import build_multi
+    return SampleSum(cfg, [build_multi(sc) for sc in cfg.sample_configs])
