@@ -29,9 +29,9 @@ def cmd_check(args):
 
 def _one_tracer(cfg, command):
     """Refuse a config with several tracers in a command that does not handle them yet."""
-    if "tracers" in cfg:
-        raise ErgofitError(f"{cfg.path}: ergofit {command} does not handle several tracers yet "
-                           "(tracers section); use check, run or summarize")
+    if "tracers" in cfg or "samples" in cfg:
+        raise ErgofitError(f"{cfg.path}: ergofit {command} does not handle several tracers or "
+                           "samples yet (tracers/samples section); use check, run or summarize")
     return cfg
 
 

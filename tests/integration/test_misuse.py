@@ -187,6 +187,21 @@ def _drop_auto(cfg):
     cfg["covariance"] = {"kind": "gaussian"}
 
 
+def _as_samples(second_name, second_tracers):
+    """The two-tracer demo as sample 'north' plus a copy 'second_name' whose tracers are renamed
+    by ``second_tracers`` (a dict old -> new)."""
+    def change(cfg):
+        keys = ("survey", "tracers", "spectra", "data", "covariance")
+        one = {k: cfg.pop(k) for k in keys}
+        two = copy.deepcopy(one)
+        for t in two["tracers"]:
+            t["name"] = second_tracers.get(t["name"], t["name"])
+        for sp in two["spectra"]:
+            sp["pair"] = [second_tracers.get(x, x) for x in sp["pair"]]
+        cfg["samples"] = [dict(name="north", **one), dict(name=second_name, **two)]
+    return change
+
+
 MULTI_CASES = [
     ("unknown-tracer", _spectrum(1, "pair", ["bright", "faynt"]), "check",
      "spectra[1].pair: unknown tracer 'faynt' (did you mean 'faint'?)"),
@@ -209,12 +224,21 @@ MULTI_CASES = [
      "unknown parameter 'b1_brite' (did you mean 'b1_bright'?)"),
     ("name-underscore", lambda c: c["tracers"][0].update(name="very_bright"), "check",
      "tracers[0].name: expected a letter then letters/digits"),
+    ("samples-same-name", _as_samples("north", {"bright": "brightS", "faint": "faintS"}), "check",
+     "samples: two samples are named 'north'"),
+    ("samples-same-tracer", _as_samples("south", {"bright": "brightS"}), "check",
+     "tracer 'faint' is also in sample 'north'"),
+    ("samples-top-survey", lambda c: (_as_samples("south", {"bright": "b2", "faint": "f2"})(c),
+                                      c.update(survey={"redshift": 1.0})), "check",
+     "survey: not allowed at the top level together with samples"),
     ("analytic-nonlinear", lambda c: c["parameters"]["b1_faint"].update(analytic=True), "check",
      "parameters.b1_faint.analytic: only parameters entering the model linearly"),
     ("analytic-not-bool", lambda c: c["parameters"]["shot_noise_faint"].update(analytic="yes"),
      "check", "parameters.shot_noise_faint.analytic: expected true or false"),
-] + [(f"{cmd}-not-yet", lambda c: None, cmd, f"ergofit {cmd} does not handle several tracers yet")
-     for cmd in ("theory", "forecast", "simulate")]
+] + [(f"{cmd}-not-yet{'-samples' if smp else ''}",
+       _as_samples("south", {"bright": "b2", "faint": "f2"}) if smp else (lambda c: None), cmd,
+       f"ergofit {cmd} does not handle several tracers or samples yet")
+      for cmd in ("theory", "forecast", "simulate") for smp in (False, True)]
 
 
 @pytest.mark.parametrize("case", MULTI_CASES, ids=[c[0] for c in MULTI_CASES])

@@ -242,3 +242,32 @@ def test_analytic_marginalisation_equals_numerical_integral(prior):
     assert got == pytest.approx(ref, abs=1e-6)
     np.testing.assert_allclose(lm.log_prob(np.stack([t1, t2])), [lm.log_prob(t1), lm.log_prob(t2)],
                                rtol=1e-9)
+
+
+def test_samples_sum_of_independent_likelihoods(tmp_path):
+    """Two independent samples (one with two tracers, one with one): the log-posterior of the
+    run is the prior plus the sum of the log-likelihoods of the samples built on their own, to
+    1e-12; each sample reads its own nuisance columns and the shared f_NL."""
+    north = copy.deepcopy(TWO)
+    south = {"survey": {"redshift": 0.6, "geometry": {"shape": "shell", "r_min": 1200.0, "r_max": 1900.0}},
+             "tracers": [{"name": "lrg", "nbar": 3e-4, "b1": 2.0}],
+             "spectra": [{"pair": ["lrg", "lrg"], "ells": [0, 2]}],
+             "data": {"mock": {"seed": 5, "noise": True, "k_min": 0.004, "k_max": 0.05, "n_bins": 8}}}
+    raw = {"run": "both", "effects": {"observer": False},
+           "samples": [dict(name="north", **{k: north[k] for k in ("survey", "tracers", "spectra", "data")}),
+                       dict(name="south", **south)],
+           "parameters": dict(north["parameters"], b1_lrg={"flat": [0.5, 5]})}
+    lik = _build(raw)
+    alone_n = _build(north)
+    alone_s = _build(dict(south, run="s", effects={"observer": False},
+                          parameters={"fnl": {"flat": [-200, 200]}, "b1_lrg": {"flat": [0.5, 5]}}))
+    rng = np.random.default_rng(7)
+    theta = np.column_stack([rng.uniform(lo, hi, 5) for lo, hi in
+                             [(-20, 20), (2.3, 2.5), (1.4, 1.6), (0.9, 1.1), (0.9, 1.1), (0.9, 1.1),
+                              (1.0, 2.0), (0.0, 0.5), (1.9, 2.1)]])
+    assert lik.parameter_names[-1] == "b1_lrg" and len(lik.parameter_names) == theta.shape[1]
+    ref = alone_n.log_prob(theta[:, :8]) + alone_s.log_prob(theta[:, [0, 8]])
+    np.testing.assert_allclose(lik.log_prob(theta), ref, rtol=1e-12)
+    assert lik.log_prob(theta[0]) == pytest.approx(ref[0], rel=1e-12)
+    assert lik.dof == alone_n.data.size + alone_s.data.size - 9
+    assert len(lik.observables()["spectra"]) == 10 and lik.observables()["spectra"][-1] == "south: lrg"
