@@ -70,6 +70,13 @@ def _parse_spectrum_line(path, text):
     return (names[0], names[1]), ells
 
 
+def _header(path):
+    try:
+        return read_comment_header(path)
+    except (OSError, UnicodeDecodeError) as exc:
+        raise DataError(f"{path}: cannot read file ({exc.__class__.__name__}: {exc})") from None
+
+
 def _check_odd(src, pair, ells):
     odd = [l for l in ells if l % 2]
     if pair[0] == pair[1] and odd:
@@ -167,10 +174,7 @@ class SpectraVector:
         path = input_file(path, "data vector")
         if path.endswith(".npz"):
             return cls._load_npz(path)
-        try:
-            first, header = read_comment_header(path)
-        except (OSError, UnicodeDecodeError) as exc:
-            raise DataError(f"{path}: cannot read file ({exc.__class__.__name__}: {exc})") from None
+        first, header = _header(path)
         if first != SPECTRA_HEADER:
             raise DataError(f"{path}: first line must be '{SPECTRA_HEADER}' (a multi-tracer data vector)")
         if "tracers" not in header or "spectrum" not in header:
@@ -302,10 +306,7 @@ def load_spectra_covariance(path, sv):
         except (OSError, ValueError, KeyError) as exc:
             raise DataError(f"{path}: not a valid .npz covariance (needs 'covariance'): {exc}") from None
     else:
-        try:
-            first, header = read_comment_header(path)
-        except (OSError, UnicodeDecodeError) as exc:
-            raise DataError(f"{path}: cannot read file ({exc})") from None
+        first, header = _header(path)
         if first != COV_HEADER:
             raise DataError(f"{path}: first line must be '{COV_HEADER}'")
         specs = [_parse_spectrum_line(path, s) for s in header.get("spectrum", [])] or None

@@ -36,7 +36,7 @@ from ..errors import ConfigError, DataError, ErgofitError
 from ..observation.matrix import KBins, WindowMatrix, theory_k_grid
 from ..spectra import SpectraVector, load_spectra, load_spectra_covariance, pair_label
 from ..theory import tracer as tr
-from .fiducial import COSMO_PARAMS, held_values
+from .fiducial import COSMO_PARAMS, fiducial_values, held_values
 from .likelihood import Likelihood
 from .templates import basis_kernels
 
@@ -431,27 +431,19 @@ class MultiLikelihood(Likelihood):
             lines.append("marginalised analytically: " + ", ".join(
                 f"{n} ({'Gaussian N(%g, %g)' % (m, iv ** -0.5) if iv else 'flat, unbounded'})"
                 for n, m, iv in zip(self._lin_names, self._lin_mean, self._lin_ivar)))
-        lines.append("sampled parameters:")
-        for p in self.params.free:
-            lines.append(f"  {p.name:<18s} {p.prior.describe():<30s} start {p.start:g}")
-        if self.params.fixed:
-            lines.append("fixed: " + ", ".join(f"{k} = {v:g}" for k, v in self.params.fixed.items()))
-        return "\n".join(lines)
+        return "\n".join(lines + parameter_lines(self.params))
+
+
+def parameter_lines(params):
+    """Lines of ``describe``: the sampled parameters with their priors and starts, the fixed ones."""
+    lines = ["sampled parameters:"]
+    lines += [f"  {p.name:<18s} {p.prior.describe():<30s} start {p.start:g}" for p in params.free]
+    if params.fixed:
+        lines.append("fixed: " + ", ".join(f"{k} = {v:g}" for k, v in params.fixed.items()))
+    return lines
 
 
 # --- factories --------------------------------------------------------------------------------
-def fiducial_values(cfg, known):
-    """Fiducial values of a multi-tracer config: the table's defaults (tracers entries) < fixed
-    parameters < mock truth."""
-    vals = {n: info.default for n, info in known.items()}
-    vals["nu_obs"] = cfg["observer"]["nu_true"]
-    vals.update(cfg["fixed"])
-    mock = cfg["data"].get("mock")
-    if mock:
-        vals.update(mock["truth"])
-    return vals
-
-
 def data_spectra(cfg, srv):
     """The data vector of ``data.file`` (a multi-tracer file, or a single-tracer file when the
     config has one tracer), reordered to the config's spectra; or empty bins for ``data.mock``."""
@@ -550,7 +542,7 @@ def build_multi(cfg):
     params = fac.parameters(cfg)
     cosmo = fac.cosmology(cfg)
     srv = fac.survey(cfg, cosmo)
-    fiducial = fiducial_values(cfg, known)
+    fiducial = fiducial_values(cfg, known)          # defaults of the table: the tracers entries
     sv = data_spectra(cfg, srv)
     k_theory = theory_k_grid()
     spectra = spectra_models(cfg, srv, sv, k_theory)
@@ -579,21 +571,13 @@ def build_multi(cfg):
         raise ConfigError(f"{cfg.path}: covariance.kind: {kind} is not available with several "
                           "tracers yet; use gaussian or file")
     if cfg["data"].get("mock") is not None:
-        m = cfg["data"]["mock"]
-        truth = {k: np.atleast_1d(v) for k, v in fiducial.items()}
-        keys = [k for k in COSMO_PARAMS if k in m["truth"] or k in cosmo_free or k in cfg["fixed"]]
-        mean = forward.full(truth, cosmo_keys=keys)[0]
-        if m["noise"]:
-            rng = np.random.default_rng(m["seed"])
-            mean = mean + np.linalg.cholesky(cov) @ rng.standard_normal(mean.size)
+        mean, meta = fac.mock_vector(cfg, forward, fiducial, cosmo_free, cov)
         parts, pos = [], 0
         for p in sv.parts:
             n = p.flat.size
             parts.append(DataVector(p.ells, p.edges, p.k_eff, p.n_modes,
                                     mean[pos:pos + n].reshape(p.values.shape), source="mock"))
             pos += n
-        meta = {"generated": "ergofit mock", "seed": m["seed"], "noise": m["noise"]}
-        meta.update({f"truth.{k}": v for k, v in m["truth"].items()})
         sv = SpectraVector(sv.tracers, sv.pairs, parts, meta, source="mock")
         for s, p in zip(spectra, parts):
             s.part = p

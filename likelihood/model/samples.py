@@ -10,9 +10,9 @@ from __future__ import annotations
 import numpy as np
 
 from ..config import parameter_set
-from ..errors import ErgofitError
 from .fiducial import COSMO_PARAMS
 from .likelihood import Likelihood
+from .multitracer import build_multi, parameter_lines
 
 
 class SampleSum(Likelihood):
@@ -37,34 +37,19 @@ class SampleSum(Likelihood):
                        - sum(len(p._lin_names) for p in parts))
         self.effects = parts[0].effects
 
-    def _sample_loglike(self, theta):
-        """(n,) sum of the samples' log-likelihoods for (n, n_dim) theta (no prior)."""
-        total = 0.0
-        for p, cols in zip(self.parts, self.columns):
-            total = total + p._loglike_from_chi2(p._chi2(p._theta_values(theta[:, cols])))
-        return total
+    # the parent's log_prob runs prior → _theta_values → _chi2 → _loglike_from_chi2; the samples'
+    # likelihoods are Gaussian with unit precision scale, so the sum of their χ² is −2 Σ ln L_i
+    t_likelihood, precision_scale = False, 1.0
 
-    def log_prob(self, theta):
-        """Log posterior for (n_walkers, n_dim) or (n_dim,) theta; −inf outside the prior."""
-        theta = np.asarray(theta, float)
-        single = theta.ndim == 1
-        n_dim = len(self.parameter_names)
-        if theta.ndim not in (1, 2) or theta.shape[-1] != n_dim:
-            raise ErgofitError(f"log_prob: theta of shape {theta.shape}: expected ({n_dim},) or "
-                               f"(n_walkers, {n_dim}) for the parameters {', '.join(self.parameter_names)}")
-        theta = np.atleast_2d(theta)
-        lp = self.params.log_prior(theta)
-        ok = np.isfinite(lp)
-        out = np.full(theta.shape[0], -np.inf)
-        if ok.any():
-            with np.errstate(over="ignore", invalid="ignore"):
-                res = lp[ok] + self._sample_loglike(theta[ok])
-            out[ok] = np.where(np.isfinite(res), res, -np.inf)
-        return out[0] if single else out
+    def _theta_values(self, theta):
+        return np.atleast_2d(np.asarray(theta, float))
 
-    def chi2(self, theta):
-        th = np.atleast_2d(np.asarray(theta, float))
-        return float(sum(p.chi2(th[0, cols]) for p, cols in zip(self.parts, self.columns)))
+    def _chi2(self, theta):
+        """(n,) sum of the samples' χ² for (n, n_dim) theta; each sample reads its own columns."""
+        return sum(p._chi2(p._theta_values(theta[:, cols])) for p, cols in zip(self.parts, self.columns))
+
+    def _log_prob_single(self, theta):
+        return float(self.log_prob(theta[None])[0])
 
     def log_likelihood(self, params):
         """Sum of the samples' log-likelihoods for a dict of values (each sample takes its own)."""
@@ -103,15 +88,9 @@ class SampleSum(Likelihood):
             lines += ["  " + line for line in p.describe().splitlines()[1:]
                       if not line.startswith(("sampled parameters", "  ", "fixed:"))
                       or line.startswith("  ") and " ells " in line]
-        lines.append("sampled parameters:")
-        for q in self.params.free:
-            lines.append(f"  {q.name:<18s} {q.prior.describe():<30s} start {q.start:g}")
-        if self.params.fixed:
-            lines.append("fixed: " + ", ".join(f"{k} = {v:g}" for k, v in self.params.fixed.items()))
-        return "\n".join(lines)
+        return "\n".join(lines + parameter_lines(self.params))
 
 
 def build_samples(cfg):
     """The :class:`SampleSum` of a validated config with ``samples``."""
-    from .multitracer import build_multi
     return SampleSum(cfg, [build_multi(sc) for sc in cfg.sample_configs])
