@@ -49,14 +49,19 @@ def _number(val, where, positive=False):
     return float(val)
 
 
+def check_entry_keys(entry, allowed, where):
+    """Refuse a key of a list entry (tracer, spectrum, sample) outside ``allowed``."""
+    for key in entry:
+        if key not in allowed:
+            raise ConfigError(f"{where}: unknown key '{key}'{suggest(key, allowed)}; "
+                              f"allowed: {', '.join(allowed)}")
+
+
 def _tracer(entry, where):
     if not isinstance(entry, dict):
         raise ConfigError(f"{where}: expected a mapping like {{name: bright, nbar: 1e-4, b1: 2.0}}, "
                           f"got {entry!r}")
-    for key in entry:
-        if key not in TRACER_KEYS:
-            raise ConfigError(f"{where}: unknown key '{key}'{suggest(key, TRACER_KEYS)}; "
-                              f"allowed: {', '.join(TRACER_KEYS)}")
+    check_entry_keys(entry, TRACER_KEYS, where)
     for key in ("name", "nbar"):
         if key not in entry:
             raise ConfigError(f"{where}.{key} is required")
@@ -87,10 +92,7 @@ def _ells(val, where, auto):
 def _spectrum(entry, where, names, data):
     if not isinstance(entry, dict):
         raise ConfigError(f"{where}: expected a mapping like {{pair: [A, B], ells: [0, 1, 2]}}, got {entry!r}")
-    for key in entry:
-        if key not in SPECTRUM_KEYS:
-            raise ConfigError(f"{where}: unknown key '{key}'{suggest(key, SPECTRUM_KEYS)}; "
-                              f"allowed: {', '.join(SPECTRUM_KEYS)}")
+    check_entry_keys(entry, SPECTRUM_KEYS, where)
     pair = entry.get("pair")
     if not isinstance(pair, list) or len(pair) != 2 or not all(isinstance(t, str) for t in pair):
         raise ConfigError(f"{where}.pair: expected two tracer names like [bright, faint], got {pair!r}")

@@ -26,7 +26,7 @@ import copy
 
 from ..errors import ConfigError
 from ..spectra import TRACER_NAME
-from .multitracer import PER_TRACER, SHARED
+from .multitracer import PER_TRACER, SHARED, check_entry_keys
 from .parameters import parse_parameter, suggest
 
 SAMPLE_KEYS = ("name", "survey", "tracers", "spectra", "data", "covariance")
@@ -65,10 +65,7 @@ def _check_samples(raw, src):
         where = f"{src}: samples[{i}]"
         if not isinstance(s, dict):
             raise ConfigError(f"{where}: expected a mapping with {', '.join(SAMPLE_KEYS)}")
-        for key in s:
-            if key not in SAMPLE_KEYS:
-                raise ConfigError(f"{where}: unknown key '{key}'{suggest(key, SAMPLE_KEYS)}; "
-                                  f"allowed: {', '.join(SAMPLE_KEYS)}")
+        check_entry_keys(s, SAMPLE_KEYS, where)
         name = s.get("name")
         if not isinstance(name, str) or not TRACER_NAME.fullmatch(name):
             raise ConfigError(f"{where}.name: expected a letter then letters/digits, got {name!r}")

@@ -80,19 +80,25 @@ def _write(folder, cfg, name="c.yaml"):
     return str(path)
 
 
-@pytest.mark.parametrize("case", CASES, ids=[c[0] for c in CASES])
-def test_malformed_input_exits_2_with_one_line(case, demo_copy, capsys, monkeypatch):
+def _check_refused(base, case, folder, capsys, monkeypatch):
+    """Apply the case's change to ``base``, run the command in ``folder``: exit code 2, one line
+    with the expected words, nothing written."""
     _, change, command, words = case
-    cfg = copy.deepcopy(BASE)
+    cfg = copy.deepcopy(base)
     change(cfg)
-    monkeypatch.chdir(demo_copy)
-    before = sorted(os.listdir(demo_copy))
-    path = _write(demo_copy, cfg)
+    monkeypatch.chdir(folder)
+    before = sorted(os.listdir(folder))
+    path = _write(folder, cfg)
     code = main([command, path])
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 2
     assert len([l for l in err if "error:" in l]) == 1 and words in err[-1], err
-    assert sorted(os.listdir(demo_copy)) == sorted(before + ["c.yaml"])   # nothing written
+    assert sorted(os.listdir(folder)) == sorted(before + ["c.yaml"])   # nothing written
+
+
+@pytest.mark.parametrize("case", CASES, ids=[c[0] for c in CASES])
+def test_malformed_input_exits_2_with_one_line(case, demo_copy, capsys, monkeypatch):
+    _check_refused(BASE, case, demo_copy, capsys, monkeypatch)
 
 
 def test_duplicate_yaml_key_refused(demo_copy, capsys):
@@ -243,16 +249,6 @@ MULTI_CASES = [
 
 @pytest.mark.parametrize("case", MULTI_CASES, ids=[c[0] for c in MULTI_CASES])
 def test_malformed_multi_tracer_input_exits_2_with_one_line(case, tmp_path, capsys, monkeypatch):
-    _, change, command, words = case
     for name in ("multi_demo_data.txt", "multi_demo_cov.txt"):
         shutil.copy(os.path.join(DEMO, name), tmp_path / name)
-    cfg = copy.deepcopy(MULTI)
-    change(cfg)
-    monkeypatch.chdir(tmp_path)
-    before = sorted(os.listdir(tmp_path))
-    path = _write(tmp_path, cfg)
-    code = main([command, path])
-    err = capsys.readouterr().err.strip().splitlines()
-    assert code == 2
-    assert len([l for l in err if "error:" in l]) == 1 and words in err[-1], err
-    assert sorted(os.listdir(tmp_path)) == sorted(before + ["c.yaml"])
+    _check_refused(MULTI, case, tmp_path, capsys, monkeypatch)
