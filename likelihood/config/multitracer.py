@@ -158,9 +158,16 @@ def validate_tracers(raw, cfg, src):
     cfg["data"].pop("k_max", None)
 
 
-def require_autos(cfg, src):
-    """The analytic Gaussian covariance of a cross spectrum X x Y needs P_XX and P_YY: refuse a
-    cross spectrum whose autos are not fitted."""
+def check_covariance_kind(cfg, src):
+    """Several tracers take a covariance file or the analytic Gaussian one; the latter needs
+    P_XX and P_YY for a cross spectrum X x Y, so a cross spectrum whose autos are not fitted is
+    refused."""
+    kind = cfg["covariance"]["kind"]
+    if kind == "mocks":
+        raise ConfigError(f"{src}: covariance.kind: mocks is not available with several tracers yet; "
+                          "use gaussian or file")
+    if kind != "gaussian":
+        return
     autos = {s["pair"][0] for s in cfg["spectra"] if s["pair"][0] == s["pair"][1]}
     for i, s in enumerate(cfg["spectra"]):
         missing = [t for t in dict.fromkeys(s["pair"]) if t not in autos]

@@ -198,7 +198,8 @@ def parse_parameter(name, spec, where, known=None):
     :func:`likelihood.config.multitracer.parameter_table`).
     Vocabulary: ``{fixed: v}`` or ``{flat: [lo, hi] | gauss: [mean, sigma], bounds: [lo, hi],
     start: v, scale: s, analytic: false}`` (``analytic: true``: integrate the parameter out
-    analytically instead of sampling it; parameters entering the model linearly only). Returns ``(Parameter or None, fixed value or None)``.
+    analytically instead of sampling it; parameters entering the model linearly only).
+    Returns ``(Parameter or None, fixed value or None)``.
     """
     check_name(name, where, known)
     info = (KNOWN if known is None else known)[name]

@@ -48,7 +48,7 @@ import numpy as np
 import yaml
 
 from ..errors import ConfigError
-from .multitracer import check_analytic, parameter_table, require_autos, validate_tracers
+from .multitracer import check_analytic, check_covariance_kind, parameter_table, validate_tracers
 from .parameters import KNOWN, ParameterSet, parse_parameter, suggest
 
 _NUM = (int, float)
@@ -497,8 +497,7 @@ def validate(raw, src="<memory>", base_dir="."):
         raise ConfigError(f"{src}: covariance.mocks (a glob of mock data-vector files) is required with kind: mocks")
 
     if multi:
-        if cov["kind"] == "gaussian":
-            require_autos(cfg, src)
+        check_covariance_kind(cfg, src)
     if cfg["effects"]["observer"] and cfg["observer"]["field"] == "density" \
             and "smoothing" not in cfg["observer"]:
         raise ConfigError(f"{src}: observer.smoothing (radius in Mpc/h, > 0) is required for field: density")

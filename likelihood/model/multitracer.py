@@ -32,7 +32,7 @@ import numpy as np
 
 from ..config.multitracer import parameter_table
 from ..data import DataVector, check_covariance, condition_number
-from ..errors import ConfigError, DataError, ErgofitError
+from ..errors import ConfigError, DataError
 from ..observation.matrix import KBins, WindowMatrix, theory_k_grid
 from ..spectra import SpectraVector, load_spectra, load_spectra_covariance, pair_label
 from ..theory import tracer as tr
@@ -57,10 +57,9 @@ class Spectrum:
     """One fitted spectrum: pair, tracer indices, operator, noise row, mask, data part and its
     observer term (None when off)."""
 
-    def __init__(self, pair, ix, iy, part, operator, mask, noise_name, noise_scale, sn_sub,
-                 observer=None):
-        self.pair, self.ix, self.iy, self.part = tuple(pair), ix, iy, part
-        self.auto = ix == iy
+    def __init__(self, pair, part, operator, mask, noise_name, noise_scale, sn_sub, observer=None):
+        self.pair, self.part = tuple(pair), part
+        self.auto = pair[0] == pair[1]
         self.operator, self.mask, self.observer = operator, mask, observer
         self.noise_name, self.noise_scale = noise_name, noise_scale
         n_b = part.n_bins
@@ -486,7 +485,6 @@ def spectra_models(cfg, srv, sv, k_theory):
     from . import factories as fac
     nbar = {t["name"]: t["nbar"] for t in cfg["tracers"]}
     out = []
-    names = [t["name"] for t in cfg["tracers"]]
     for spec, pair, part in zip(cfg["spectra"], sv.pairs, sv.parts):
         x, y = pair
         auto = x == y
@@ -502,12 +500,12 @@ def spectra_models(cfg, srv, sv, k_theory):
             noise_name, scale = None, 0.0
         used = part.k_eff[mask.reshape(len(part.ells), -1).any(0)]
         obs = fac.observer(cfg, srv, bins, part.ells, op.ic, float(used[0]))
-        out.append(Spectrum(pair, names.index(x), names.index(y), part, op, mask, noise_name, scale,
-                            cfg["data"]["shot_noise_subtracted"], obs))
+        out.append(Spectrum(pair, part, op, mask, noise_name, scale, cfg["data"]["shot_noise_subtracted"],
+                            obs))
     return out
 
 
-def gaussian_covariance(cfg, sv, cosmo, forward, fiducial):
+def analytic_covariance(sv, cosmo, forward, fiducial):
     """Analytic Gaussian covariance of all spectra at the fiducial model (common k bins)."""
     first = sv.parts[0]
     for pair, p in zip(sv.pairs, sv.parts):
@@ -558,18 +556,13 @@ def build_multi(cfg):
         fitted = s.mask.reshape(len(s.part.ells), -1).any(1)
         if not s.auto and any(f for l, f in zip(s.part.ells, fitted) if l % 2):
             warnings.warn(f"spectrum {s.label}: odd multipoles fitted with the plane-parallel model; "
-                          "wide-angle corrections of order 1/(k chi) to the cross spectrum (not "
-                          "included) are of the same order as the Doppler dipole on the largest "
-                          "scales: read the README's regime of validity", tr.PlaneParallelWarning,
-                          stacklevel=2)
-    kind = cfg["covariance"]["kind"]
-    if kind == "file":
+                          "the wide-angle dipole ~ (b_X - b_Y) P/(k chi) (not included) is of the "
+                          "same order as the Doppler dipole at every k: read the README's regime of "
+                          "validity", tr.PlaneParallelWarning, stacklevel=2)
+    if cfg["covariance"]["kind"] == "file":       # file or gaussian (validated)
         cov = load_spectra_covariance(cfg.resolve(cfg["covariance"]["file"]), sv)
-    elif kind == "gaussian":
-        cov = gaussian_covariance(cfg, sv, cosmo, forward, fiducial)
     else:
-        raise ConfigError(f"{cfg.path}: covariance.kind: {kind} is not available with several "
-                          "tracers yet; use gaussian or file")
+        cov = analytic_covariance(sv, cosmo, forward, fiducial)
     if cfg["data"].get("mock") is not None:
         mean, meta = fac.mock_vector(cfg, forward, fiducial, cosmo_free, cov)
         parts, pos = [], 0

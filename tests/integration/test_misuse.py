@@ -230,6 +230,8 @@ MULTI_CASES = [
      "unknown parameter 'b1_brite' (did you mean 'b1_bright'?)"),
     ("name-underscore", lambda c: c["tracers"][0].update(name="very_bright"), "check",
      "tracers[0].name: expected a letter then letters/digits"),
+    ("cov-mocks", lambda c: c.update(covariance={"kind": "mocks", "mocks": "m_*.txt"}), "check",
+     "covariance.kind: mocks is not available with several tracers yet"),
     ("samples-same-name", _as_samples("north", {"bright": "brightS", "faint": "faintS"}), "check",
      "samples: two samples are named 'north'"),
     ("samples-same-tracer", _as_samples("south", {"bright": "brightS"}), "check",
