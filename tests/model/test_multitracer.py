@@ -271,3 +271,31 @@ def test_samples_sum_of_independent_likelihoods(tmp_path):
     assert lik.log_prob(theta[0]) == pytest.approx(ref[0], rel=1e-12)
     assert lik.dof == alone_n.data.size + alone_s.data.size - 9
     assert len(lik.observables()["spectra"]) == 10 and lik.observables()["spectra"][-1] == "south: lrg"
+
+
+@pytest.mark.slow
+def test_analytic_marginalisation_matches_sampling_the_amplitudes():
+    """The f_NL posterior with the shot-noise amplitudes marginalised analytically equals the one
+    with them sampled (emcee, 48 walkers × 4000 steps each): means within 0.1σ, σ within 8 %."""
+    import emcee
+    sampled = copy.deepcopy(TWO)
+    sampled["spectra"][1].pop("shared_nbar")
+    sampled["data"]["mock"]["noise"] = True
+    sampled["parameters"] = {"fnl": {"flat": [-200, 200]}, "b1_bright": {"flat": [0.5, 5]},
+                             "b1_faint": {"flat": [0.5, 5]}, "shot_noise_bright": {"gauss": [1.0, 0.2]},
+                             "shot_noise_faint": {"gauss": [1.0, 0.2]}}
+    marg = copy.deepcopy(sampled)
+    for n in ("shot_noise_bright", "shot_noise_faint"):
+        marg["parameters"][n]["analytic"] = True
+    out = []
+    for raw in (sampled, marg):
+        lik = _build(raw)
+        rng = np.random.default_rng(11)
+        p0 = lik.start + 1e-3 * rng.standard_normal((48, lik.start.size)) * np.maximum(lik.start, 1)
+        s = emcee.EnsembleSampler(48, lik.start.size, lik.log_prob, vectorize=True,
+                                  moves=[(emcee.moves.DEMove(), 0.8), (emcee.moves.DESnookerMove(), 0.2)])
+        s.run_mcmc(p0, 4000, progress=False)
+        f = s.get_chain(discard=1000, flat=True)[:, 0]
+        out.append((f.mean(), f.std()))
+    (m1, s1), (m2, s2) = out
+    assert abs(m1 - m2) < 0.1 * s1 and abs(s2 / s1 - 1) < 0.08, out
