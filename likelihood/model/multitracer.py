@@ -444,17 +444,21 @@ def parameter_lines(params):
 
 # --- factories --------------------------------------------------------------------------------
 def data_spectra(cfg, srv):
-    """The data vector of ``data.file`` (a multi-tracer file, or a single-tracer file when the
-    config has one tracer), reordered to the config's spectra; or empty bins for ``data.mock``."""
+    """(data vector, the file's vector, positions of the former in the latter): the spectra of
+    ``data.file`` (a multi-tracer file, or a single-tracer file when the config has one tracer)
+    that the config names, in its order (a subset of the file's tracers and spectra is allowed);
+    or empty bins for ``data.mock`` (then the file's vector is None)."""
     names = [t["name"] for t in cfg["tracers"]]
     pairs = [tuple(s["pair"]) for s in cfg["spectra"]]
     d = cfg["data"]
     if "file" in d:
         sv = load_spectra(cfg.resolve(d["file"]), names[0] if len(names) == 1 else None)
-        if set(sv.tracers) != set(names):
-            raise DataError(f"{d['file']}: the file's tracers {list(sv.tracers)} differ from the "
-                            f"config's {names}")
-        parts = []
+        absent = [t for t in names if t not in sv.tracers]
+        if absent:
+            raise DataError(f"{d['file']}: the config's tracers {absent} are not in the file "
+                            f"(its tracers: {list(sv.tracers)})")
+        offsets = np.cumsum([0] + sv.sizes)
+        parts, take = [], []
         for pair, spec in zip(pairs, cfg["spectra"]):
             i = sv.index(pair)
             if i is None:
@@ -470,14 +474,16 @@ def data_spectra(cfg, srv):
                 raise DataError(f"{d['file']}: spectrum {pair_label(pair)}: the config asks for "
                                 f"ells {missing} but the file has {list(sv.parts[i].ells)}")
             parts.append(sv.parts[i])
-        return SpectraVector(sv.tracers, pairs, parts, sv.meta, source=sv.source)
+            take.append(np.arange(offsets[i], offsets[i + 1]))
+        return (SpectraVector(names, pairs, parts, sv.meta, source=sv.source), sv,
+                np.concatenate(take))
     m = d["mock"]
     edges = np.linspace(m["k_min"], m["k_max"], m["n_bins"] + 1)
     kb = KBins.from_edges(edges, volume=srv.volume)
     parts = [DataVector(tuple(s["ells"]), edges, kb.k_eff, kb.n_modes,
                         np.zeros((len(s["ells"]), edges.size - 1)), source="mock")
              for s in cfg["spectra"]]
-    return SpectraVector(names, pairs, parts, source="mock")
+    return SpectraVector(names, pairs, parts, source="mock"), None, None
 
 
 def spectra_models(cfg, srv, sv, k_theory):
@@ -541,7 +547,7 @@ def build_multi(cfg):
     cosmo = fac.cosmology(cfg)
     srv = fac.survey(cfg, cosmo)
     fiducial = fiducial_values(cfg, known)          # defaults of the table: the tracers entries
-    sv = data_spectra(cfg, srv)
+    sv, file_sv, take = data_spectra(cfg, srv)
     k_theory = theory_k_grid()
     spectra = spectra_models(cfg, srv, sv, k_theory)
     cosmo_free = [n for n in params.names if n in COSMO_PARAMS]
@@ -560,7 +566,9 @@ def build_multi(cfg):
                           "same order as the Doppler dipole at every k: read the README's regime of "
                           "validity", tr.PlaneParallelWarning, stacklevel=2)
     if cfg["covariance"]["kind"] == "file":       # file or gaussian (validated)
-        cov = load_spectra_covariance(cfg.resolve(cfg["covariance"]["file"]), sv)
+        cov = load_spectra_covariance(cfg.resolve(cfg["covariance"]["file"]), file_sv or sv)
+        if take is not None:
+            cov = cov[np.ix_(take, take)]            # the blocks of the spectra fitted
     else:
         cov = analytic_covariance(sv, cosmo, forward, fiducial)
     if cfg["data"].get("mock") is not None:
