@@ -16,7 +16,7 @@ allowed, an auto spectrum's are not (they vanish). ``k_min``/``k_max`` per spect
 populations (overlapping samples); the cross spectrum then carries the shared Poisson noise
 n̄_XY/(n̄_X n̄_Y) times the amplitude ``shot_noise_X_Y`` (disjoint samples: no cross noise).
 
-Parameters per tracer (names a user can guess): ``b1_NAME``, ``b_e_NAME``, ``s_NAME``,
+Parameters per tracer (names a user can guess): ``b1_NAME``, ``b_e_NAME``, ``s_NAME``, ``p_NAME``,
 ``shot_noise_NAME`` and ``shot_noise_X_Y`` for an overlapping pair; shared by all tracers:
 ``fnl``, ``nu_obs`` and the cosmological parameters. The fiducial values of the per-tracer
 parameters are the ``tracers`` entries (shot-noise amplitudes 1).
@@ -28,7 +28,10 @@ from ..spectra import TRACER_NAME, pair_label
 from .parameters import KNOWN, ParamInfo, suggest
 
 #: per-tracer parameters: base name -> tracers entry key (None: no entry, default from KNOWN)
-PER_TRACER = {"b1": "b1", "b_e": "b_e", "s": "s", "shot_noise": None}
+PER_TRACER = {"b1": "b1", "b_e": "b_e", "s": "s", "p": "p", "shot_noise": None}
+#: label, default and meaning of each per-tracer base name
+BASE_INFO = {**{k: KNOWN[k] for k in ("b1", "b_e", "s", "shot_noise")},
+             "p": ParamInfo("p", 1.0, "tracer", "response of the f_NL bias, Δb ∝ f_NL (b1 − p)")}
 #: global parameters shared by the tracers
 SHARED = ("fnl", "nu_obs", "h", "omega_c", "omega_b", "n_s", "ln_1e10_As", "sigma8")
 
@@ -189,7 +192,7 @@ def parameter_table(cfg):
     for t in cfg["tracers"]:
         name = t["name"]
         for base, key in PER_TRACER.items():
-            info = KNOWN[base]
+            info = BASE_INFO[base]
             table[f"{base}_{name}"] = ParamInfo(f"{info.label}^{{\\rm {name}}}",
                                                 t[key] if key else info.default, "tracer",
                                                 f"{info.doc} of {name}")

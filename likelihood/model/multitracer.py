@@ -99,7 +99,7 @@ class MultiForwardModel:
         def g(key):
             v = values[key]
             return float(v[i] if np.ndim(v) else v)
-        return tr.Tracer(b1=g(f"b1_{name}"), fnl=g("fnl"), p=t["p"], nbar=t["nbar"],
+        return tr.Tracer(b1=g(f"b1_{name}"), fnl=g("fnl"), p=g(f"p_{name}"), nbar=t["nbar"],
                          b_e=g(f"b_e_{name}"), s=g(f"s_{name}"), name=name)
 
     def full(self, values, cosmo_keys=None):
@@ -192,14 +192,15 @@ class MultiForwardModel:
                     sigma8=cosmo.sigma8, growth=cosmo.growth_factor(self.z) / cosmo.growth_factor(0.0))
 
     def x_layout(self):
-        """Columns of the side-by-side coefficient vectors: [(parameter or None, p or None)]:
-        None → 1; (b1_X, None) → b1_X; (b1_X, p_X) → f_NL (b1_X − p_X); (b_e_X/s_X, None)."""
+        """Columns of the side-by-side coefficient vectors: [(parameter or None, p parameter or
+        None)]: None → 1; (b1_X, None) → b1_X; (b1_X, p_X) → f_NL (b1_X − p_X); (b_e_X/s_X, None).
+        p_X enters only through that product, so sampling it keeps the fast path."""
         cols = []
         for t in self.tracers:
             n = t["name"]
             cols += [(None, None), (f"b1_{n}", None)]
             if "fnl" in self.effects:
-                cols.append((f"b1_{n}", t["p"]))
+                cols.append((f"b1_{n}", f"p_{n}"))
             cols += [(f"{par}_{n}", None) for par in self.lin_free[n]]
         return cols
 
@@ -211,7 +212,7 @@ class MultiForwardModel:
         fnl = values["fnl"]
         for j, (key, p) in enumerate(layout):
             if key is not None:
-                x[:, j] = values[key] if p is None else fnl * (values[key] - p)
+                x[:, j] = values[key] if p is None else fnl * (values[key] - values[p])
         return x
 
     def design(self, values, tpl):
@@ -342,7 +343,7 @@ class MultiLikelihood(Likelihood):
         vals = dict(self._fixed_floats)
         vals.update(zip(self.parameter_names, th))
         fnl = vals["fnl"]
-        x = np.array([1.0 if name is None else (vals[name] if p is None else fnl * (vals[name] - p))
+        x = np.array([1.0 if name is None else (vals[name] if p is None else fnl * (vals[name] - vals[p]))
                       for name, p in self._x_spec])
         tpl = self._templates
         c = x[tpl["ia"]] * x[tpl["ib"]]
@@ -356,6 +357,8 @@ class MultiLikelihood(Likelihood):
     @property
     def varied_names(self):
         names = set(self.parameter_names) | {n for n in self.known if n.startswith(("b1_", "shot_noise_"))}
+        if "fnl" in self.effects:
+            names |= {n for n in self.known if n.startswith("p_")}
         if "fnl" in self.effects:
             names.add("fnl")
         if self.observer_on:

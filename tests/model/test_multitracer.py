@@ -61,6 +61,7 @@ def two_obs():
     raw = copy.deepcopy(TWO)
     raw["effects"] = {"observer": True}
     raw["parameters"]["nu_obs"] = {"gauss": [0, 1]}
+    raw["parameters"]["p_faint"] = {"flat": [0.5, 2.0]}      # p enters through f_NL (b1 − p)
     return _build(raw)
 
 
@@ -121,6 +122,7 @@ def test_fast_path_equals_direct_path_two_tracers(which, request):
              "s_bright": rng.uniform(-0.5, 1)}
         if "nu_obs" in two.parameter_names:
             p["nu_obs"] = rng.uniform(-2.5, 2.5)
+            p["p_faint"] = rng.uniform(0.8, 1.6)
         fast, direct = two.model_vector(p, direct=False), two.model_vector(p, direct=True)
         assert np.max(np.abs(fast - direct)) < 1e-10 * np.max(np.abs(direct))
         assert two.log_likelihood(p) == pytest.approx(two.log_likelihood_direct(p), rel=1e-10)
