@@ -387,11 +387,32 @@ class MultiLikelihood(Likelihood):
         tpl = self._templates
         return (self.forward.design(vals, tpl) @ tpl["M"])[0] - self._sn_shift
 
-    derived_names = []
-    derived_labels = []
+    @property
+    def _b1_free(self):
+        return [t["name"] for t in self.forward.tracers if self.params.is_free(f"b1_{t['name']}")]
+
+    @property
+    def derived_names(self):
+        """b1 σ8(z) of each tracer whose b1 is sampled (``b1_sigma8_NAME``)."""
+        return [f"b1_sigma8_{n}" for n in self._b1_free]
+
+    @property
+    def derived_labels(self):
+        return [rf"b_1\sigma_8^{{\rm {n}}}" for n in self._b1_free]
 
     def derived(self, theta):
-        return np.empty((np.atleast_2d(theta).shape[0], 0))
+        """(n, len(derived_names)): b1_X σ8 D(z)/D(0) at the sample's cosmology."""
+        vals = self._theta_values(np.atleast_2d(theta))
+        n = np.atleast_2d(theta).shape[0]
+
+        def amplitude(cosmo):
+            return cosmo.sigma8 * cosmo.growth_factor(self.z) / cosmo.growth_factor(0.0)
+        if self.cosmo_free:
+            amp = np.array([amplitude(self.forward.cosmology({k: float(vals[k][i]) for k in self.cosmo_free}))
+                            for i in range(n)])
+        else:
+            amp = np.full(n, amplitude(self.cosmo))
+        return np.column_stack([vals[f"b1_{t}"] * amp for t in self._b1_free] or [np.empty((n, 0))])
 
     def observables(self):
         """Data per (spectrum, multipole) for plots: spectra, ells, k, data, sigma (masked)."""

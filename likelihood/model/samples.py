@@ -60,11 +60,17 @@ class SampleSum(Likelihood):
         return float(sum(p.log_likelihood_direct({k: v for k, v in params.items() if k in p.known})
                          for p in self.parts))
 
-    derived_names = []
-    derived_labels = []
+    @property
+    def derived_names(self):
+        return [n for p in self.parts for n in p.derived_names]
+
+    @property
+    def derived_labels(self):
+        return [lab for p in self.parts for lab in p.derived_labels]
 
     def derived(self, theta):
-        return np.empty((np.atleast_2d(theta).shape[0], 0))
+        theta = np.atleast_2d(np.asarray(theta, float))
+        return np.hstack([p.derived(theta[:, cols]) for p, cols in zip(self.parts, self.columns)])
 
     def observables(self):
         """Data per (sample, spectrum, multipole), labelled 'sample: spectrum'."""

@@ -101,6 +101,9 @@ def test_one_tracer_reproduces_single_tracer_likelihood(tmp_path, observer):
     np.testing.assert_allclose(b, a, rtol=1e-10)
     for th in theta[:2]:
         assert lik.log_prob(th) == pytest.approx(ref.log_prob(th), rel=1e-10)
+    j = ref.derived_names.index("b1_sigma8")
+    np.testing.assert_allclose(lik.derived(theta)[:, 0], ref.derived(theta)[:, j], rtol=1e-12)
+    assert lik.derived_names == ["b1_sigma8_g"]
     p = {"b1": 1.9, "fnl": 12.0, "shot_noise": 1.1, "b_e": 0.5}
     q = {"b1_g": 1.9, "fnl": 12.0, "shot_noise_g": 1.1, "b_e_g": 0.5}
     if observer:
@@ -273,6 +276,9 @@ def test_samples_sum_of_independent_likelihoods(tmp_path):
     assert lik.log_prob(theta[0]) == pytest.approx(ref[0], rel=1e-12)
     assert lik.dof == alone_n.data.size + alone_s.data.size - 9
     assert len(lik.observables()["spectra"]) == 10 and lik.observables()["spectra"][-1] == "south: lrg"
+    assert lik.derived_names == ["b1_sigma8_bright", "b1_sigma8_faint", "b1_sigma8_lrg"]
+    d = lik.derived(theta)
+    np.testing.assert_allclose(d[:, 2], alone_s.derived(theta[:, [0, 8]])[:, 0], rtol=1e-12)
 
 
 @pytest.mark.slow
