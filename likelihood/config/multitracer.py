@@ -23,6 +23,7 @@ parameters are the ``tracers`` entries (shot-noise amplitudes 1).
 """
 from __future__ import annotations
 
+from ..checks import finite_number, positive_number
 from ..errors import ConfigError
 from ..spectra import TRACER_NAME, pair_label
 from .parameters import KNOWN, ParamInfo, suggest
@@ -40,16 +41,10 @@ SPECTRUM_KEYS = ("pair", "ells", "k_min", "k_max", "shared_nbar")
 
 
 def _number(val, where, positive=False):
-    if isinstance(val, str):
-        try:
-            val = float(val)
-        except ValueError:
-            pass
-    if isinstance(val, bool) or not isinstance(val, (int, float)) or val != val or abs(val) == float("inf"):
-        raise ConfigError(f"{where}: expected a finite number, got {val!r}")
-    if positive and not val > 0:
-        raise ConfigError(f"{where}: must be > 0, got {val}")
-    return float(val)
+    """A finite (positive) number; YAML strings such as '1e-4' are read as numbers, booleans not."""
+    if isinstance(val, bool):
+        raise ConfigError(f"{where} = {val!r}: expected a number")
+    return (positive_number if positive else finite_number)(val, where, ConfigError)
 
 
 def check_entry_keys(entry, allowed, where):

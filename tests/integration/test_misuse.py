@@ -231,6 +231,8 @@ MULTI_CASES = [
      "unknown parameter 'b1_brite' (did you mean 'b1_bright'?)"),
     ("name-underscore", lambda c: c["tracers"][0].update(name="very_bright"), "check",
      "tracers[0].name: expected a letter then letters/digits"),
+    ("nbar-negative", lambda c: c["tracers"][0].update(nbar=-1), "check",
+     "tracers[0].nbar = -1: expected a positive number"),
     ("cov-mocks", lambda c: c.update(covariance={"kind": "mocks", "mocks": "m_*.txt"}), "check",
      "covariance.kind: mocks is not available with several tracers yet"),
     ("samples-same-name", _as_samples("north", {"bright": "brightS", "faint": "faintS"}), "check",
