@@ -114,7 +114,7 @@ class SpectraVector:
                 if t not in self.tracers:
                     raise DataError(f"{src}: spectrum {pair_label(pair)} names tracer '{t}', which "
                                     f"the header's tracers {list(self.tracers)} do not list")
-            key = frozenset(pair) if pair[0] != pair[1] else (pair[0],)
+            key = frozenset(pair)
             if key in seen:
                 raise DataError(f"{src}: spectrum {pair_label(pair)} is given twice")
             seen.add(key)
