@@ -27,10 +27,18 @@ def cmd_check(args):
     return 0
 
 
+def _one_tracer(cfg, command):
+    """Refuse a config with several tracers in a command that does not handle them yet."""
+    if "tracers" in cfg or "samples" in cfg:
+        raise ErgofitError(f"{cfg.path}: ergofit {command} does not handle several tracers or "
+                           "samples yet (tracers/samples section); use check, run or summarize")
+    return cfg
+
+
 def cmd_theory(args):
     from ..report.theory import theory_report
     from ..config.schema import load_config
-    cfg = load_config(args.config)
+    cfg = _one_tracer(load_config(args.config), "theory")
     out = os.path.join(_out_dir(args.out or cfg.output_folder), "theory.txt")
     for line in theory_report(cfg, out, fnl=args.fnl):
         print(line)
@@ -175,12 +183,12 @@ def _write_config_copy(src, dst):
     with open(src, encoding="utf-8") as fh:
         raw = yaml.safe_load(fh)
 
-    def portable(rel, pattern=False):
+    def portable(rel, pattern=False, folder="inputs"):
         path = cfg.resolve(rel)
         files = sorted(glob.glob(path)) if pattern else [path]
         if sum(os.path.getsize(f) for f in files) > COPY_INPUTS_MAX_BYTES:
             return os.path.relpath(path, run_dir)
-        sub = os.path.join("inputs", "mocks") if pattern else "inputs"
+        sub = os.path.join(folder, "mocks") if pattern else folder
         os.makedirs(os.path.join(run_dir, sub), exist_ok=True)
         for f in files:
             target = os.path.join(run_dir, sub, os.path.basename(f))
@@ -188,13 +196,16 @@ def _write_config_copy(src, dst):
                 shutil.copyfile(f, target)
         return os.path.join(sub, os.path.basename(path))
 
-    for sec, key in Config.INPUT_FILES:
-        if isinstance(raw.get(sec), dict) and key in raw[sec]:
-            raw[sec][key] = portable(raw[sec][key], pattern=(sec, key) == ("covariance", "mocks"))
-    geo = (raw.get("survey") or {}).get("geometry") or {}
-    for key in GEOMETRY_FILES:
-        if key in geo:
-            geo[key] = portable(geo[key])
+    # several samples: each sample's files go to inputs/<sample name>/ (names may repeat)
+    blocks = [(raw, "inputs")] + [(s, os.path.join("inputs", s["name"])) for s in raw.get("samples") or []]
+    for block, folder in blocks:
+        for sec, key in Config.INPUT_FILES:
+            if isinstance(block.get(sec), dict) and key in block[sec]:
+                block[sec][key] = portable(block[sec][key], (sec, key) == ("covariance", "mocks"), folder)
+        geo = (block.get("survey") or {}).get("geometry") or {}
+        for key in GEOMETRY_FILES:
+            if key in geo:
+                geo[key] = portable(geo[key], False, folder)
     raw.setdefault("run", cfg.run_name)
     write_text(dst, yaml.safe_dump(raw, sort_keys=False))
 
@@ -244,7 +255,7 @@ def cmd_forecast(args):
     """``ergofit forecast CONFIG [--out DIR] [--check-mcmc] [--mpi] [--processes N]``."""
     from ..config import load_config
     from ..forecast import forecast_lines, forecast_settings, run_forecast
-    cfg = load_config(args.config)
+    cfg = _one_tracer(load_config(args.config), "forecast")
     processes = int(getattr(args, "processes", 0) or 0)
     if processes > 0 and not forecast_settings(cfg)["scan"]:
         processes = 0                          # nothing to spread over a pool
@@ -259,7 +270,9 @@ def cmd_forecast(args):
 
 
 def cmd_simulate(args):
+    from ..config import load_config
     from ..simulate.survey import simulate_survey
+    _one_tracer(load_config(args.config), "simulate")
     simulate_survey(args.config, args.n, out=args.out, mesh_n=args.mesh, check=args.validate,
                     poisson=not args.no_poisson)
     return 0

@@ -69,10 +69,12 @@ def suggest(name, choices):
     return f" (did you mean '{best[0]}'?)" if best else ""
 
 
-def check_name(name, where="parameters"):
-    if name not in KNOWN:
-        raise ConfigError(f"{where}: unknown parameter '{name}'{suggest(name, KNOWN)}; "
-                          f"known: {', '.join(KNOWN)}")
+def check_name(name, where="parameters", known=None):
+    """Refuse a name outside ``known`` (default: the single-tracer table KNOWN)."""
+    known = KNOWN if known is None else known
+    if name not in known:
+        raise ConfigError(f"{where}: unknown parameter '{name}'{suggest(name, known)}; "
+                          f"known: {', '.join(known)}")
 
 
 @dataclass(frozen=True)
@@ -122,10 +124,12 @@ class Parameter:
     prior: Prior
     start: float
     scale: float
+    info: ParamInfo | None = None     # set for names outside KNOWN (per-tracer parameters)
+    analytic: bool = False            # marginalised analytically, not sampled (linear parameters)
 
     @property
     def label(self):
-        return KNOWN[self.name].label
+        return (self.info or KNOWN[self.name]).label
 
 
 class ParameterSet:
@@ -187,14 +191,18 @@ class ParameterSet:
         return name in self.names
 
 
-def parse_parameter(name, spec, where):
+def parse_parameter(name, spec, where, known=None):
     """Parse one entry of the config's ``parameters`` block.
 
+    ``known``: the parameter table (default KNOWN; a multi-tracer config passes its own, see
+    :func:`likelihood.config.multitracer.parameter_table`).
     Vocabulary: ``{fixed: v}`` or ``{flat: [lo, hi] | gauss: [mean, sigma], bounds: [lo, hi],
-    start: v, scale: s}``. Returns ``(Parameter or None, fixed value or None)``.
+    start: v, scale: s, analytic: false}`` (``analytic: true``: integrate the parameter out
+    analytically instead of sampling it; parameters entering the model linearly only).
+    Returns ``(Parameter or None, fixed value or None)``.
     """
-    check_name(name, where)
-    info = KNOWN[name]
+    check_name(name, where, known)
+    info = (KNOWN if known is None else known)[name]
     if not isinstance(spec, dict):
         # a bare number fixes the parameter
         if isinstance(spec, (int, float)) and not isinstance(spec, bool):
@@ -203,7 +211,7 @@ def parse_parameter(name, spec, where):
             return None, float(spec)
         raise ConfigError(f"{where}.{name}: expected a mapping like {{flat: [lo, hi], start: x}} "
                           f"or {{fixed: x}}, got {spec!r}")
-    allowed = ("fixed", "flat", "gauss", "bounds", "start", "scale")
+    allowed = ("fixed", "flat", "gauss", "bounds", "start", "scale", "analytic")
     for key in spec:
         if key not in allowed:
             raise ConfigError(f"{where}.{name}: unknown key '{key}'{suggest(key, allowed)}; "
@@ -239,7 +247,12 @@ def parse_parameter(name, spec, where):
             raise ConfigError(f"{where}.{name}.{key}: expected a finite number, got {val!r}")
         return float(val)
 
+    analytic = spec.get("analytic", False)
+    if not isinstance(analytic, bool):
+        raise ConfigError(f"{where}.{name}.analytic: expected true or false, got {analytic!r}")
     if kind == "fixed":
+        if analytic:
+            raise ConfigError(f"{where}.{name}.analytic: a fixed parameter is not marginalised")
         return None, number("fixed", None)
     try:
         if kind == "flat":
@@ -257,4 +270,4 @@ def parse_parameter(name, spec, where):
     scale = number("scale", 1e-2 * width)
     if scale <= 0:
         raise ConfigError(f"{where}.{name}.scale: must be > 0, got {scale}")
-    return Parameter(name, prior, start, scale), None
+    return Parameter(name, prior, start, scale, None if name in KNOWN else info, analytic), None

@@ -18,6 +18,11 @@ The vocabulary (all sections but ``survey`` optional)::
     survey:     {redshift, nbar, geometry: {shape: box | sphere | shell | cap | randoms | window,
                  volume | radius | r_min, r_max | fsky | randoms: FILE | file: FILE [, volume]}}
     tracer:     {b1, fnl, p, b_e, s}
+    tracers:    [{name, nbar, b1, p, b_e, s}, ...]   several populations (replaces tracer and
+    spectra:    [{pair: [X, Y], ells, k_min, k_max, shared_nbar}, ...]   survey.nbar; see
+                likelihood.config.multitracer)
+    samples:    [{name, survey, tracers, spectra, data, covariance}, ...]   independent samples
+                (see likelihood.config.samples)
     effects:    {rsd, fnl, doppler, potential, window, integral_constraint: none | global, observer}
     observer:   {field: potential | density, smoothing, k_ir, nu_true}
     data:       {file: FILE | mock: {seed, noise, truth: {...}, k_min, k_max, n_bins},
@@ -43,6 +48,7 @@ import numpy as np
 import yaml
 
 from ..errors import ConfigError
+from .multitracer import check_analytic, check_covariance_kind, parameter_table, validate_tracers
 from .parameters import KNOWN, ParameterSet, parse_parameter, suggest
 
 _NUM = (int, float)
@@ -336,7 +342,7 @@ MOCK = {"seed": (_num(0, integer=True), 1), "noise": (_bool, True), "truth": (_m
         "k_min": (_num(0.0, lo_open=True), 0.002), "k_max": (_num(0.0, lo_open=True), 0.05),
         "n_bins": (_num(2, 1000, integer=True), 16)}
 
-TOP = ("run", *SCHEMA, "parameters")
+TOP = ("run", *SCHEMA, "parameters", "tracers", "spectra", "samples")
 
 
 def _check_keys(mapping, allowed, where):
@@ -422,10 +428,19 @@ def validate(raw, src="<memory>", base_dir="."):
     cfg.raw = copy.deepcopy(raw)   # what validate() read: lets pool workers rebuild the model
     run = raw.get("run", os.path.splitext(os.path.basename(src))[0] or "run")
     cfg["run"] = _run_name(run, f"{src}: run")
+    if raw.get("samples") is not None:          # several samples: likelihood.config.samples
+        from .samples import validate_samples
+        return validate_samples(raw, src, base_dir, validate, cfg["run"])
     for name in SCHEMA:
         cfg[name] = _section(raw, name, src)
 
     sv = cfg["survey"]
+    multi = raw.get("tracers") is not None
+    if multi:
+        validate_tracers(raw, cfg, src)     # sets survey.nbar to the tracers' sum
+    elif raw.get("spectra") is not None:
+        raise ConfigError(f"{src}: spectra: needs a tracers section naming the populations")
+    known = parameter_table(cfg) if multi else KNOWN
     for key in ("redshift", "nbar", "geometry"):
         if key not in sv:
             raise ConfigError(f"{src}: survey.{key} is required")
@@ -478,8 +493,8 @@ def validate(raw, src="<memory>", base_dir="."):
         for key, (check, default) in MOCK.items():
             mock[key] = check(mock_raw[key], f"{src}: data.mock.{key}") if key in mock_raw else copy.deepcopy(default)
         for name, val in mock["truth"].items():
-            if name not in KNOWN:
-                raise ConfigError(f"{src}: data.mock.truth: unknown parameter '{name}'{suggest(name, KNOWN)}")
+            if name not in known:
+                raise ConfigError(f"{src}: data.mock.truth: unknown parameter '{name}'{suggest(name, known)}")
             _num()(val, f"{src}: data.mock.truth.{name}")
         if not mock["k_min"] < mock["k_max"]:
             raise ConfigError(f"{src}: data.mock needs k_min < k_max")
@@ -495,17 +510,21 @@ def validate(raw, src="<memory>", base_dir="."):
     if cov["kind"] == "mocks" and "mocks" not in cov:
         raise ConfigError(f"{src}: covariance.mocks (a glob of mock data-vector files) is required with kind: mocks")
 
+    if multi:
+        check_covariance_kind(cfg, src)
     if cfg["effects"]["observer"] and cfg["observer"]["field"] == "density" \
             and "smoothing" not in cfg["observer"]:
         raise ConfigError(f"{src}: observer.smoothing (radius in Mpc/h, > 0) is required for field: density")
 
     params = raw.get("parameters", {}) or {}
     _mapping(params, f"{src}: parameters")
-    free, fixed = [], {}
+    free, fixed, analytic = [], {}, []
     for name, spec in params.items():
-        par, val = parse_parameter(name, spec, f"{src}: parameters")
+        par, val = parse_parameter(name, spec, f"{src}: parameters", known)
         if par is None:
             fixed[name] = val
+        elif par.analytic:
+            analytic.append(check_analytic(par, cfg, src))
         else:
             free.append(par)
     if not free:
@@ -517,6 +536,9 @@ def validate(raw, src="<memory>", base_dir="."):
     cfg["parameters"] = {p.name: {"prior": p.prior.__dict__, "start": p.start, "scale": p.scale} for p in free}
     cfg["fixed"] = fixed
     cfg._param_objects = (free, fixed)
+    cfg._analytic = analytic
+    if analytic:
+        cfg["analytic"] = {p.name: p.prior.__dict__ for p in analytic}
     smp = cfg["sampling"]
     if "moves" in smp:
         _moves(smp["moves"], f"{src}: sampling.moves", smp["walkers"])

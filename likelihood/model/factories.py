@@ -157,9 +157,9 @@ def covariance(cfg, dv, cosmo, forward, fiducial, mask=None):
     return cov, None
 
 
-def mock(cfg, dv, forward, fiducial, cosmo_free, cov_full):
-    """The ``data.mock`` data vector: the direct model at the truth, plus Gaussian noise drawn
-    from ``cov_full`` when ``data.mock.noise``."""
+def mock_vector(cfg, forward, fiducial, cosmo_free, cov_full):
+    """(flat mock vector, meta) of ``data.mock``: the direct model of ``forward`` at the truth,
+    plus Gaussian noise drawn from ``cov_full`` when ``data.mock.noise``."""
     m = cfg["data"]["mock"]
     truth = {k: np.atleast_1d(v) for k, v in fiducial.items()}
     # cosmological values in the mock truth define the mock's cosmology too
@@ -170,6 +170,12 @@ def mock(cfg, dv, forward, fiducial, cosmo_free, cov_full):
         mean = mean + np.linalg.cholesky(cov_full) @ rng.standard_normal(mean.size)
     meta = {"generated": "ergofit mock", "seed": m["seed"], "noise": m["noise"]}
     meta.update({f"truth.{k}": v for k, v in m["truth"].items()})
+    return mean, meta
+
+
+def mock(cfg, dv, forward, fiducial, cosmo_free, cov_full):
+    """The ``data.mock`` data vector (see :func:`mock_vector`)."""
+    mean, meta = mock_vector(cfg, forward, fiducial, cosmo_free, cov_full)
     return DataVector(dv.ells, dv.edges, dv.k_eff, dv.n_modes, mean.reshape(dv.values.shape),
                       meta=meta, source="mock")
 
@@ -198,6 +204,12 @@ def warn_regime(srv, cosmo, dv, mask, ic):
 def build(config):
     """Build the likelihood of a validated config (or a path to a YAML file)."""
     cfg = config if isinstance(config, Config) else load_config(config)
+    if "samples" in cfg:                      # several samples: likelihood.model.samples
+        from .samples import build_samples
+        return build_samples(cfg)
+    if "tracers" in cfg:                      # several tracers: likelihood.model.multitracer
+        from .multitracer import build_multi
+        return build_multi(cfg)
     params = parameters(cfg)
     cosmo = cosmology(cfg)
     srv = survey(cfg, cosmo)

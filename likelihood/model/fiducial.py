@@ -15,10 +15,13 @@ COSMO_PARAMS = ("h", "omega_c", "omega_b", "n_s", "ln_1e10_As", "sigma8")
 TRACER_PARAMS = ("b1", "fnl", "b_e", "s")
 
 
-def fiducial_values(cfg):
-    """Fiducial values of every known parameter: defaults < tracer block < fixed < mock truth."""
-    vals = {n: info.default for n, info in KNOWN.items()}
-    vals.update({k: cfg["tracer"][k] for k in TRACER_PARAMS})
+def fiducial_values(cfg, known=None):
+    """Fiducial values of every known parameter: defaults < tracer block < fixed < mock truth.
+    ``known``: the parameter table of a config with several tracers (its defaults are the
+    ``tracers`` entries; no tracer block)."""
+    vals = {n: info.default for n, info in (KNOWN if known is None else known).items()}
+    if known is None:
+        vals.update({k: cfg["tracer"][k] for k in TRACER_PARAMS})
     vals["nu_obs"] = cfg["observer"]["nu_true"]
     vals.update(cfg["fixed"])
     mock = cfg["data"].get("mock")

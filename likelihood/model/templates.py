@@ -99,28 +99,8 @@ class ForwardModel:
     # --- templates ------------------------------------------------------------------------------
     def basis(self, cosmo, k):
         """Basis kernels Z_a with Z = Σ_a x_a Z_a (see module docstring); names in order."""
-        f = cosmo.growth_rate(self.z) if "rsd" in self.effects else 0.0
-        proj = [e for e in self.effects if e in tr.PROJECTION_TERMS or e in ("doppler", "potential")]
-        fid = self.held               # analysis values: fixed ones win over the mock truth
-        be0 = 0.0 if "b_e" in self.lin_free else fid["b_e"]
-        q0 = 0.0 if "s" in self.lin_free else 2.5 * fid["s"]
-
-        def gam(be, q):
-            g1 = tr.gamma1(cosmo, self.z, be, q) if "doppler" in proj else 0.0
-            g2 = tr.gamma2(cosmo, self.z, be, q) if "potential" in proj else 0.0
-            return g1, g2
-
-        zero = np.zeros_like(k)
-        g1, g2 = gam(be0, q0)
-        basis = [("1", tr.Kernel(A=g2 / k ** 2 + zero, B=g1 / k + zero, F=f)),
-                 ("b1", tr.Kernel(A=np.ones_like(k), B=zero, F=0.0))]
-        if "fnl" in self.effects:
-            basis.append(("v", tr.Kernel(A=tr.fnl_alpha(cosmo, k, self.z), B=zero, F=0.0)))
-        for name, (db, dq) in (("b_e", (1.0, 0.0)), ("s", (0.0, 2.5))):
-            if name in self.lin_free:
-                h1, h2 = gam(be0 + db, q0 + dq)
-                basis.append((name, tr.Kernel(A=(h2 - g2) / k ** 2 + zero, B=(h1 - g1) / k + zero, F=0.0)))
-        return basis
+        return basis_kernels(cosmo, self.z, k, self.effects, self.held["b_e"], self.held["s"],
+                             self.lin_free)
 
     def coefficients(self, values):
         """(n, n_basis) coefficient vectors x for the parameter values (arrays or floats)."""
@@ -170,3 +150,31 @@ class ForwardModel:
             out[:, npair:2 * npair] = c * (np.reshape(values["nu_obs"], (-1, 1)) ** 2 - 1.0)
         out[:, -1] = values["shot_noise"]
         return out
+
+
+def basis_kernels(cosmo, z, k, effects, b_e, s, lin_free):
+    """Basis kernels [(name, Z_a)] of one tracer, Z = Σ_a x_a Z_a with x = (1, b1, v, b_e, 𝒬)
+    (see the module docstring): "1" carries RSD and the projection terms at the held b_e, s (0
+    for those sampled, listed in ``lin_free``), "b1" and "v" the bias and the f_NL response, and
+    each sampled b_e/s its own derivative kernel (γ1, γ2 are linear in b_e and 𝒬)."""
+    f = cosmo.growth_rate(z) if "rsd" in effects else 0.0
+    proj = [e for e in effects if e in tr.PROJECTION_TERMS or e in ("doppler", "potential")]
+    be0 = 0.0 if "b_e" in lin_free else b_e
+    q0 = 0.0 if "s" in lin_free else 2.5 * s
+
+    def gam(be, q):
+        g1 = tr.gamma1(cosmo, z, be, q) if "doppler" in proj else 0.0
+        g2 = tr.gamma2(cosmo, z, be, q) if "potential" in proj else 0.0
+        return g1, g2
+
+    zero = np.zeros_like(k)
+    g1, g2 = gam(be0, q0)
+    basis = [("1", tr.Kernel(A=g2 / k ** 2 + zero, B=g1 / k + zero, F=f)),
+             ("b1", tr.Kernel(A=np.ones_like(k), B=zero, F=0.0))]
+    if "fnl" in effects:
+        basis.append(("v", tr.Kernel(A=tr.fnl_alpha(cosmo, k, z), B=zero, F=0.0)))
+    for name, (db, dq) in (("b_e", (1.0, 0.0)), ("s", (0.0, 2.5))):
+        if name in lin_free:
+            h1, h2 = gam(be0 + db, q0 + dq)
+            basis.append((name, tr.Kernel(A=(h2 - g2) / k ** 2 + zero, B=(h1 - g1) / k + zero, F=0.0)))
+    return basis

@@ -587,6 +587,31 @@ class ObserverTerm:
             rows.append(row)
         return np.array(rows)
 
+    # -- cross spectra of two tracers -------------------------------------------------------------
+    def _cross_estimator(self):
+        est = self._estimator()
+        if self.method == "mesh":
+            raise ErgofitError(f"observer term of a cross spectrum: needs a spherically symmetric "
+                               f"window or a plain volume; {self.window!r} is measured on a mesh "
+                               "(auto spectra only)")
+        return est
+
+    def cross_correction(self, cosmo, z, k, kernel_a, kernel_b):
+        """E_ℓ[m_a, m_b] binned (flat ℓ-major) for the cross spectrum of tracers a and b: the
+        estimator P̂_ℓ = (2ℓ+1)/I₂ <F_ℓ^a F_0^b*> (F_ℓ from a, F_0 from b) applied to the two mean
+        fields, eq. (3) with f_ℓ^a f_0^b; odd ℓ as Π_ℓ. Multiply by (ν² − 1)."""
+        est = self._cross_estimator()
+        return _bilinear(est, est.transforms(*self.mean_field(cosmo, z, k, kernel_a)),
+                         est.transforms(*self.mean_field(cosmo, z, k, kernel_b)))
+
+    def cross_templates(self, cosmo, z, k, kernels_a, kernels_b):
+        """Rows E[m_a,i, m_b,j] for every (i, j), i-major: for m_a = Σ x_i m_a,i and
+        m_b = Σ y_j m_b,j, Σ x_i y_j row_ij = cross_correction(Σ x_i kernels_a[i], Σ y_j kernels_b[j])."""
+        est = self._cross_estimator()
+        fa = [est.transforms(r, m) for r, m in self._basis_fields(cosmo, z, k, kernels_a)]
+        fb = [est.transforms(r, m) for r, m in self._basis_fields(cosmo, z, k, kernels_b)]
+        return np.array([_bilinear(est, f, g) for f in fa for g in fb])
+
     # -- diagnostics ------------------------------------------------------------------------------
     def fundamental_mode(self):
         """(k_F [h/Mpc], description): 2π/(2 r_max) for a window (its diameter), 2π/V^{1/3} for a

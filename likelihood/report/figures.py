@@ -94,7 +94,9 @@ def plot_multipoles(lik: Any, theta: np.ndarray, out_path: str | os.PathLike,
     """Data multipoles with error bars, the model at ``theta``, and residuals in sigma (PNG).
 
     Upper panel: k^k_power P_ell(k) (Mpc/h)^3 (h/Mpc)^k_power for data and model, one colour per
-    ell; lower panel: (data - model) / sigma with the +-1 band. The error bars are the square
+    ell; lower panel: (data - model) / sigma with the +-1 band. With several tracers
+    (``observables()`` has a ``spectra`` list) each spectrum gets its own column of panels,
+    titled by its tracer pair; odd ell show Pi_ell. The error bars are the square
     roots of the covariance diagonal: correlated bins scatter less than they suggest.
     """
     from matplotlib.backends.backend_agg import FigureCanvasAgg
@@ -107,37 +109,51 @@ def plot_multipoles(lik: Any, theta: np.ndarray, out_path: str | os.PathLike,
         raise ErgofitError(
             "likelihood model_observables(): expected one array per ell with the shapes of the data"
         )
-    fig = Figure(figsize=(6.4, 5.6))
+    groups = {}                 # one column of panels per spectrum (several tracers), else one
+    for i, name in enumerate(lik.observables().get("spectra", [None] * len(ells))):
+        groups.setdefault(name, []).append(i)
+    fig = Figure(figsize=(6.4 if len(groups) == 1 else 4.3 * len(groups), 5.6))
     FigureCanvasAgg(fig)
-    top, bottom = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1], "hspace": 0})
-    n = len(ells)
-    for i, (ell, k, d, s, m) in enumerate(zip(ells, ks, data, sigma, model)):
-        colour = f"C{i % 10}"
-        w = k ** k_power
-        shift = 1.0 + 0.012 * (i - (n - 1) / 2)  # spread overlapping points a little
-        top.errorbar(k * shift, w * d, yerr=w * s, fmt="o", ms=3.5, color=colour, capsize=0,
-                     label=rf"$\ell={ell}$")
-        order = np.argsort(k)
-        top.plot(k[order], (w * m)[order], "-", color=colour, lw=1.4)
-        bottom.plot(k * shift, (d - m) / s, "o", ms=3.5, color=colour)
-    bottom.axhspan(-1, 1, color="0.88", zorder=0)
-    bottom.axhline(0, color="0.3", lw=0.8)
-    top.set_xscale("log")
-    top.xaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
-    top.xaxis.set_major_formatter(FormatStrFormatter("%g"))
-    top.xaxis.set_minor_formatter(NullFormatter())
+    axes = fig.subplots(2, len(groups), sharex=True, squeeze=False,
+                        gridspec_kw={"height_ratios": [3, 1], "hspace": 0})
     kp = "" if k_power == 0 else ("k" if k_power == 1 else f"k^{{{k_power}}}")
     power = 3 - k_power
     unit = "" if power == 0 else (r"\ [h^{-1}{\rm Mpc}]" if power == 1 else
                                   rf"\ [(h^{{-1}}{{\rm Mpc}})^{{{power}}}]")
-    top.set_ylabel(rf"${kp}P_\ell(k){unit}$")
     worst = max(float(np.max(np.abs((d - m) / s))) for d, m, s in zip(data, model, sigma))
-    bottom.set_ylim(-max(3.0, 1.15 * worst), max(3.0, 1.15 * worst))
-    bottom.set_ylabel(r"$\Delta/\sigma$")
-    bottom.set_xlabel(r"$k\ [h\,{\rm Mpc}^{-1}]$")
-    top.legend(frameon=False, title="points: data, lines: model", alignment="left")
-    if title:
-        top.set_title(title, fontsize=10)
+    for col, (name, idx) in enumerate(groups.items()):
+        top, bottom = axes[0, col], axes[1, col]
+        n = len(idx)
+        for j, i in enumerate(idx):
+            ell, k, d, s, m = ells[i], ks[i], data[i], sigma[i], model[i]
+            colour = f"C{(j if name is None else ell) % 10}"
+            w = k ** k_power
+            shift = 1.0 + 0.012 * (j - (n - 1) / 2)  # spread overlapping points a little
+            top.errorbar(k * shift, w * d, yerr=w * s, fmt="o", ms=3.5, color=colour, capsize=0,
+                         label=rf"$\ell={ell}$" + (" (Im)" if ell % 2 else ""))
+            order = np.argsort(k)
+            top.plot(k[order], (w * m)[order], "-", color=colour, lw=1.4)
+            bottom.plot(k * shift, (d - m) / s, "o", ms=3.5, color=colour)
+        bottom.axhspan(-1, 1, color="0.88", zorder=0)
+        bottom.axhline(0, color="0.3", lw=0.8)
+        top.set_xscale("log")
+        top.xaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
+        top.xaxis.set_major_formatter(FormatStrFormatter("%g"))
+        top.xaxis.set_minor_formatter(NullFormatter())
+        bottom.set_ylim(-max(3.0, 1.15 * worst), max(3.0, 1.15 * worst))
+        bottom.set_xlabel(r"$k\ [h\,{\rm Mpc}^{-1}]$")
+        if col == 0:
+            top.set_ylabel(rf"${kp}P_\ell(k){unit}$")
+            bottom.set_ylabel(r"$\Delta/\sigma$")
+        if name is None:
+            top.legend(frameon=False, title="points: data, lines: model", alignment="left")
+            if title:
+                top.set_title(title, fontsize=10)
+        else:
+            top.legend(frameon=False, fontsize=8, title=f"{name}", alignment="left")
+    if title and None not in groups:
+        fig.suptitle(f"{title} (points: data, lines: model; odd ell: Pi_ell, P_ell = i Pi_ell)",
+                     fontsize=10)
     path = os.fspath(out_path)
     save_figure(fig, path)
     return path

@@ -60,6 +60,8 @@ CASES = [
      "cosmology.overrides: unknown key 'omega_cdm' (renamed: write 'omega_c'"),
     ("old-ln10As", _set(["parameters", "ln10As"], {"flat": [2.5, 3.5]}), "check",
      "unknown parameter 'ln10As' (renamed: write 'ln_1e10_As'"),
+    ("analytic-one-tracer", _set(["parameters", "shot_noise"], {"flat": [0, 3], "analytic": True}),
+     "check", "analytic marginalisation needs the tracers section"),
     ("old-truth-omega_cdm", _set(["data"], {"mock": {"truth": {"omega_cdm": 0.13}}, "ells": [0, 2]}),
      "check", "data.mock.truth: unknown parameter 'omega_cdm' (renamed: write 'omega_c'"),
     # a precomputed window table (issue 15, item 19)
@@ -88,19 +90,25 @@ def _write(folder, cfg, name="c.yaml"):
     return str(path)
 
 
-@pytest.mark.parametrize("case", CASES, ids=[c[0] for c in CASES])
-def test_malformed_input_exits_2_with_one_line(case, demo_copy, capsys, monkeypatch):
+def _check_refused(base, case, folder, capsys, monkeypatch):
+    """Apply the case's change to ``base``, run the command in ``folder``: exit code 2, one line
+    with the expected words, nothing written."""
     _, change, command, words = case
-    cfg = copy.deepcopy(BASE)
+    cfg = copy.deepcopy(base)
     change(cfg)
-    monkeypatch.chdir(demo_copy)
-    before = sorted(os.listdir(demo_copy))
-    path = _write(demo_copy, cfg)
+    monkeypatch.chdir(folder)
+    before = sorted(os.listdir(folder))
+    path = _write(folder, cfg)
     code = main([command, path])
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 2
     assert len([l for l in err if "error:" in l]) == 1 and words in err[-1], err
-    assert sorted(os.listdir(demo_copy)) == sorted(before + ["c.yaml"])   # nothing written
+    assert sorted(os.listdir(folder)) == sorted(before + ["c.yaml"])   # nothing written
+
+
+@pytest.mark.parametrize("case", CASES, ids=[c[0] for c in CASES])
+def test_malformed_input_exits_2_with_one_line(case, demo_copy, capsys, monkeypatch):
+    _check_refused(BASE, case, demo_copy, capsys, monkeypatch)
 
 
 def test_duplicate_yaml_key_refused(demo_copy, capsys):
@@ -168,3 +176,94 @@ def test_mock_covariance_workflow_as_documented(tmp_path, capsys, monkeypatch):
     lik = likelihood.build(path)
     assert lik.n_mocks == 20                          # covariance.txt not counted as a mock
     assert lik.precision_scale == pytest.approx((20 - 12 - 2) / (20 - 1), rel=1e-12)
+
+
+# --- several tracers: the two-tracer demo config (configs/multi_demo.yaml) with its data files ---
+with open(os.path.join(DEMO, "multi_demo.yaml")) as fh:
+    MULTI = yaml.safe_load(fh)
+
+
+def _spectrum(i, key, value):
+    def change(cfg):
+        cfg["spectra"][i][key] = value
+    return change
+
+
+def _rename_tracer(cfg):
+    cfg["tracers"][1]["name"] = "dim"
+    for s in cfg["spectra"]:
+        s["pair"] = ["dim" if t == "faint" else t for t in s["pair"]]
+    for key in list(cfg["parameters"]):
+        if key.endswith("_faint"):
+            cfg["parameters"][key.replace("_faint", "_dim")] = cfg["parameters"].pop(key)
+
+
+def _drop_auto(cfg):
+    cfg["spectra"] = cfg["spectra"][:2]
+    cfg["covariance"] = {"kind": "gaussian"}
+
+
+def _as_samples(second_name, second_tracers):
+    """The two-tracer demo as sample 'north' plus a copy 'second_name' whose tracers are renamed
+    by ``second_tracers`` (a dict old -> new)."""
+    def change(cfg):
+        keys = ("survey", "tracers", "spectra", "data", "covariance")
+        one = {k: cfg.pop(k) for k in keys}
+        two = copy.deepcopy(one)
+        for t in two["tracers"]:
+            t["name"] = second_tracers.get(t["name"], t["name"])
+        for sp in two["spectra"]:
+            sp["pair"] = [second_tracers.get(x, x) for x in sp["pair"]]
+        cfg["samples"] = [dict(name="north", **one), dict(name=second_name, **two)]
+    return change
+
+
+MULTI_CASES = [
+    ("unknown-tracer", _spectrum(1, "pair", ["bright", "faynt"]), "check",
+     "spectra[1].pair: unknown tracer 'faynt' (did you mean 'faint'?)"),
+    ("odd-ell-auto", _spectrum(0, "ells", [0, 1, 2]), "check",
+     "spectra[0].ells: odd multipoles [1] in an auto spectrum"),
+    ("same-name", lambda c: c["tracers"][1].update(name="bright"), "check",
+     "tracers: two tracers are named 'bright'"),
+    ("header-tracers", _rename_tracer, "check",
+     "the config's tracers ['dim'] are not in the file (its tracers: ['bright', 'faint'])"),
+    ("header-ells", _spectrum(1, "ells", [0, 1, 2, 3, 4]), "check",
+     "spectrum bright x faint: the config asks for ells [4]"),
+    ("header-order", _spectrum(1, "pair", ["faint", "bright"]), "check",
+     "write the config pair in that order, [bright, faint]"),
+    ("cross-without-auto", _drop_auto, "check", "cross spectrum bright x faint without the auto "
+     "spectrum of faint"),
+    ("spectrum-twice", lambda c: c["spectra"].append({"pair": ["faint", "bright"]}), "check",
+     "spectrum faint x bright is listed twice"),
+    ("tracer-and-tracers", lambda c: c.update(tracer={"b1": 2.0}), "check",
+     "tracer: not allowed together with tracers"),
+    ("per-tracer-typo", lambda c: c["parameters"].update(b1_brite={"flat": [0, 3]}), "check",
+     "unknown parameter 'b1_brite' (did you mean 'b1_bright'?)"),
+    ("name-underscore", lambda c: c["tracers"][0].update(name="very_bright"), "check",
+     "tracers[0].name: expected a letter then letters/digits"),
+    ("nbar-negative", lambda c: c["tracers"][0].update(nbar=-1), "check",
+     "tracers[0].nbar = -1: expected a positive number"),
+    ("cov-mocks", lambda c: c.update(covariance={"kind": "mocks", "mocks": "m_*.txt"}), "check",
+     "covariance.kind: mocks is not available with several tracers yet"),
+    ("samples-same-name", _as_samples("north", {"bright": "brightS", "faint": "faintS"}), "check",
+     "samples: two samples are named 'north'"),
+    ("samples-same-tracer", _as_samples("south", {"bright": "brightS"}), "check",
+     "tracer 'faint' is also in sample 'north'"),
+    ("samples-top-survey", lambda c: (_as_samples("south", {"bright": "b2", "faint": "f2"})(c),
+                                      c.update(survey={"redshift": 1.0})), "check",
+     "survey: not allowed at the top level together with samples"),
+    ("analytic-nonlinear", lambda c: c["parameters"]["b1_faint"].update(analytic=True), "check",
+     "parameters.b1_faint.analytic: only parameters entering the model linearly"),
+    ("analytic-not-bool", lambda c: c["parameters"]["shot_noise_faint"].update(analytic="yes"),
+     "check", "parameters.shot_noise_faint.analytic: expected true or false"),
+] + [(f"{cmd}-not-yet{'-samples' if smp else ''}",
+       _as_samples("south", {"bright": "b2", "faint": "f2"}) if smp else (lambda c: None), cmd,
+       f"ergofit {cmd} does not handle several tracers or samples yet")
+      for cmd in ("theory", "forecast", "simulate") for smp in (False, True)]
+
+
+@pytest.mark.parametrize("case", MULTI_CASES, ids=[c[0] for c in MULTI_CASES])
+def test_malformed_multi_tracer_input_exits_2_with_one_line(case, tmp_path, capsys, monkeypatch):
+    for name in ("multi_demo_data.txt", "multi_demo_cov.txt"):
+        shutil.copy(os.path.join(DEMO, name), tmp_path / name)
+    _check_refused(MULTI, case, tmp_path, capsys, monkeypatch)

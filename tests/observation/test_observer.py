@@ -539,3 +539,38 @@ def test_theory_report_writes_observer_plot(tmp_path):
     text = "\n".join(lines)
     assert "sigma_c = " in text and "k_IR = 0.0003336" in text and "2π/(2 r_max)" in text
     assert os.path.exists(out)
+
+
+def test_cross_spectrum_observer_term(cosmo, kgrid):
+    """Cross spectrum of two tracers (F_ℓ from X, F_0 from Y). Plain volume, A-only kernels: the
+    monopole is the shared design's limit with P_Xc P_Yc in place of P_gc², i.e. b_X b_Y (C P)²/
+    (σ_c² V) (Hoffman & Ribak 1991 construction; mode averages by scipy quad). Shell window with
+    Doppler and RSD (radial path): X = Y gives the auto correction, and the cross templates are
+    bilinear in the two kernels, odd ℓ included."""
+    z, V = 1.0, 1e10
+    edges = np.linspace(0.002, 0.05, 9)
+    ob = ObserverTerm(field="potential", volume=V, bins=KBins.from_edges(edges), ells=(0,), ic="none")
+    kx = tr.Kernel(A=np.full(kgrid.size, 2.4), B=np.zeros(kgrid.size), F=0.0)
+    ky = tr.Kernel(A=np.full(kgrid.size, 1.3), B=np.zeros(kgrid.size), F=0.0)
+    sig2 = ob.sigma_c(cosmo, z) ** 2
+    want = mode_average(lambda k: 2.4 * 1.3 * (constraint_kernel(cosmo, z, np.array([k]), "potential",
+                                                                 None)[0] * cosmo.power(k, z)) ** 2
+                        / (sig2 * V), edges)
+    np.testing.assert_allclose(ob.cross_correction(cosmo, z, kgrid, kx, ky), want, rtol=1e-5)
+
+    bins = KBins.from_edges(np.linspace(0.004, 0.04, 5))
+    sh = ObserverTerm(window=ShellWindow(1900.0, 3100.0), bins=bins, ells=(0, 1, 2, 3), ic="global")
+    a = full_kernel(cosmo, z, kgrid, b1=2.4, b_e=1.0)
+    b = full_kernel(cosmo, z, kgrid, b1=1.3, b_e=2.0, s=0.1)
+    np.testing.assert_allclose(sh.cross_correction(cosmo, z, kgrid, a, a),
+                               sh.correction(cosmo, z, kgrid, a), rtol=1e-12)
+    ab = sh.cross_correction(cosmo, z, kgrid, a, b)
+    assert np.max(np.abs(ab[4:8])) > 0                      # a dipole from the Doppler difference
+    rows = sh.cross_templates(cosmo, z, kgrid, [a, b], [a, b])
+    x, y = np.array([0.3, 0.7]), np.array([1.1, -0.4])
+
+    def mix(w):
+        return tr.Kernel(A=w[0] * a.A + w[1] * b.A, B=w[0] * a.B + w[1] * b.B, F=w[0] * a.F + w[1] * b.F)
+    np.testing.assert_allclose(np.outer(x, y).ravel() @ rows,
+                               sh.cross_correction(cosmo, z, kgrid, mix(x), mix(y)), rtol=1e-9,
+                               atol=1e-9 * np.max(np.abs(rows)))
