@@ -25,7 +25,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -35,7 +35,7 @@ from .lightcone import (INTEGRATED_TERMS, LOCAL_TERMS, LightCone, ResolutionWarn
                         TracerCoefficients, check_terms, integrated_pieces, local_pieces)
 from .quadrature import composite_gl
 
-__all__ = ["EstimatorResolution", "Shell", "Templates", "multipole_templates",
+__all__ = ["EstimatorResolution", "Shell", "Templates", "BasisKernel", "multipole_templates",
            "expected_multipoles", "wigner3j_zero_sq", "resolution_grids"]
 
 IC_KINDS = ("none", "global", "radial")
@@ -150,15 +150,62 @@ class _KernelSet:
     names: list
 
 
-def _kernel_set(cone, cosmo, r, q, los, tracer, terms, snapshot_r=None):
+def _kernel_set(cone, cosmo, r, q, los, tracer, terms, snapshot_r=None, weight=1.0):
     # snapshot: every background and tracer coefficient (also χ in the 1/(χℋ) pieces) at r_eff
     bg = cone.background(r if snapshot_r is None else np.full(r.shape, snapshot_r))
     tc = tracer.at(bg["z"])
     loc = local_pieces(bg, tc, [t for t in terms if t in LOCAL_TERMS])
     integ = integrated_pieces(bg, tc, [t for t in terms if t in INTEGRATED_TERMS])
+    if weight != 1.0:
+        loc = [replace(p, radial=weight * p.radial) for p in loc]
+        integ = {t: [replace(pt, outer=weight * pt.outer) for pt in parts]
+                 for t, parts in integ.items()}
     integ = {t: [(pt, pt.inner(bg)) for pt in parts] for t, parts in integ.items()}
     return _KernelSet(loc, [p.qfactor(cosmo, q) for p in loc], integ,
                       [p.name for p in loc] + list(integ))
+
+
+@dataclass(frozen=True)
+class BasisKernel:
+    """A named kernel W = Σ_c weight_c × (the pieces ``terms_c`` of ``tracer_c`` summed): the
+    unit of a template basis. A model linear in a few amplitudes x_a, W = Σ_a x_a W_a, has the
+    estimator expectation Σ_ab x_a x_b T_ab with T_ab the pair templates of the basis kernels
+    W_a (e.g. W_{b_e} = W(b_e = 1) − W(b_e = 0) for the doppler, potential and isw pieces,
+    which are affine in b_e). ``parts``: ((weight, TracerCoefficients, terms), ...)."""
+    name: str
+    parts: tuple
+
+
+@dataclass
+class _BasisSet:
+    """The kernel sets of a basis (one per part, weights folded in), grouped by basis kernel."""
+    names: list
+    elements: list       # per basis kernel: list of _KernelSet
+
+    @property
+    def all_sets(self):
+        return [s for el in self.elements for s in el]
+
+
+def _basis_set(cone, cosmo, r, q, los, basis, snapshot_r):
+    names, elements = [], []
+    for bk in basis:
+        if not isinstance(bk, BasisKernel) or not bk.parts:
+            raise ConfigError(f"basis: expected BasisKernel objects with parts, got {bk!r}")
+        names.append(bk.name)
+        elements.append([_kernel_set(cone, cosmo, r, q, los, tc, check_terms(terms),
+                                     snapshot_r, float(wt)) for wt, tc, terms in bk.parts])
+    if len(set(names)) != len(names):
+        raise ConfigError(f"basis: kernel names {names} must be distinct")
+    return _BasisSet(names, elements)
+
+
+def _side_kernels(J, side, blk, sl, los, v, ic, combine):
+    """_kernels of one side: a tracer's pieces (_KernelSet) or a basis (_BasisSet)."""
+    if isinstance(side, _KernelSet):
+        return _kernels(J, side, blk, sl, los, v, ic, combine)
+    out = [sum(_kernels(J, s, blk, sl, los, v, ic, True)[0] for s in el) for el in side.elements]
+    return np.stack([sum(out)] if combine else out)
 
 
 class _LineOfSight:
@@ -276,7 +323,9 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
     snapshot mocks (the geometry, i.e. the end-point line of sight, stays exact).
 
     ``tracer_a``/``tracer_b``: :class:`TracerCoefficients` (b, b_e, s numbers or callables of
-    z); ``tracer_b`` None: auto spectrum of A. ``terms``: pieces from
+    z), or a sequence of :class:`BasisKernel` (then ``terms`` are ignored and the pairs are
+    keyed by the basis names: the templates of a model linear in the basis amplitudes);
+    ``tracer_b`` None: auto spectrum of A. ``terms``: pieces from
     likelihood.curved.TERMS. ``combine_pieces=True`` sums each tracer's pieces into one kernel
     first (the direct computation; pairs then has the single key ("total", "total")).
     ``edges``: k bin edges [h/Mpc]. Returns :class:`Templates` (units (Mpc/h)³).
@@ -290,8 +339,16 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
     if edges.ndim != 1 or edges.size < 2 or edges[0] <= 0 or np.any(np.diff(edges) <= 0):
         raise ConfigError("edges: expected increasing positive k bin edges in h/Mpc")
     auto = tracer_b is None
-    terms_a = check_terms(terms_a)
-    terms_b = terms_a if terms_b is None else check_terms(terms_b)
+    basis_mode = not isinstance(tracer_a, TracerCoefficients)
+    if basis_mode:
+        tracer_a = tuple(tracer_a)
+        tracer_b = None if auto else tuple(tracer_b)
+        terms_a = tuple(t for bk in tracer_a + (tracer_b or ()) if isinstance(bk, BasisKernel)
+                        for _, _, terms in bk.parts for t in check_terms(terms))
+        terms_b = terms_a
+    else:
+        terms_a = check_terms(terms_a)
+        terms_b = terms_a if terms_b is None else check_terms(terms_b)
     tracer_b = tracer_a if auto else tracer_b
     j_max, (q, wq), (r, wr), (k, wk) = resolution_grids(shell, edges, resolution)
     z_edge = _z_at(cosmo, shell.r_max)
@@ -317,9 +374,13 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
                               f"{[t for t in terms_a + terms_b if t in INTEGRATED_TERMS]}")
         snap_r = float(cosmo.comoving_distance(snapshot_z))
     los = _LineOfSight(r, shell.r_min, shell.r_max, cone) if need_int else None
-    sets = [_kernel_set(cone, cosmo, r, q, los, tracer_a, terms_a, snap_r)]
-    sets.append(sets[0] if auto else _kernel_set(cone, cosmo, r, q, los, tracer_b, terms_b,
-                                                 snap_r))
+    def side(tracer, terms):
+        if basis_mode:
+            return _basis_set(cone, cosmo, r, q, los, tracer, snap_r)
+        return _kernel_set(cone, cosmo, r, q, los, tracer, terms, snap_r)
+    sets = [side(tracer_a, terms_a)]
+    sets.append(sets[0] if auto else side(tracer_b, terms_b))
+    all_sets = [s for st in sets for s in (st.all_sets if basis_mode else [st])]
     jk = spherical_jn_all(j_max + 5, k[:, None] * r[None, :])
     names_a = ["total"] if combine_pieces else sets[0].names
     names_b = ["total"] if combine_pieces else sets[1].names
@@ -337,7 +398,7 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
         if need_int:
             nodes, weights, bgn = los.near_grid(float(qb[-1]))
             jn = spherical_jn_all(n_top, qb[:, None] * nodes[None, :]) if nodes.size else None
-            for kset in sets:
+            for kset in all_sets:
                 for parts in kset.integ.values():
                     for part, _ in parts:
                         near[id(part)] = weights * part.inner(bgn) if nodes.size else weights
@@ -350,8 +411,8 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
                 continue
             sl = slice(q0 + qa, q0 + qb.size)
             blk = (qb[qa:], r, jq[:, qa:], None if jn is None else jn[:, qa:], near)
-            WA = _kernels(J, sets[0], blk, sl, los, v, ic, combine_pieces)
-            WB = WA if auto else _kernels(J, sets[1], blk, sl, los, v, ic, combine_pieces)
+            WA = _side_kernels(J, sets[0], blk, sl, los, v, ic, combine_pieces)
+            WB = WA if auto else _side_kernels(J, sets[1], blk, sl, los, v, ic, combine_pieces)
             if J not in coefs:
                 coefs[J] = _g_coefficients(J, ells)
             nk_a = k.size - ka
