@@ -18,7 +18,10 @@ The vocabulary (all sections but ``survey`` optional)::
     survey:     {redshift, nbar, geometry: {shape: box | sphere | shell | cap | randoms,
                  volume | radius | r_min, r_max | fsky | randoms: FILE}}
     tracer:     {b1, fnl, p, b_e, s}
-    effects:    {rsd, fnl, doppler, potential, window, integral_constraint: none | global, observer}
+    effects:    {rsd, fnl, doppler, potential, window, integral_constraint: none | global | radial,
+                 observer, lensing, isw, time_delay}   (radial and the last three: curved_sky)
+    engine:     {kind: plane_parallel | curved_sky, snapshot, bias_evolution, resolution}
+                (see likelihood.config.engine)
     observer:   {field: potential | density, smoothing, k_ir, nu_true}
     data:       {file: FILE | mock: {seed, noise, truth: {...}, k_min, k_max, n_bins},
                  ells, k_min, k_max, shot_noise_subtracted}
@@ -43,6 +46,8 @@ import numpy as np
 import yaml
 
 from ..errors import ConfigError
+from .engine import BIAS_EVOLUTION, ENGINES, check_engine
+from .engine import resolution as engine_resolution
 from .parameters import KNOWN, ParameterSet, parse_parameter, suggest
 
 _NUM = (int, float)
@@ -270,8 +275,19 @@ SCHEMA = {
         "doppler": (_bool, True),
         "potential": (_bool, True),
         "window": (_bool, True),
-        "integral_constraint": (_choice("none", "global"), "global"),
+        "integral_constraint": (_choice("none", "global", "radial"), "global"),
         "observer": (_bool, False),
+        # integrated terms: curved-sky engine only; no default here (config/engine.py)
+        "lensing": (_bool, None),
+        "isw": (_bool, None),
+        "time_delay": (_bool, None),
+    },
+    # the theory engine (config/engine.py); a plane-parallel config stores nothing here
+    "engine": {
+        "kind": (_choice(*ENGINES), None),
+        "snapshot": (_bool, None),
+        "bias_evolution": (_choice(*BIAS_EVOLUTION), None),
+        "resolution": (engine_resolution, None),
     },
     "observer": {
         "field": (_choice("potential", "density"), "potential"),
@@ -387,6 +403,8 @@ class Config(dict):
         stay out: they do not change the posterior."""
         core = {k: copy.deepcopy(v) for k, v in self.items()
                 if k not in ("forecast", "output", "run", "sampling")}
+        if not core.get("engine"):
+            core.pop("engine", None)      # plane-parallel: the hash of configs before engines
         for sec, key in self.INPUT_FILES:
             if key in core.get(sec, {}):
                 core[sec][key] = self._file_digest(core[sec][key])
@@ -480,6 +498,8 @@ def validate(raw, src="<memory>", base_dir="."):
         _need_file(cfg, cov["file"], "covariance.file")
     if cov["kind"] == "mocks" and "mocks" not in cov:
         raise ConfigError(f"{src}: covariance.mocks (a glob of mock data-vector files) is required with kind: mocks")
+
+    check_engine(cfg, src)
 
     if cfg["effects"]["observer"] and cfg["observer"]["field"] == "density" \
             and "smoothing" not in cfg["observer"]:

@@ -15,6 +15,7 @@ import warnings
 import numpy as np
 
 from ..config import Config, load_config, parameter_set, validate
+from ..config.engine import is_curved
 from ..data import (DataVector, check_covariance, covariance_from_mocks, gaussian_covariance,
                     load_covariance)
 from ..errors import DataError
@@ -198,6 +199,9 @@ def warn_regime(srv, cosmo, dv, mask, ic):
 def build(config):
     """Build the likelihood of a validated config (or a path to a YAML file)."""
     cfg = config if isinstance(config, Config) else load_config(config)
+    if is_curved(cfg):                       # engine.kind: curved_sky (model/curved.py)
+        from . import curved
+        return curved.build(cfg)
     params = parameters(cfg)
     cosmo = cosmology(cfg)
     srv = survey(cfg, cosmo)
