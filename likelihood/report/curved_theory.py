@@ -106,7 +106,7 @@ def curved_report(cfg, out_path, fnl=None):
                  "k in h/Mpc, P in (Mpc/h)^3\n")
         fh.write("# columns: ell k_eff sigma P_curved P_plane_parallel "
                  + " ".join(f"d_{n}" for n in names) + "\n")
-        np.savetxt(fh, table, fmt="%.6e")
+        np.savetxt(fh, table, fmt="%.9e")
     open_atomic(stem + ".txt", write)
     plot_shifts(c, stem + ".png")
     lines = [f"curved-sky against plane-parallel, shifts in sigma of the data: {stem}.txt; "
