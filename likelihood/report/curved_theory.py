@@ -130,25 +130,29 @@ def curved_report(cfg, out_path, fnl=None):
 
 def plot_shifts(c, path):
     """Shift of each bin in σ against k, one panel per multipole: curved-sky terms (solid),
-    plane-parallel terms (dotted), approximations (dashed)."""
+    plane-parallel terms (dotted), approximations (dashed); symmetric-log axis (linear within
+    ±1e-3 σ) so that the small terms show beside RSD."""
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
     ells = c["ells"]
-    fig, axes = plt.subplots(1, len(ells), figsize=(5.2 * len(ells), 4.2), squeeze=False)
-    cmap = plt.get_cmap("tab10")
+    fig, axes = plt.subplots(1, len(ells), figsize=(5.0 * len(ells) + 1.8, 4.2), squeeze=False)
+    import matplotlib.ticker  # noqa: F401  (NullFormatter for the minor ticks)
+    cmap = plt.get_cmap("tab20")
     for ax, l in zip(axes[0], ells):
         sel = c["ell"] == l
         for j, (name, d) in enumerate(c["steps"].items()):
             ls = ":" if name.startswith("plane_parallel_") else \
                 "--" if name.startswith("approx_") or name == "total" else "-"
-            ax.plot(c["k"][sel], d[sel] / c["sigma"][sel], ls=ls, color=cmap(j % 10), lw=1.5,
+            ax.plot(c["k"][sel], d[sel] / c["sigma"][sel], ls=ls, color=cmap(j % 20), lw=1.5,
                     marker="o", ms=2.5, label=name)
         ax.axhline(0.0, color="0.6", lw=0.8)
         ax.set_xscale("log")
+        ax.set_yscale("symlog", linthresh=1e-3)
+        ax.xaxis.set_minor_formatter(matplotlib.ticker.NullFormatter())
         ax.set_xlabel(r"$k\ [h\,{\rm Mpc}^{-1}]$")
         ax.set_title(rf"$\Delta P_{l} / \sigma$")
-    axes[0, 0].legend(fontsize=6.5)
+    axes[0, -1].legend(fontsize=6.5, loc="center left", bbox_to_anchor=(1.02, 0.5))
     fig.tight_layout()
     save_figure(fig, path, dpi=110, tight=False)
     plt.close(fig)
