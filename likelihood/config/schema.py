@@ -161,14 +161,17 @@ def _mapping(val, where):
 
 
 # --- forecast section (Fisher forecasts and f_NL bias studies, read by likelihood.forecast) ---
-# forecast: {neglect: [doppler, potential, fnl, rsd, integral_constraint, window, observer],
+# forecast: {neglect: [doppler, potential, fnl, rsd, integral_constraint, window, observer,
+#                      plane_parallel, radial_integral_constraint, lensing, isw, time_delay],
 #            parameters: [NAME, ...], priors: {NAME: sigma}, threshold: x, step_rtol: x,
 #            scan: {quantity: redshift | volume | fsky | thickness | b1 | nbar | b_e | s | k_min,
 #                   values: [x, ...] | range: [lo, hi, n], spacing: linear | log,
 #                   redshift_geometry: recentre | fixed_volume,
 #                   bias_evolution: constant | inverse_growth}}
 # Defaults are applied by likelihood.forecast (none are stored here).
-FORECAST_NEGLECT = ("doppler", "potential", "fnl", "rsd", "integral_constraint", "window", "observer")
+FORECAST_NEGLECT = ("doppler", "potential", "fnl", "rsd", "integral_constraint", "window", "observer",
+                    # curved-sky truth models only (config/variants.py)
+                    "plane_parallel", "radial_integral_constraint", "lensing", "isw", "time_delay")
 FORECAST_SCAN = ("redshift", "volume", "fsky", "thickness", "b1", "nbar", "b_e", "s", "k_min")
 _SCAN_POSITIVE = ("redshift", "volume", "fsky", "thickness", "nbar", "k_min")
 
