@@ -48,3 +48,13 @@ def test_curved_config_refused_in_one_line(write_config, tmp_path, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "survey.geometry.shape" in err[0]
     assert not (tmp_path / "out").exists()
+
+
+def test_simulate_validate_refused_for_light_cone_model(write_config, tmp_path, capsys):
+    """The mocks are snapshots: validating them against the light-cone model is refused in one
+    line before any mock is made."""
+    path = write_config(CURVED_SMALL)
+    assert main(["simulate", path, "--n", "2", "--validate", "--out", str(tmp_path / "m")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "engine.snapshot: true" in err[0]
+    assert not (tmp_path / "m").exists()
