@@ -15,6 +15,7 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 import resource  # noqa: E402
 import tempfile  # noqa: E402
 import time  # noqa: E402
+import timeit  # noqa: E402
 import warnings  # noqa: E402
 
 import numpy as np  # noqa: E402
@@ -25,11 +26,9 @@ from likelihood.model import build  # noqa: E402
 
 
 def per_call(fn, n, *args):
+    """Seconds per call of fn(*args), after one warm-up call."""
     fn(*args)
-    t0 = time.perf_counter()
-    for _ in range(n):
-        fn(*args)
-    return (time.perf_counter() - t0) / n
+    return timeit.timeit(lambda: fn(*args), number=n) / n
 
 
 def main():
