@@ -31,8 +31,7 @@ def _curved(write_config, *extra):
     from tests.conftest import merge
     over = CURVED
     for e in extra:
-        over = merge(over, e) if "parameters" not in e else {**merge(over, e),
-                                                             "parameters": e["parameters"]}
+        over = merge(over, e)           # a "parameters" block replaces the base one
     return write_config(over)
 
 
