@@ -40,7 +40,7 @@ import warnings
 import numpy as np
 
 from ..config.engine import INTEGRATED_EFFECTS
-from ..curved import TracerCoefficients
+from ..curved import ResolutionWarning, TracerCoefficients
 from ..curved.estimator import (BasisKernel, EstimatorResolution, Shell, Templates,
                                 multipole_templates)
 from ..io import cache_folder, open_atomic
@@ -162,9 +162,18 @@ class CurvedForwardModel:
 
     # --- templates ------------------------------------------------------------------------------
     def _engine(self, cosmo, tracer, combine):
-        return multipole_templates(cosmo, self.shell, self.edges, tracer, self.terms,
-                                   ells=self.ells, ic=self.ic, resolution=self.resolution,
-                                   combine_pieces=combine, snapshot_z=self.snapshot_z)
+        """One engine run; its ResolutionWarnings are re-issued naming the config key."""
+        with warnings.catch_warnings(record=True) as rec:
+            warnings.simplefilter("always", ResolutionWarning)
+            t = multipole_templates(cosmo, self.shell, self.edges, tracer, self.terms,
+                                    ells=self.ells, ic=self.ic, resolution=self.resolution,
+                                    combine_pieces=combine, snapshot_z=self.snapshot_z)
+        for w in rec:
+            msg = str(w.message)
+            if issubclass(w.category, ResolutionWarning):
+                msg += " (config: engine.resolution)"
+            warnings.warn(msg, w.category, stacklevel=3)
+        return t
 
     def cache_key(self, cosmo):
         """sha256 of everything the pair templates depend on (cosmology by its parameters and
