@@ -311,6 +311,70 @@ def ic_monopole(profile, v, ic):
     return profile
 
 
+@dataclass
+class _Sides:
+    """The kernel sets of the two tracers of a spectrum (the same object twice for an auto
+    spectrum), every _KernelSet among them, the line of sight of the integrated pieces."""
+    sets: list
+    all_sets: list
+    los: object
+    need_int: bool
+    snapshot_z: object
+
+
+def _kernel_sides(cosmo, shell, r, q, tracer_a, terms_a, tracer_b, terms_b, snapshot_z):
+    """Validated kernel sets of tracers A and B on the window nodes ``r`` and the q grid
+    (TracerCoefficients with terms, or sequences of BasisKernel; see multipole_templates)."""
+    auto = tracer_b is None
+    basis_mode = not isinstance(tracer_a, TracerCoefficients)
+    if basis_mode:
+        tracer_a = tuple(tracer_a)
+        tracer_b = None if auto else tuple(tracer_b)
+        terms_a = tuple(t for bk in tracer_a + (tracer_b or ()) if isinstance(bk, BasisKernel)
+                        for _, _, terms in bk.parts for t in check_terms(terms))
+        terms_b = terms_a
+    else:
+        terms_a = check_terms(terms_a)
+        terms_b = terms_a if terms_b is None else check_terms(terms_b)
+    tracer_b = tracer_a if auto else tracer_b
+    cone = LightCone(cosmo, _z_at(cosmo, shell.r_max) * 1.01 + 0.01)
+    need_int = any(t in INTEGRATED_TERMS for t in terms_a + terms_b)
+    snap_r = None
+    if snapshot_z is not None:
+        try:
+            snapshot_z = float(snapshot_z)
+        except (TypeError, ValueError):
+            raise ConfigError(f"snapshot_z = {snapshot_z!r}: expected a redshift") from None
+        if not 0.0 < snapshot_z < 0.99 * cone.z_max:
+            raise ConfigError(f"snapshot_z = {snapshot_z}: expected 0 < z < {0.99 * cone.z_max:.3g}")
+        if need_int:
+            raise ConfigError("snapshot_z: the snapshot mode has local terms only; drop "
+                              f"{[t for t in terms_a + terms_b if t in INTEGRATED_TERMS]}")
+        snap_r = float(cosmo.comoving_distance(snapshot_z))
+    los = _LineOfSight(r, shell.r_min, shell.r_max, cone) if need_int else None
+
+    def side(tracer, terms):
+        if basis_mode:
+            return _basis_set(cone, cosmo, r, q, los, tracer, snap_r)
+        return _kernel_set(cone, cosmo, r, q, los, tracer, terms, snap_r)
+    sets = [side(tracer_a, terms_a)]
+    sets.append(sets[0] if auto else side(tracer_b, terms_b))
+    all_sets = [st for one in sets for st in (one.all_sets if basis_mode else [one])]
+    return _Sides(sets, all_sets, los, need_int, snapshot_z)
+
+
+def _near_integrals(los, all_sets, qb, n_top):
+    """(j_J on the near line-of-sight nodes, {id(part): weights × β there}) for a q block."""
+    nodes, weights, bgn = los.near_grid(float(qb[-1]))
+    jn = spherical_jn_all(n_top, qb[:, None] * nodes[None, :]) if nodes.size else None
+    near = {}
+    for kset in all_sets:
+        for parts in kset.integ.values():
+            for part, _ in parts:
+                near[id(part)] = weights * part.inner(bgn) if nodes.size else weights
+    return jn, near
+
+
 def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"),
                         tracer_b=None, terms_b=None, ells=(0, 2, 4), ic="none",
                         resolution=EstimatorResolution(), combine_pieces=False,
@@ -339,48 +403,16 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
     if edges.ndim != 1 or edges.size < 2 or edges[0] <= 0 or np.any(np.diff(edges) <= 0):
         raise ConfigError("edges: expected increasing positive k bin edges in h/Mpc")
     auto = tracer_b is None
-    basis_mode = not isinstance(tracer_a, TracerCoefficients)
-    if basis_mode:
-        tracer_a = tuple(tracer_a)
-        tracer_b = None if auto else tuple(tracer_b)
-        terms_a = tuple(t for bk in tracer_a + (tracer_b or ()) if isinstance(bk, BasisKernel)
-                        for _, _, terms in bk.parts for t in check_terms(terms))
-        terms_b = terms_a
-    else:
-        terms_a = check_terms(terms_a)
-        terms_b = terms_a if terms_b is None else check_terms(terms_b)
-    tracer_b = tracer_a if auto else tracer_b
     j_max, (q, wq), (r, wr), (k, wk) = resolution_grids(shell, edges, resolution)
-    z_edge = _z_at(cosmo, shell.r_max)
-    cone = LightCone(cosmo, z_edge * 1.01 + 0.01)
     w = shell._eval("weight", shell.weight, r)
     base = wr * r ** 2 * w
     i2 = 4.0 * np.pi * np.sum(wr * r ** 2 * w ** 2)
     v = base / base.sum()
     pq = np.asarray(cosmo.power(q, 0.0), dtype=float)
     meas = (2.0 / np.pi) * wq * q * q * pq
-
-    need_int = any(t in INTEGRATED_TERMS for t in terms_a + terms_b)
-    snap_r = None
-    if snapshot_z is not None:
-        try:
-            snapshot_z = float(snapshot_z)
-        except (TypeError, ValueError):
-            raise ConfigError(f"snapshot_z = {snapshot_z!r}: expected a redshift") from None
-        if not 0.0 < snapshot_z < 0.99 * cone.z_max:
-            raise ConfigError(f"snapshot_z = {snapshot_z}: expected 0 < z < {0.99 * cone.z_max:.3g}")
-        if need_int:
-            raise ConfigError("snapshot_z: the snapshot mode has local terms only; drop "
-                              f"{[t for t in terms_a + terms_b if t in INTEGRATED_TERMS]}")
-        snap_r = float(cosmo.comoving_distance(snapshot_z))
-    los = _LineOfSight(r, shell.r_min, shell.r_max, cone) if need_int else None
-    def side(tracer, terms):
-        if basis_mode:
-            return _basis_set(cone, cosmo, r, q, los, tracer, snap_r)
-        return _kernel_set(cone, cosmo, r, q, los, tracer, terms, snap_r)
-    sets = [side(tracer_a, terms_a)]
-    sets.append(sets[0] if auto else side(tracer_b, terms_b))
-    all_sets = [s for st in sets for s in (st.all_sets if basis_mode else [st])]
+    sides = _kernel_sides(cosmo, shell, r, q, tracer_a, terms_a, tracer_b, terms_b, snapshot_z)
+    sets, all_sets, los, need_int = sides.sets, sides.all_sets, sides.los, sides.need_int
+    snapshot_z = sides.snapshot_z
     jk = spherical_jn_all(j_max + 5, k[:, None] * r[None, :])
     names_a = ["total"] if combine_pieces else sets[0].names
     names_b = ["total"] if combine_pieces else sets[1].names
@@ -394,14 +426,7 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
         # orders J with j_J(q r) not negligible anywhere in this block (bessel_x_min rule)
         n_top = min(j_max, bessel_order_max(float(qb[-1]) * shell.r_max))
         jq = spherical_jn_all(n_top + 1, qb[:, None] * r[None, :])
-        jn, near = None, {}
-        if need_int:
-            nodes, weights, bgn = los.near_grid(float(qb[-1]))
-            jn = spherical_jn_all(n_top, qb[:, None] * nodes[None, :]) if nodes.size else None
-            for kset in all_sets:
-                for parts in kset.integ.values():
-                    for part, _ in parts:
-                        near[id(part)] = weights * part.inner(bgn) if nodes.size else weights
+        jn, near = _near_integrals(los, all_sets, qb, n_top) if need_int else (None, {})
         for J in range(0, n_top + 1):
             if J == 0 and ic == "radial":
                 continue            # ic_monopole(…, "radial") = 0: nothing to add
