@@ -91,10 +91,10 @@ def check_engine(cfg, src):
     if not eff["window"]:
         raise ConfigError(f"{src}: effects.window: false is not possible with engine.kind: "
                           "curved_sky (the survey's shell is the window it models); set it true")
-    if eff["observer"]:
-        raise ConfigError(f"{src}: effects.observer: the observer term is not available with "
-                          "engine.kind: curved_sky yet (with integral_constraint: radial it "
-                          "vanishes exactly on the full sky); set it false")
+    if eff["observer"] and eff["integral_constraint"] == "radial":
+        raise ConfigError(f"{src}: effects.observer: with integral_constraint: radial the "
+                          "constrained-field observer term vanishes exactly on the full sky "
+                          "(the radial mean removes every isotropic field); set it false")
     snapshot = eng.get("snapshot", False)
     for key in INTEGRATED_EFFECTS:
         if snapshot and eff.get(key):

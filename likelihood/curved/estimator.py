@@ -36,6 +36,7 @@ from .lightcone import (INTEGRATED_TERMS, LOCAL_TERMS, LightCone, ResolutionWarn
 from .quadrature import composite_gl
 
 __all__ = ["EstimatorResolution", "Shell", "Templates", "BasisKernel", "multipole_templates",
+           "monopole_profiles", "radial_field_templates", "radial_field_multipoles",
            "expected_multipoles", "wigner3j_zero_sq", "resolution_grids"]
 
 IC_KINDS = ("none", "global", "radial")
@@ -587,6 +588,27 @@ def _noise(shell, r, wr, w, base, v, i2, k, wk, edges, ells, ic, jk):
     return _bin(out, wk, edges.size - 1)
 
 
+def _radial_transforms(shell, edges, profiles, ells, ic, resolution):
+    """(bin weights, (2ℓ+1)(4π)²/I₂ × phase per ℓ, f_ℓ(k) per ℓ ∪ {0}) of profiles (n_a, n_r)
+    on the window nodes of ``resolution``: f_ℓ = ∫ r² w m_IC j_ℓ(kr) dr (see
+    radial_field_multipoles)."""
+    if ic not in IC_KINDS:
+        raise ConfigError(f"ic = {ic!r}: expected one of {IC_KINDS}")
+    edges = np.asarray(edges, dtype=float)
+    _, _, (r, wr), (k, wk) = resolution_grids(shell, edges, resolution)
+    w = shell._eval("weight", shell.weight, r)
+    base = wr * r ** 2 * w
+    i2 = 4.0 * np.pi * np.sum(wr * r ** 2 * w ** 2)
+    m = ic_monopole(np.atleast_2d(profiles), base / base.sum(), ic)
+    jk = spherical_jn_all(max(ells), k[:, None] * r[None, :])
+    f = {l: (base * m) @ jk[l].T for l in set(ells) | {0}}                    # (n_a, n_k)
+    fac = {}
+    for l in ells:
+        phase = (-1j) ** l if l % 2 == 0 else (-1j) ** l / 1j
+        fac[l] = (2 * l + 1) * (4 * np.pi) ** 2 / i2 * phase.real
+    return wk, fac, f
+
+
 def radial_field_multipoles(shell, edges, r_tab, m_tab, ells=(0, 2, 4), ic="none",
                             resolution=EstimatorResolution(k_nodes=16)):
     """The estimator applied to a deterministic field isotropic about the observer, m(r)
@@ -601,25 +623,61 @@ def radial_field_multipoles(shell, edges, r_tab, m_tab, ells=(0, 2, 4), ic="none
     1/r_max (4 nodes miss it by up to 100 % in the bins where it changes sign).
     """
     from scipy.interpolate import CubicSpline
-    if ic not in IC_KINDS:
-        raise ConfigError(f"ic = {ic!r}: expected one of {IC_KINDS}")
     edges = np.asarray(edges, dtype=float)
-    _, _, (r, wr), (k, wk) = resolution_grids(shell, edges, resolution)
+    _, _, (r, _), _ = resolution_grids(shell, edges, resolution)
     r_tab, m_tab = np.asarray(r_tab, dtype=float), np.asarray(m_tab, dtype=float)
     if r_tab.ndim != 1 or r_tab.shape != m_tab.shape or r_tab[0] > r[0] or r_tab[-1] < r[-1]:
         raise ConfigError("radial field: r_tab, m_tab must be 1-D of equal length and cover "
                           f"the shell [{shell.r_min}, {shell.r_max}] Mpc/h")
-    w = shell._eval("weight", shell.weight, r)
-    base = wr * r ** 2 * w
-    i2 = 4.0 * np.pi * np.sum(wr * r ** 2 * w ** 2)
-    m = ic_monopole(CubicSpline(np.log(r_tab), m_tab)(np.log(r)), base / base.sum(), ic)
-    f = {l: spherical_jn_all(max(ells), k[:, None] * r[None, :])[l] @ (base * m)
-         for l in set(ells) | {0}}
-    out = []
-    for l in ells:
-        phase = (-1j) ** l if l % 2 == 0 else (-1j) ** l / 1j
-        out.append((2 * l + 1) * (4 * np.pi) ** 2 / i2 * phase.real * f[l] * f[0])
-    return _bin(np.array(out), wk, edges.size - 1)
+    m = CubicSpline(np.log(r_tab), m_tab)(np.log(r))
+    wk, fac, f = _radial_transforms(shell, edges, m, ells, ic, resolution)
+    out = np.array([fac[l] * f[l][0] * f[0][0] for l in ells])
+    return _bin(out, wk, edges.size - 1)
+
+
+def radial_field_templates(shell, edges, names, profiles, ells=(0, 2, 4), ic="none",
+                           resolution=EstimatorResolution(k_nodes=16)):
+    """Pair templates of the estimator applied to m = Σ_a x_a m_a, fields isotropic about the
+    observer given as ``profiles`` (n_a, n_r) on the window nodes of ``resolution`` (those of
+    :func:`monopole_profiles`): {(a, b): (n_ell, n_bins)} for a ≤ b in the order of ``names``,
+    with E[m] = Σ_{a≤b} x_a x_b T_ab (T_ab holds both orderings F_ℓ[a] F_0[b] + F_ℓ[b] F_0[a])."""
+    wk, fac, f = _radial_transforms(shell, edges, profiles, ells, ic, resolution)
+    out = {}
+    for a, na in enumerate(names):
+        for b in range(a, len(names)):
+            t = np.array([fac[l] * (f[l][a] * f[0][b] + (f[l][b] * f[0][a] if b != a else 0.0))
+                          for l in ells])
+            out[na, names[b]] = _bin(t, wk, edges.size - 1)
+    return out
+
+
+def monopole_profiles(cosmo, shell, edges, q, measure, tracer, terms=("density", "rsd"),
+                      resolution=EstimatorResolution(k_nodes=16), snapshot_z=None):
+    """Σ_i measure_i W_0(q_i, r): the angular monopole of the kernel (every piece on the light
+    cone, integrated ones included; no integral constraint) weighted on a caller's q grid, on
+    the window nodes r of ``resolution``. With measure = dq q² P(q) C(q)/(2π²) (C: a constraint
+    field at the observer, c(q) = C δ_m0(q)) this is the cross-correlation ξ_gc(r) of the
+    number counts with the field at the observer: only J = 0 survives the average over
+    directions (Rayleigh expansion). ``tracer``: TracerCoefficients (with ``terms``) or a
+    sequence of BasisKernel. Returns (r, names, profiles (n_names, n_r))."""
+    q = np.asarray(q, dtype=float)
+    measure = np.asarray(measure, dtype=float)
+    if q.ndim != 1 or q.shape != measure.shape or q.size == 0 or q.min() <= 0:
+        raise ConfigError("monopole_profiles: q and measure must be 1-D of equal length, q > 0")
+    _, _, (r, wr), _ = resolution_grids(shell, np.asarray(edges, dtype=float), resolution)
+    sides = _kernel_sides(cosmo, shell, r, q, tracer, terms, None, None, snapshot_z)
+    side = sides.sets[0]
+    names = side.names if not isinstance(side, _KernelSet) else list(side.names)
+    out = np.zeros((len(names), r.size))
+    for q0 in range(0, q.size, resolution.q_block):
+        qb = q[q0:q0 + resolution.q_block]
+        jq = spherical_jn_all(1, qb[:, None] * r[None, :])
+        jn, near = (_near_integrals(sides.los, sides.all_sets, qb, 0) if sides.need_int
+                    else (None, {}))
+        sl = slice(q0, q0 + qb.size)
+        W = _side_kernels(0, side, (qb, r, jq, jn, near), sl, sides.los, None, "none", False)
+        out += np.einsum("q,aqr->ar", measure[sl], W)
+    return r, names, out
 
 
 def expected_multipoles(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"),
