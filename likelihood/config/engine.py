@@ -13,6 +13,9 @@ the curved-sky route (likelihood.curved; docs/curved_sky.md, "Configuration").
       lensing: true, isw: true, time_delay: true   # integrated terms: curved_sky only
                                                    #   (default on there, off in snapshot mode)
 
+Observer term (effects.observer): available with the none and global integral constraints; with
+the radial one it vanishes exactly on the full sky and is refused.
+
 Integral constraint: the plane-parallel route's ``global`` is the approximate form
 P̂_0(0) W̃²_ℓ(k)/W̃²_0(0) (Peacock & Nicholson 1991); the curved-sky route's ``global`` removes
 the survey mean exactly and ``radial`` removes each distance's angular mean (de Mattia &
