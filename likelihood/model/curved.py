@@ -18,12 +18,15 @@ ISW pieces and W_s = W(s = 1) − W(s = 0) over those and lensing and time delay
 b_e and 𝒬 = 5s/2 with no product b_e 𝒬 (docs/projection.md eq. 6.2), so the differences are
 exact. The expected estimator is then Σ_{a≤b} x_a x_b T_ab + A_sn N − s_sub e₀/n̄ with T_ab the
 engine's pair templates of the basis, N its shot-noise template (same window and integral
-constraint) and the flat 1/n̄ monopole subtraction as in the plane-parallel model. The direct
+constraint) and the flat 1/n̄ monopole subtraction as in the plane-parallel model; with
+``effects.observer`` the constrained-field term adds (ν² − 1) Σ_{a≤b} x_a x_b O_ab, the mean
+field being linear in the basis kernels too (:class:`CurvedObserver`). The direct
 path (:meth:`CurvedForwardModel.full`) recomputes the engine with the tracer at the parameter
 values; they agree to 1e-10 (tests/model/test_curved.py).
 
 The pair templates of the build-time cosmology are cached on disk (like the window matrix),
-keyed by a hash of everything that defines them. When cosmological parameters are sampled the
+keyed by a hash of everything that defines them (the observer templates, a J = 0 computation,
+are recomputed at each build). When cosmological parameters are sampled the
 engine runs at every evaluation (seconds each; README, "The curved-sky engine").
 
 The Gaussian covariance (covariance.kind: gaussian) stays the plane-parallel one at the
@@ -68,8 +71,8 @@ def engine_terms(cfg):
 
 def bias_shape(evolution, cosmo, z_eff):
     """g(z) of b1(z) = b1 g(z): None for a constant bias, D(z_eff)/D(z) for inverse_growth
-    (a bias that keeps b1 D constant, as for a population whose clustering amplitude does not
-    evolve; common practice for emission-line samples)."""
+    (b1 D constant: the clustering amplitude of the tracer does not evolve; a common simple
+    model, common practice, also the forecast scans' ``bias_evolution: inverse_growth``)."""
     if evolution == "constant":
         return None
     d_eff = float(cosmo.growth_factor(z_eff, norm="today"))
