@@ -7,6 +7,8 @@ the curved-sky route (likelihood.curved; docs/curved_sky.md, "Configuration").
                                                #   local terms only (the plane-parallel
                                                #   assumptions, for comparison)
       bias_evolution: constant | inverse_growth   # b1(z) = b1, or b1 D(z_eff)/D(z)
+      tracer_table: FILE                       # or: the redshift dependence of b1, b_e, s from
+                                               #   a table (columns z b1 b_e s; model/curved.py)
       resolution: {j_factor, q_range, q_density, r_density, k_nodes}
     effects:
       integral_constraint: none | global | radial  # radial: curved_sky only
@@ -25,6 +27,8 @@ A plane-parallel config never stores this section (its config hash is unchanged 
 """
 from __future__ import annotations
 
+import os
+
 from ..errors import ConfigError
 from .parameters import suggest
 
@@ -36,7 +40,14 @@ INTEGRATED_EFFECTS = ("lensing", "isw", "time_delay")
 RESOLUTION = {"j_factor": (1.0, 0.5, 4.0), "q_range": (1.0, 0.5, 4.0),
               "q_density": (1.0, 0.5, 4.0), "r_density": (1.0, 0.5, 4.0),
               "k_nodes": (4, 2, 16)}
-CURVED_KEYS = ("snapshot", "bias_evolution", "resolution")
+CURVED_KEYS = ("snapshot", "bias_evolution", "resolution", "tracer_table")
+
+
+def table_path(val, where):
+    """engine.tracer_table: a file name (existence is checked against the config's folder)."""
+    if not isinstance(val, str) or not val.strip():
+        raise ConfigError(f"{where}: expected a file name, got {val!r}")
+    return val
 
 
 def resolution(val, where):
@@ -104,6 +115,16 @@ def check_engine(cfg, src):
             raise ConfigError(f"{src}: effects.{key}: engine.snapshot has local terms only; set "
                               f"effects.{key}: false or snapshot: false")
         eff[key] = eff.get(key, not snapshot)
+    table = eng.get("tracer_table")
+    if table is not None:
+        if "bias_evolution" in eng:
+            raise ConfigError(f"{src}: engine.tracer_table sets the redshift dependence of b1; "
+                              "remove engine.bias_evolution")
+        if not os.path.isfile(cfg.resolve(table)):
+            raise ConfigError(f"{src}: engine.tracer_table: file '{table}' not found (looked for "
+                              f"{cfg.resolve(table)})")
     cfg["engine"] = {"kind": kind, "snapshot": snapshot,
-                     "bias_evolution": eng.get("bias_evolution", "constant"),
+                     "bias_evolution": "table" if table else eng.get("bias_evolution", "constant"),
                      "resolution": eng.get("resolution", resolution({}, ""))}
+    if table:
+        cfg["engine"]["tracer_table"] = table

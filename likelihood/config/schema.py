@@ -20,7 +20,8 @@ The vocabulary (all sections but ``survey`` optional)::
     tracer:     {b1, fnl, p, b_e, s}
     effects:    {rsd, fnl, doppler, potential, window, integral_constraint: none | global | radial,
                  observer, lensing, isw, time_delay}   (radial and the last three: curved_sky)
-    engine:     {kind: plane_parallel | curved_sky, snapshot, bias_evolution, resolution}
+    engine:     {kind: plane_parallel | curved_sky, snapshot, bias_evolution | tracer_table: FILE,
+                 resolution}
                 (see likelihood.config.engine)
     observer:   {field: potential | density, smoothing, k_ir, nu_true}
     data:       {file: FILE | mock: {seed, noise, truth: {...}, k_min, k_max, n_bins},
@@ -48,6 +49,7 @@ import yaml
 from ..errors import ConfigError
 from .engine import BIAS_EVOLUTION, ENGINES, check_engine
 from .engine import resolution as engine_resolution
+from .engine import table_path as engine_table
 from .parameters import KNOWN, ParameterSet, parse_parameter, suggest
 
 _NUM = (int, float)
@@ -291,6 +293,7 @@ SCHEMA = {
         "snapshot": (_bool, None),
         "bias_evolution": (_choice(*BIAS_EVOLUTION), None),
         "resolution": (engine_resolution, None),
+        "tracer_table": (engine_table, None),
     },
     "observer": {
         "field": (_choice("potential", "density"), "potential"),
@@ -388,7 +391,7 @@ class Config(dict):
 
     #: (section, key) of every input file named in a config
     INPUT_FILES = (("data", "file"), ("covariance", "file"), ("covariance", "mocks"),
-                   ("cosmology", "table"))
+                   ("cosmology", "table"), ("engine", "tracer_table"))
 
     def _file_digest(self, rel):
         """sha256 of the contents of the file(s) a config names (a glob for mocks)."""

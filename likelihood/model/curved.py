@@ -69,14 +69,70 @@ def engine_terms(cfg):
     return tuple(local + [t for t in INTEGRATED_EFFECTS if e.get(t)])
 
 
-def bias_shape(evolution, cosmo, z_eff):
+def bias_shape(evolution, cosmo, z_eff, table=None):
     """g(z) of b1(z) = b1 g(z): None for a constant bias, D(z_eff)/D(z) for inverse_growth
     (b1 D constant: the clustering amplitude of the tracer does not evolve; a common simple
-    model, common practice, also the forecast scans' ``bias_evolution: inverse_growth``)."""
+    model, common practice, also the forecast scans' ``bias_evolution: inverse_growth``), or
+    T_b1(z)/T_b1(z_eff) from a :class:`TracerTable`."""
     if evolution == "constant":
         return None
+    if evolution == "table":
+        return table.shape("b1", z_eff)
     d_eff = float(cosmo.growth_factor(z_eff, norm="today"))
     return lambda z: d_eff / np.asarray(cosmo.growth_factor(z, norm="today"), dtype=float)
+
+
+class TracerTable:
+    """The redshift dependence of b1, b_e and s from a text table (``engine.tracer_table``):
+    a header line ``# columns: z b1 b_e s`` and rows of increasing z covering the survey's
+    redshifts, interpolated linearly in z. The values at survey.redshift stay those of the
+    ``tracer`` block (or the sampled ones): b1(z) = b1 T_b1(z)/T_b1(z_eff),
+    b_e(z) = b_e + T_be(z) − T_be(z_eff), s(z) = s + T_s(z) − T_s(z_eff), so the model stays
+    linear in b1 and affine in b_e and s (the fast path is unchanged)."""
+
+    COLUMNS = ("z", "b1", "b_e", "s")
+
+    def __init__(self, path, z_lo, z_hi):
+        from ..errors import DataError
+        from ..io import read_comment_header
+        try:
+            _, header = read_comment_header(path)
+            data = np.loadtxt(path, comments="#", ndmin=2)
+        except (OSError, ValueError, UnicodeDecodeError) as exc:
+            raise DataError(f"{path}: tracer table unreadable ({exc})") from None
+        cols = header.get("columns", [""])[0].split()
+        if tuple(cols) != self.COLUMNS or data.shape[1] != 4 or data.shape[0] < 2:
+            raise DataError(f"{path}: tracer table: expected a header '# columns: z b1 b_e s' "
+                            f"and >= 2 rows of 4 numbers, got columns {cols} and shape "
+                            f"{data.shape}")
+        z = data[:, 0]
+        if not np.all(np.isfinite(data)) or np.any(np.diff(z) <= 0) or np.any(data[:, 1] <= 0):
+            raise DataError(f"{path}: tracer table: expected finite values, z strictly "
+                            "increasing and b1 > 0")
+        if z[0] > z_lo or z[-1] < z_hi:
+            raise DataError(f"{path}: tracer table covers z = {z[0]:g}..{z[-1]:g}; the survey "
+                            f"needs {z_lo:.4g}..{z_hi:.4g}")
+        self.path, self.data = path, data
+
+    def column(self, name):
+        i = self.COLUMNS.index(name)
+        return lambda z: np.interp(z, self.data[:, 0], self.data[:, i])
+
+    def shape(self, name, z_eff):
+        """b1: T(z)/T(z_eff); b_e, s: T(z) − T(z_eff)."""
+        f = self.column(name)
+        ref = float(f(z_eff))
+        if name == "b1":
+            return lambda z: f(z) / ref
+        return lambda z: f(z) - ref
+
+
+def _z_of(cosmo, r):
+    """Redshift of the comoving distance r [Mpc/h] (bisection on the cosmology's χ(z))."""
+    from scipy.optimize import brentq
+    if r <= 0:
+        return 0.0
+    return brentq(lambda z: float(cosmo.comoving_distance(z)) - r, 0.0, 1100.0, xtol=1e-10)
 
 
 class CurvedOperator:
@@ -104,6 +160,10 @@ class CurvedForwardModel:
         self.terms = engine_terms(cfg)
         self.snapshot_z = srv.z if eng["snapshot"] else None
         self.evolution = eng["bias_evolution"]
+        self.table = None
+        if "tracer_table" in eng:
+            z_lo, z_hi = (float(_z_of(cosmology({}), r)) for r in (geo["r_min"], geo["r_max"]))
+            self.table = TracerTable(cfg.resolve(eng["tracer_table"]), z_lo, z_hi)
         self.resolution = EstimatorResolution(**eng["resolution"])
         self.shell = Shell(geo["r_min"], geo["r_max"], nbar=srv.nbar)
         self.edges, self.ells, self.n_bins = dv.edges, tuple(dv.ells), dv.edges.size - 1
@@ -128,8 +188,8 @@ class CurvedForwardModel:
         with no piece switched on are left out."""
         on = set(self.terms)
         unit = 1.0 if g is None else g
-        be0 = 0.0 if "b_e" in self.lin_free else self.held["b_e"]
-        s0 = 0.0 if "s" in self.lin_free else self.held["s"]
+        be0 = self._held_shape("b_e", 0.0 if "b_e" in self.lin_free else self.held["b_e"])
+        s0 = self._held_shape("s", 0.0 if "s" in self.lin_free else self.held["s"])
         t1 = tuple(t for t in self.terms if t not in ("density", "fnl"))
         spec = [("1", ((1.0, TracerCoefficients(0.0, be0, s0), t1),)),
                 ("b1", ((1.0, TracerCoefficients(unit), ("density",)),))]
@@ -147,6 +207,13 @@ class CurvedForwardModel:
                 spec.append((name, ((1.0, TracerCoefficients(0.0, **one), terms),
                                     (-1.0, TracerCoefficients(0.0), terms))))
         return [(n, parts) for n, parts in spec if all(p[2] for p in parts)]
+
+    def _held_shape(self, name, value):
+        """b_e or s of the kernel: the number, or value + the table's shape (a callable of z)."""
+        if self.table is None:
+            return value
+        shape = self.table.shape(name, self.z)
+        return lambda z: value + shape(z)
 
     def amplitudes(self, values):
         """The amplitudes x of the basis kernels (module docstring), in the order of
@@ -193,12 +260,13 @@ class CurvedForwardModel:
                     terms=self.terms, names=self.names, lin_free=self.lin_free,
                     held=[self.held["b_e"], self.held["s"]], p=self.p, z=self.z,
                     evolution=self.evolution, snapshot=self.snapshot_z,
+                    table=None if self.table is None else self.table.data.tolist(),
                     resolution=repr(self.resolution))
         return hashlib.sha256(json.dumps(spec, sort_keys=True).encode()).hexdigest()
 
     def basis(self, cosmo):
         """The BasisKernels of the fast path at ``cosmo`` (module docstring)."""
-        g = bias_shape(self.evolution, cosmo, self.z)
+        g = bias_shape(self.evolution, cosmo, self.z, self.table)
         return [BasisKernel(n, parts) for n, parts in self._basis_spec(g)]
 
     def pair_templates(self, cosmo):
@@ -251,9 +319,10 @@ class CurvedForwardModel:
     def tracer(self, cosmo, values, i=0):
         """The engine's TracerCoefficients of point ``i`` of ``values``."""
         t = make_tracer(values, self.p, self.nbar, i)
-        g = bias_shape(self.evolution, cosmo, self.z)
+        g = bias_shape(self.evolution, cosmo, self.z, self.table)
         b = t.b1 if g is None else (lambda z: t.b1 * g(z))
-        return TracerCoefficients(b, t.b_e, t.s, t.fnl if "fnl" in self.effects else 0.0, self.p)
+        return TracerCoefficients(b, self._held_shape("b_e", t.b_e), self._held_shape("s", t.s),
+                                  t.fnl if "fnl" in self.effects else 0.0, self.p)
 
     def full(self, values, cosmo_keys=None):
         """Full (unmasked) model vector(s) by a direct run of the engine at each point."""

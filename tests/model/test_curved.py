@@ -162,3 +162,51 @@ def test_observer_term_equals_plane_parallel_radial_path_in_snapshot_mode(write_
                          effects=fw.effects)
         ref = ref_term.correction(cosmo, fw.z, kt, kern).reshape(got.shape)
     assert np.max(np.abs(got - ref)) < 1e-3 * np.abs(ref).max()
+
+
+def _write_table(path, z, b1, b_e, s):
+    rows = np.column_stack([z, b1, b_e, s])
+    np.savetxt(path, rows, header="ergofit tracer table\ncolumns: z b1 b_e s", comments="# ")
+
+
+def test_tracer_table_reproduces_inverse_growth_and_fast_path(write_config, tmp_path):
+    """A table with b1 ∝ 1/D(z) and constant b_e, s gives the inverse_growth model (to the
+    linear interpolation of a 0.005-step table: 1e-4 of P̂_0, measured 1.4e-7); with b_e(z), s(z)
+    varying in the
+    the table and b_e sampled, fast path = direct engine run to 1e-10."""
+    from likelihood.theory.cosmology import Cosmology
+    c = Cosmology.from_preset("planck2018")
+    z = np.arange(0.4, 1.6, 0.005)
+    d = c.growth_factor(z) / c.growth_factor(1.2)
+    _write_table(tmp_path / "tracer.txt", z, 2.0 / d, np.full(z.size, 0.5), np.full(z.size, 0.2))
+    _write_table(tmp_path / "tracer2.txt", z, 2.0 / d, 0.5 + 1.5 * (z - 1.2), 0.2 + 0.3 * (z - 1.2))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref = build(_curved(write_config, {"engine": {"bias_evolution": "inverse_growth"}}))
+        tab = build(_curved(write_config, {"engine": {"tracer_table": "tracer.txt"}}))
+        d = {"b1": 2.1, "fnl": 3.0, "shot_noise": 1.0}
+        a, b = ref.model_vector(d, direct=False), tab.model_vector(d, direct=False)
+        assert np.max(np.abs(a - b)) < 1e-4 * np.abs(a).max()
+        lik = build(_curved(write_config, {"engine": {"tracer_table": "tracer2.txt"}},
+                            FREE_BE_S))
+        d = {"b1": 2.1, "fnl": 3.0, "b_e": 0.7, "s": 0.1, "shot_noise": 1.0}
+        fast, direct = lik.model_vector(d, direct=False), lik.model_vector(d, direct=True)
+        assert np.max(np.abs(fast - direct)) < 1e-10 * np.abs(direct).max()
+        assert np.max(np.abs(fast - tab.model_vector({"b1": 2.1, "fnl": 3.0, "shot_noise": 1.0},
+                                                     direct=False))) > 1e-4 * np.abs(fast).max()
+
+
+@pytest.mark.parametrize("rows, words", [
+    ("1.0 2.0 0.5 0.2\n1.1 2.1 0.5 0.2\n", "covers z"),          # too short a z range
+    ("0.1 2.0 0.5 0.2\n0.1 2.1 0.5 0.2\n9.0 2.0 0.5 0.2\n", "increasing"),
+    ("0.1 -2.0 0.5 0.2\n9.0 2.1 0.5 0.2\n", "b1 > 0"),
+])
+def test_bad_tracer_table_one_line(write_config, tmp_path, rows, words):
+    from likelihood.errors import DataError
+    (tmp_path / "bad.txt").write_text("# columns: z b1 b_e s\n" + rows)
+    with pytest.raises(DataError) as exc:
+        build(_curved(write_config, {"engine": {"tracer_table": "bad.txt"}}))
+    assert words in str(exc.value) and "\n" not in str(exc.value)
+    with pytest.raises(ConfigError, match="engine.bias_evolution"):
+        load_config(_curved(write_config, {"engine": {"tracer_table": "bad.txt",
+                                                      "bias_evolution": "constant"}}))
