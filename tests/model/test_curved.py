@@ -172,8 +172,7 @@ def _write_table(path, z, b1, b_e, s):
 def test_tracer_table_reproduces_inverse_growth_and_fast_path(write_config, tmp_path):
     """A table with b1 ∝ 1/D(z) and constant b_e, s gives the inverse_growth model (to the
     linear interpolation of a 0.005-step table: 1e-4 of P̂_0, measured 1.4e-7); with b_e(z), s(z)
-    varying in the
-    the table and b_e sampled, fast path = direct engine run to 1e-10."""
+    varying in the table and b_e sampled, fast path = direct engine run to 1e-10."""
     from likelihood.theory.cosmology import Cosmology
     c = Cosmology.from_preset("planck2018")
     z = np.arange(0.4, 1.6, 0.005)
