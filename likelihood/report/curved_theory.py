@@ -4,7 +4,7 @@ moves, in σ of the data (the square root of the covariance's diagonal).
 
 Steps (each the difference of two models at the fiducial tracer, signal only, no shot noise):
 
-* curved terms: each piece of the engine added in turn (rsd, f_NL, doppler, potential,
+* curved terms: each piece of the engine added in turn (rsd, doppler, potential, f_NL,
   lensing, ISW, time delay) on the light cone with the run's exact integral constraint;
 * plane-parallel terms: the same local terms added in turn in the plane-parallel model
   (kernel at z_eff, window convolution, the approximate global integral constraint);
