@@ -35,6 +35,15 @@ def write_text(path, text):
     atomic_write(path, write)
 
 
+def cache_folder(cache_dir=None):
+    """Folder of the on-disk caches (window matrices, curved-sky templates): ``cache_dir``, or
+    $XDG_CACHE_HOME/ergofit, or ~/.cache/ergofit."""
+    if cache_dir is not None:
+        return os.fspath(cache_dir)
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return os.path.join(base, "ergofit")
+
+
 def open_atomic(path, write_stream, binary=False):
     """Atomically write ``path`` through ``write_stream(file_object)``."""
     def write(tmp):

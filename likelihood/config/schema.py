@@ -23,7 +23,11 @@ The vocabulary (all sections but ``survey`` optional)::
                 likelihood.config.multitracer)
     samples:    [{name, survey, tracers, spectra, data, covariance}, ...]   independent samples
                 (see likelihood.config.samples)
-    effects:    {rsd, fnl, doppler, potential, window, integral_constraint: none | global, observer}
+    effects:    {rsd, fnl, doppler, potential, window, integral_constraint: none | global | radial,
+                 observer, lensing, isw, time_delay}   (radial and the last three: curved_sky)
+    engine:     {kind: plane_parallel | curved_sky, snapshot, bias_evolution | tracer_table: FILE,
+                 resolution}
+                (see likelihood.config.engine)
     observer:   {field: potential | density, smoothing, k_ir, nu_true}
     data:       {file: FILE | mock: {seed, noise, truth: {...}, k_min, k_max, n_bins},
                  ells, k_min, k_max, shot_noise_subtracted}
@@ -48,6 +52,9 @@ import numpy as np
 import yaml
 
 from ..errors import ConfigError
+from .engine import BIAS_EVOLUTION, ENGINES, check_engine, is_curved
+from .engine import resolution as engine_resolution
+from .engine import table_path as engine_table
 from .multitracer import check_analytic, check_covariance_kind, parameter_table, validate_tracers
 from .parameters import KNOWN, ParameterSet, parse_parameter, suggest
 
@@ -162,14 +169,17 @@ def _mapping(val, where):
 
 
 # --- forecast section (Fisher forecasts and f_NL bias studies, read by likelihood.forecast) ---
-# forecast: {neglect: [doppler, potential, fnl, rsd, integral_constraint, window, observer],
+# forecast: {neglect: [doppler, potential, fnl, rsd, integral_constraint, window, observer,
+#                      plane_parallel, radial_integral_constraint, lensing, isw, time_delay],
 #            parameters: [NAME, ...], priors: {NAME: sigma}, threshold: x, step_rtol: x,
 #            scan: {quantity: redshift | volume | fsky | thickness | b1 | nbar | b_e | s | k_min,
 #                   values: [x, ...] | range: [lo, hi, n], spacing: linear | log,
 #                   redshift_geometry: recentre | fixed_volume,
 #                   bias_evolution: constant | inverse_growth}}
 # Defaults are applied by likelihood.forecast (none are stored here).
-FORECAST_NEGLECT = ("doppler", "potential", "fnl", "rsd", "integral_constraint", "window", "observer")
+FORECAST_NEGLECT = ("doppler", "potential", "fnl", "rsd", "integral_constraint", "window", "observer",
+                    # curved-sky truth models only (config/variants.py)
+                    "plane_parallel", "radial_integral_constraint", "lensing", "isw", "time_delay")
 FORECAST_SCAN = ("redshift", "volume", "fsky", "thickness", "b1", "nbar", "b_e", "s", "k_min")
 _SCAN_POSITIVE = ("redshift", "volume", "fsky", "thickness", "nbar", "k_min")
 
@@ -276,8 +286,20 @@ SCHEMA = {
         "doppler": (_bool, True),
         "potential": (_bool, True),
         "window": (_bool, True),
-        "integral_constraint": (_choice("none", "global"), "global"),
+        "integral_constraint": (_choice("none", "global", "radial"), "global"),
         "observer": (_bool, False),
+        # integrated terms: curved-sky engine only; no default here (config/engine.py)
+        "lensing": (_bool, None),
+        "isw": (_bool, None),
+        "time_delay": (_bool, None),
+    },
+    # the theory engine (config/engine.py); a plane-parallel config stores nothing here
+    "engine": {
+        "kind": (_choice(*ENGINES), None),
+        "snapshot": (_bool, None),
+        "bias_evolution": (_choice(*BIAS_EVOLUTION), None),
+        "resolution": (engine_resolution, None),
+        "tracer_table": (engine_table, None),
     },
     "observer": {
         "field": (_choice("potential", "density"), "potential"),
@@ -381,7 +403,7 @@ class Config(dict):
 
     #: (section, key) of every input file named in a config
     INPUT_FILES = (("data", "file"), ("covariance", "file"), ("covariance", "mocks"),
-                   ("cosmology", "table"))
+                   ("cosmology", "table"), ("engine", "tracer_table"))
 
     def _file_digest(self, rel):
         """sha256 of the contents of the file(s) a config names (a glob for mocks)."""
@@ -399,6 +421,8 @@ class Config(dict):
         stay out: they do not change the posterior."""
         core = {k: copy.deepcopy(v) for k, v in self.items()
                 if k not in ("forecast", "output", "run", "sampling")}
+        if not core.get("engine"):
+            core.pop("engine", None)      # plane-parallel: the hash of configs before engines
         for sec, key in self.INPUT_FILES:
             if key in core.get(sec, {}):
                 core[sec][key] = self._file_digest(core[sec][key])
@@ -512,6 +536,12 @@ def validate(raw, src="<memory>", base_dir="."):
 
     if multi:
         check_covariance_kind(cfg, src)
+    check_engine(cfg, src)
+    if multi and is_curved(cfg):
+        raise ConfigError(f"{src}: engine.kind 'curved_sky' is not available with "
+                          "several tracers yet (the curved-sky engine fits one tracer); use "
+                          "engine.kind: plane_parallel or a single tracer section")
+
     if cfg["effects"]["observer"] and cfg["observer"]["field"] == "density" \
             and "smoothing" not in cfg["observer"]:
         raise ConfigError(f"{src}: observer.smoothing (radius in Mpc/h, > 0) is required for field: density")

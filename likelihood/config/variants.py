@@ -6,6 +6,7 @@ import copy
 
 import numpy as np
 
+from .engine import INTEGRATED_EFFECTS, is_curved
 from .schema import FORECAST_NEGLECT, SCHEMA, Config, validate
 from ..errors import ConfigError, ErgofitError
 
@@ -52,12 +53,47 @@ def analysis_config(cfg, neglect):
     raw = config_to_raw(cfg)
     e = raw["effects"]
     for n in neglect:
-        e[n] = "none" if n == "integral_constraint" else False
+        if n in CURVED_NEGLECT:
+            _neglect_curved(cfg, raw, n)
+        else:
+            e[n] = "none" if n == "integral_constraint" else False
     if "observer" in neglect:
         spec = raw["parameters"].get("nu_obs")
         if isinstance(spec, dict) and "fixed" not in spec:
             del raw["parameters"]["nu_obs"]   # nothing to sample without the observer term
     return _revalidate(cfg, raw, "analysis without " + ", ".join(neglect))
+
+
+#: neglected "effects" that are approximations of a curved-sky truth model
+CURVED_NEGLECT = ("plane_parallel", "radial_integral_constraint") + INTEGRATED_EFFECTS
+
+
+def _neglect_curved(cfg, raw, name):
+    """Change ``raw`` (a curved-sky config) into the analysis that neglects ``name``:
+
+    plane_parallel: the plane-parallel engine (kernel at z_eff, window convolution, the
+    approximate global integral constraint — for a radial one too —, no integrated terms);
+    radial_integral_constraint: the exact global integral constraint instead of the radial one;
+    lensing, isw, time_delay: that integrated term switched off."""
+    e = raw["effects"]
+    if not is_curved(cfg):
+        raise ConfigError(f"{cfg.path}: forecast.neglect: '{name}' is an approximation of the "
+                          "curved-sky model; the truth model needs engine.kind: curved_sky")
+    if name == "plane_parallel":
+        raw.pop("engine", None)
+        for t in INTEGRATED_EFFECTS:
+            e.pop(t, None)
+        if e["integral_constraint"] == "radial":
+            e["integral_constraint"] = "global"
+    elif name == "radial_integral_constraint":
+        if e["integral_constraint"] != "radial":
+            raise ConfigError(f"{cfg.path}: forecast.neglect: 'radial_integral_constraint' needs "
+                              "effects.integral_constraint: radial in the truth model")
+        e["integral_constraint"] = "global"
+    elif not raw.get("engine"):
+        return                  # the integrated terms went with plane_parallel already
+    else:
+        e[name] = False
 
 
 def _fiducial_value(cfg, name):

@@ -46,8 +46,11 @@ ANGULAR_TERMS = ("density", "rsd", "doppler", "potential", "lensing", "isw", "ti
 @dataclass(frozen=True)
 class AngularResolution:
     """Grid controls of :func:`angular_cl_resolved` (multiplicative factors on the rules of
-    the module docstring; 1 = default, 2 = twice as fine / twice as wide)."""
-    q_range: float = 1.0
+    the module docstring; 1 = the rule, 2 = twice as fine / twice as wide).
+
+    ``q_range`` defaults to 2: with 1 the lensing effect at ℓ = 30 of a wide shell came out
+    4.4 % low against CAMB (z = 1.2), with 2 within 0.6 % (docs/curved_sky_camb.md)."""
+    q_range: float = 2.0
     q_density: float = 1.0
     r_density: float = 1.0
     q_max_integrated: float = 0.2

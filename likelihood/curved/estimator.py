@@ -25,7 +25,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -35,7 +35,8 @@ from .lightcone import (INTEGRATED_TERMS, LOCAL_TERMS, LightCone, ResolutionWarn
                         TracerCoefficients, check_terms, integrated_pieces, local_pieces)
 from .quadrature import composite_gl
 
-__all__ = ["EstimatorResolution", "Shell", "Templates", "multipole_templates",
+__all__ = ["EstimatorResolution", "Shell", "Templates", "BasisKernel", "multipole_templates",
+           "monopole_profiles", "radial_field_templates", "radial_field_multipoles",
            "expected_multipoles", "wigner3j_zero_sq", "resolution_grids"]
 
 IC_KINDS = ("none", "global", "radial")
@@ -150,15 +151,62 @@ class _KernelSet:
     names: list
 
 
-def _kernel_set(cone, cosmo, r, q, los, tracer, terms, snapshot_r=None):
+def _kernel_set(cone, cosmo, r, q, los, tracer, terms, snapshot_r=None, weight=1.0):
     # snapshot: every background and tracer coefficient (also χ in the 1/(χℋ) pieces) at r_eff
     bg = cone.background(r if snapshot_r is None else np.full(r.shape, snapshot_r))
     tc = tracer.at(bg["z"])
     loc = local_pieces(bg, tc, [t for t in terms if t in LOCAL_TERMS])
     integ = integrated_pieces(bg, tc, [t for t in terms if t in INTEGRATED_TERMS])
+    if weight != 1.0:
+        loc = [replace(p, radial=weight * p.radial) for p in loc]
+        integ = {t: [replace(pt, outer=weight * pt.outer) for pt in parts]
+                 for t, parts in integ.items()}
     integ = {t: [(pt, pt.inner(bg)) for pt in parts] for t, parts in integ.items()}
     return _KernelSet(loc, [p.qfactor(cosmo, q) for p in loc], integ,
                       [p.name for p in loc] + list(integ))
+
+
+@dataclass(frozen=True)
+class BasisKernel:
+    """A named kernel W = Σ_c weight_c × (the pieces ``terms_c`` of ``tracer_c`` summed): the
+    unit of a template basis. A model linear in a few amplitudes x_a, W = Σ_a x_a W_a, has the
+    estimator expectation Σ_ab x_a x_b T_ab with T_ab the pair templates of the basis kernels
+    W_a (e.g. W_{b_e} = W(b_e = 1) − W(b_e = 0) for the doppler, potential and isw pieces,
+    which are affine in b_e). ``parts``: ((weight, TracerCoefficients, terms), ...)."""
+    name: str
+    parts: tuple
+
+
+@dataclass
+class _BasisSet:
+    """The kernel sets of a basis (one per part, weights folded in), grouped by basis kernel."""
+    names: list
+    elements: list       # per basis kernel: list of _KernelSet
+
+    @property
+    def all_sets(self):
+        return [s for el in self.elements for s in el]
+
+
+def _basis_set(cone, cosmo, r, q, los, basis, snapshot_r):
+    names, elements = [], []
+    for bk in basis:
+        if not isinstance(bk, BasisKernel) or not bk.parts:
+            raise ConfigError(f"basis: expected BasisKernel objects with parts, got {bk!r}")
+        names.append(bk.name)
+        elements.append([_kernel_set(cone, cosmo, r, q, los, tc, check_terms(terms),
+                                     snapshot_r, float(wt)) for wt, tc, terms in bk.parts])
+    if len(set(names)) != len(names):
+        raise ConfigError(f"basis: kernel names {names} must be distinct")
+    return _BasisSet(names, elements)
+
+
+def _side_kernels(J, side, blk, sl, los, v, ic, combine):
+    """_kernels of one side: a tracer's pieces (_KernelSet) or a basis (_BasisSet)."""
+    if isinstance(side, _KernelSet):
+        return _kernels(J, side, blk, sl, los, v, ic, combine)
+    out = [sum(_kernels(J, s, blk, sl, los, v, ic, True)[0] for s in el) for el in side.elements]
+    return np.stack([sum(out)] if combine else out)
 
 
 class _LineOfSight:
@@ -264,45 +312,33 @@ def ic_monopole(profile, v, ic):
     return profile
 
 
-def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"),
-                        tracer_b=None, terms_b=None, ells=(0, 2, 4), ic="none",
-                        resolution=EstimatorResolution(), combine_pieces=False,
-                        snapshot_z=None):
-    """Templates of the expected estimator (module docstring) for every pair of pieces.
+@dataclass
+class _Sides:
+    """The kernel sets of the two tracers of a spectrum (the same object twice for an auto
+    spectrum), every _KernelSet among them, the line of sight of the integrated pieces."""
+    sets: list
+    all_sets: list
+    los: object
+    need_int: bool
+    snapshot_z: object
 
-    ``snapshot_z``: snapshot mode (design.md, "The curved sky"): b, b_e, s, D, f, ℋ, ℋ'/ℋ²,
-    Ω_m(z) and the χ of the 1/(χℋ) pieces all taken at the effective redshift instead of at
-    each distance, local terms only: the assumptions of the plane-parallel model and of
-    snapshot mocks (the geometry, i.e. the end-point line of sight, stays exact).
 
-    ``tracer_a``/``tracer_b``: :class:`TracerCoefficients` (b, b_e, s numbers or callables of
-    z); ``tracer_b`` None: auto spectrum of A. ``terms``: pieces from
-    likelihood.curved.TERMS. ``combine_pieces=True`` sums each tracer's pieces into one kernel
-    first (the direct computation; pairs then has the single key ("total", "total")).
-    ``edges``: k bin edges [h/Mpc]. Returns :class:`Templates` (units (Mpc/h)³).
-    """
-    if ic not in IC_KINDS:
-        raise ConfigError(f"ic = {ic!r}: expected one of {IC_KINDS}")
-    ells = tuple(int(l) for l in ells)
-    if not ells or min(ells) < 0 or max(ells) > 4:
-        raise ConfigError(f"ells = {ells}: expected multipoles between 0 and 4")
-    edges = np.asarray(edges, dtype=float)
-    if edges.ndim != 1 or edges.size < 2 or edges[0] <= 0 or np.any(np.diff(edges) <= 0):
-        raise ConfigError("edges: expected increasing positive k bin edges in h/Mpc")
+def _kernel_sides(cosmo, shell, r, q, tracer_a, terms_a, tracer_b, terms_b, snapshot_z):
+    """Validated kernel sets of tracers A and B on the window nodes ``r`` and the q grid
+    (TracerCoefficients with terms, or sequences of BasisKernel; see multipole_templates)."""
     auto = tracer_b is None
-    terms_a = check_terms(terms_a)
-    terms_b = terms_a if terms_b is None else check_terms(terms_b)
+    basis_mode = not isinstance(tracer_a, TracerCoefficients)
+    if basis_mode:
+        tracer_a = tuple(tracer_a)
+        tracer_b = None if auto else tuple(tracer_b)
+        terms_a = tuple(t for bk in tracer_a + (tracer_b or ()) if isinstance(bk, BasisKernel)
+                        for _, _, terms in bk.parts for t in check_terms(terms))
+        terms_b = terms_a
+    else:
+        terms_a = check_terms(terms_a)
+        terms_b = terms_a if terms_b is None else check_terms(terms_b)
     tracer_b = tracer_a if auto else tracer_b
-    j_max, (q, wq), (r, wr), (k, wk) = resolution_grids(shell, edges, resolution)
-    z_edge = _z_at(cosmo, shell.r_max)
-    cone = LightCone(cosmo, z_edge * 1.01 + 0.01)
-    w = shell._eval("weight", shell.weight, r)
-    base = wr * r ** 2 * w
-    i2 = 4.0 * np.pi * np.sum(wr * r ** 2 * w ** 2)
-    v = base / base.sum()
-    pq = np.asarray(cosmo.power(q, 0.0), dtype=float)
-    meas = (2.0 / np.pi) * wq * q * q * pq
-
+    cone = LightCone(cosmo, _z_at(cosmo, shell.r_max) * 1.01 + 0.01)
     need_int = any(t in INTEGRATED_TERMS for t in terms_a + terms_b)
     snap_r = None
     if snapshot_z is not None:
@@ -317,15 +353,73 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
                               f"{[t for t in terms_a + terms_b if t in INTEGRATED_TERMS]}")
         snap_r = float(cosmo.comoving_distance(snapshot_z))
     los = _LineOfSight(r, shell.r_min, shell.r_max, cone) if need_int else None
-    sets = [_kernel_set(cone, cosmo, r, q, los, tracer_a, terms_a, snap_r)]
-    sets.append(sets[0] if auto else _kernel_set(cone, cosmo, r, q, los, tracer_b, terms_b,
-                                                 snap_r))
+
+    def side(tracer, terms):
+        if basis_mode:
+            return _basis_set(cone, cosmo, r, q, los, tracer, snap_r)
+        return _kernel_set(cone, cosmo, r, q, los, tracer, terms, snap_r)
+    sets = [side(tracer_a, terms_a)]
+    sets.append(sets[0] if auto else side(tracer_b, terms_b))
+    all_sets = [st for one in sets for st in (one.all_sets if basis_mode else [one])]
+    return _Sides(sets, all_sets, los, need_int, snapshot_z)
+
+
+def _near_integrals(los, all_sets, qb, n_top):
+    """(j_J on the near line-of-sight nodes, {id(part): weights × β there}) for a q block."""
+    nodes, weights, bgn = los.near_grid(float(qb[-1]))
+    jn = spherical_jn_all(n_top, qb[:, None] * nodes[None, :]) if nodes.size else None
+    near = {}
+    for kset in all_sets:
+        for parts in kset.integ.values():
+            for part, _ in parts:
+                near[id(part)] = weights * part.inner(bgn) if nodes.size else weights
+    return jn, near
+
+
+def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"),
+                        tracer_b=None, terms_b=None, ells=(0, 2, 4), ic="none",
+                        resolution=EstimatorResolution(), combine_pieces=False,
+                        snapshot_z=None):
+    """Templates of the expected estimator (module docstring) for every pair of pieces.
+
+    ``snapshot_z``: snapshot mode (design.md, "The curved sky"): b, b_e, s, D, f, ℋ, ℋ'/ℋ²,
+    Ω_m(z) and the χ of the 1/(χℋ) pieces all taken at the effective redshift instead of at
+    each distance, local terms only: the assumptions of the plane-parallel model and of
+    snapshot mocks (the geometry, i.e. the end-point line of sight, stays exact).
+
+    ``tracer_a``/``tracer_b``: :class:`TracerCoefficients` (b, b_e, s numbers or callables of
+    z), or a sequence of :class:`BasisKernel` (then ``terms`` are ignored and the pairs are
+    keyed by the basis names: the templates of a model linear in the basis amplitudes);
+    ``tracer_b`` None: auto spectrum of A. ``terms``: pieces from
+    likelihood.curved.TERMS. ``combine_pieces=True`` sums each tracer's pieces into one kernel
+    first (the direct computation; pairs then has the single key ("total", "total")).
+    ``edges``: k bin edges [h/Mpc]. Returns :class:`Templates` (units (Mpc/h)³).
+    """
+    if ic not in IC_KINDS:
+        raise ConfigError(f"ic = {ic!r}: expected one of {IC_KINDS}")
+    ells = tuple(int(l) for l in ells)
+    if not ells or min(ells) < 0 or max(ells) > 4:
+        raise ConfigError(f"ells = {ells}: expected multipoles between 0 and 4")
+    edges = np.asarray(edges, dtype=float)
+    if edges.ndim != 1 or edges.size < 2 or edges[0] <= 0 or np.any(np.diff(edges) <= 0):
+        raise ConfigError("edges: expected increasing positive k bin edges in h/Mpc")
+    auto = tracer_b is None
+    j_max, (q, wq), (r, wr), (k, wk) = resolution_grids(shell, edges, resolution)
+    w = shell._eval("weight", shell.weight, r)
+    base = wr * r ** 2 * w
+    i2 = 4.0 * np.pi * np.sum(wr * r ** 2 * w ** 2)
+    v = base / base.sum()
+    pq = np.asarray(cosmo.power(q, 0.0), dtype=float)
+    meas = (2.0 / np.pi) * wq * q * q * pq
+    sides = _kernel_sides(cosmo, shell, r, q, tracer_a, terms_a, tracer_b, terms_b, snapshot_z)
+    sets, all_sets, los, need_int = sides.sets, sides.all_sets, sides.los, sides.need_int
+    snapshot_z = sides.snapshot_z
     jk = spherical_jn_all(j_max + 5, k[:, None] * r[None, :])
     names_a = ["total"] if combine_pieces else sets[0].names
     names_b = ["total"] if combine_pieces else sets[1].names
     acc = np.zeros((len(names_a), len(names_b), len(ells), k.size))
     coefs = {}
-    probe = {"tail": np.zeros((len(ells), k.size)), "ir": np.zeros((len(ells), k.size))}
+    probe = {name: np.zeros((len(ells), k.size)) for name in ("tail", "ir", "ir1")}
     k_lo = {J: int(np.searchsorted(k * shell.r_max, bessel_x_min(max(J - 4, 0)))) for J in
             range(j_max + 1)}
     for q0 in range(0, q.size, resolution.q_block):
@@ -333,14 +427,7 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
         # orders J with j_J(q r) not negligible anywhere in this block (bessel_x_min rule)
         n_top = min(j_max, bessel_order_max(float(qb[-1]) * shell.r_max))
         jq = spherical_jn_all(n_top + 1, qb[:, None] * r[None, :])
-        jn, near = None, {}
-        if need_int:
-            nodes, weights, bgn = los.near_grid(float(qb[-1]))
-            jn = spherical_jn_all(n_top, qb[:, None] * nodes[None, :]) if nodes.size else None
-            for kset in sets:
-                for parts in kset.integ.values():
-                    for part, _ in parts:
-                        near[id(part)] = weights * part.inner(bgn) if nodes.size else weights
+        jn, near = _near_integrals(los, all_sets, qb, n_top) if need_int else (None, {})
         for J in range(0, n_top + 1):
             if J == 0 and ic == "radial":
                 continue            # ic_monopole(…, "radial") = 0: nothing to add
@@ -350,8 +437,8 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
                 continue
             sl = slice(q0 + qa, q0 + qb.size)
             blk = (qb[qa:], r, jq[:, qa:], None if jn is None else jn[:, qa:], near)
-            WA = _kernels(J, sets[0], blk, sl, los, v, ic, combine_pieces)
-            WB = WA if auto else _kernels(J, sets[1], blk, sl, los, v, ic, combine_pieces)
+            WA = _side_kernels(J, sets[0], blk, sl, los, v, ic, combine_pieces)
+            WB = WA if auto else _side_kernels(J, sets[1], blk, sl, los, v, ic, combine_pieces)
             if J not in coefs:
                 coefs[J] = _g_coefficients(J, ells)
             nk_a = k.size - ka
@@ -366,7 +453,8 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
             # probes: the last q panel (tail beyond q_max) and the first q node (infrared)
             qidx = np.arange(sl.start, sl.stop)
             probes = [(name, np.where(sel(qidx), mq, 0.0)) for name, sel in
-                      (("tail", lambda i: i >= q.size - 8), ("ir", lambda i: i == 0))
+                      (("tail", lambda i: i >= q.size - 8), ("ir", lambda i: i == 0),
+                       ("ir1", lambda i: i == 1))
                       if np.any(sel(qidx))]
             for i, l in enumerate(ells):
                 if auto and l == 0:
@@ -378,7 +466,8 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
                 acc[:, :, i, ka:] += fac * prod.transpose(1, 2, 0)
                 for name, mp in probes:
                     probe[name][i, ka:] += fac * np.einsum("kaq,q,kbq->k", ua, mp, VB)
-    checks = _check_resolution(shell, k, q, wq, j_max, ells, ic, acc, probe)
+    checks = _check_resolution(shell, k, q, wq, j_max, ells, ic, acc, probe, resolution.q_ir,
+                               wk, edges.size - 1)
     vals = acc
     binned = _bin(vals, wk, edges.size - 1)                                 # (a, b, ell, nb)
     pairs = {}
@@ -402,7 +491,7 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
 TAIL_TOLERANCE = 1e-3     # relative to max |P̂_0|: the accuracy the grid rules are set for
 
 
-def _check_resolution(shell, k, q, wq, j_max, ells, ic, acc, probe):
+def _check_resolution(shell, k, q, wq, j_max, ells, ic, acc, probe, q_ir, wk, nb):
     """Issue a ResolutionWarning where the configuration exceeds what the grids resolve.
 
     * J_max: every order up to j_J(k r) non-negligible must be summed (bessel_x_min rule),
@@ -410,9 +499,13 @@ def _check_resolution(shell, k, q, wq, j_max, ells, ic, acc, probe):
     * q tail: the integrand per unit q over the last q panel, extrapolated as q^{-2.4}
       (P(q) q^{-1} times the 1/(q − k)² edge tail of U(k, q)), estimates the part beyond q_max:
       tail ≈ density(q_max) · q_max/1.4 (measured 2–4e-4 of max |P̂_0| at the default rule).
-    * infrared: the change of P̂ per e-fold of the cut-off q_IR (the integrand per unit ln q at
-      q_IR) times ln 10; sizeable only for ic = "none" with the potential or f_NL pieces (the
-      observer terms that cancel it are not included).
+    * infrared: the change of P̂ when the cut-off q_IR is lowered tenfold, from the integrand
+      per unit ln q at the first two q nodes extrapolated as a power law q^α below them:
+      d₀ (q_IR/q₀)^α (1 − 10^{−α})/α (d₀ ln 10 for α → 0), on the bin averages. Sizeable only for ic = "none" with
+      the potential or f_NL pieces (the observer terms that cancel it are not included). The
+      power law matters: taking the integrand as flat in ln q at one k node overestimated the
+      demo shell's sensitivity (global IC, f_NL = 10, all terms) as 8e-3 of P̂_0 where lowering
+      q_IR to 1e-5 h/Mpc moves the first quadrupole bin by 1.38e-4 of P̂_0 (this rule: 1.37e-4).
     """
     x = float(k[-1]) * shell.r_max
     if bessel_x_min(j_max + 1) <= x:
@@ -432,12 +525,21 @@ def _check_resolution(shell, k, q, wq, j_max, ells, ic, acc, probe):
         warnings.warn(f"curved-sky estimator: the q integrand at q_max = {q[-1]:.3g} h/Mpc "
                       f"leaves an estimated {tail:.2g} of P̂_0 beyond it (> {TAIL_TOLERANCE:g}): "
                       "raise q_range", ResolutionWarning, stacklevel=3)
-    ir = np.abs(probe["ir"]).max() * float(q[0]) / float(wq[0]) * np.log(10.0) / scale
+    # per unit ln q, bin-averaged (ℓ, bin): the k nodes of a bin oscillate against each other
+    d0 = np.abs(_bin(probe["ir"], wk, nb)) * float(q[0]) / float(wq[0])
+    d1 = np.abs(_bin(probe["ir1"], wk, nb)) * float(q[1]) / float(wq[1])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        alpha = np.nan_to_num(np.log(d1 / d0) / np.log(float(q[1] / q[0])), nan=0.0,
+                              posinf=0.0, neginf=0.0)
+        small = np.abs(alpha) < 1e-6
+        per = np.where(small, np.log(10.0), (1.0 - 10.0 ** (-alpha)) / np.where(small, 1.0, alpha))
+    ir = float(np.max(d0 * (q_ir / float(q[0])) ** alpha * per)) / scale
     if ir > TAIL_TOLERANCE:
         warnings.warn(f"curved-sky estimator: with ic = {ic!r} the result depends on the infrared "
                       f"cut-off q_IR = {q[0]:.2g} h/Mpc ({ir:.2g} of P̂_0 per factor 10; the "
-                      "observer terms that cancel it are not included): use ic='global' or "
-                      "'radial'", ResolutionWarning, stacklevel=3)
+                      "observer terms that cancel it are not included)"
+                      + ("" if ic == "radial" else ": the radial integral constraint removes it"),
+                      ResolutionWarning, stacklevel=3)
     return dict(q_tail=float(tail), ir_per_decade=float(ir))
 
 
@@ -486,6 +588,27 @@ def _noise(shell, r, wr, w, base, v, i2, k, wk, edges, ells, ic, jk):
     return _bin(out, wk, edges.size - 1)
 
 
+def _radial_transforms(shell, edges, profiles, ells, ic, resolution):
+    """(bin weights, (2ℓ+1)(4π)²/I₂ × phase per ℓ, f_ℓ(k) per ℓ ∪ {0}) of profiles (n_a, n_r)
+    on the window nodes of ``resolution``: f_ℓ = ∫ r² w m_IC j_ℓ(kr) dr (see
+    radial_field_multipoles)."""
+    if ic not in IC_KINDS:
+        raise ConfigError(f"ic = {ic!r}: expected one of {IC_KINDS}")
+    edges = np.asarray(edges, dtype=float)
+    _, _, (r, wr), (k, wk) = resolution_grids(shell, edges, resolution)
+    w = shell._eval("weight", shell.weight, r)
+    base = wr * r ** 2 * w
+    i2 = 4.0 * np.pi * np.sum(wr * r ** 2 * w ** 2)
+    m = ic_monopole(np.atleast_2d(profiles), base / base.sum(), ic)
+    jk = spherical_jn_all(max(ells), k[:, None] * r[None, :])
+    f = {l: (base * m) @ jk[l].T for l in set(ells) | {0}}                    # (n_a, n_k)
+    fac = {}
+    for l in ells:
+        phase = (-1j) ** l if l % 2 == 0 else (-1j) ** l / 1j
+        fac[l] = (2 * l + 1) * (4 * np.pi) ** 2 / i2 * phase.real
+    return wk, fac, f
+
+
 def radial_field_multipoles(shell, edges, r_tab, m_tab, ells=(0, 2, 4), ic="none",
                             resolution=EstimatorResolution(k_nodes=16)):
     """The estimator applied to a deterministic field isotropic about the observer, m(r)
@@ -500,25 +623,61 @@ def radial_field_multipoles(shell, edges, r_tab, m_tab, ells=(0, 2, 4), ic="none
     1/r_max (4 nodes miss it by up to 100 % in the bins where it changes sign).
     """
     from scipy.interpolate import CubicSpline
-    if ic not in IC_KINDS:
-        raise ConfigError(f"ic = {ic!r}: expected one of {IC_KINDS}")
     edges = np.asarray(edges, dtype=float)
-    _, _, (r, wr), (k, wk) = resolution_grids(shell, edges, resolution)
+    _, _, (r, _), _ = resolution_grids(shell, edges, resolution)
     r_tab, m_tab = np.asarray(r_tab, dtype=float), np.asarray(m_tab, dtype=float)
     if r_tab.ndim != 1 or r_tab.shape != m_tab.shape or r_tab[0] > r[0] or r_tab[-1] < r[-1]:
         raise ConfigError("radial field: r_tab, m_tab must be 1-D of equal length and cover "
                           f"the shell [{shell.r_min}, {shell.r_max}] Mpc/h")
-    w = shell._eval("weight", shell.weight, r)
-    base = wr * r ** 2 * w
-    i2 = 4.0 * np.pi * np.sum(wr * r ** 2 * w ** 2)
-    m = ic_monopole(CubicSpline(np.log(r_tab), m_tab)(np.log(r)), base / base.sum(), ic)
-    f = {l: spherical_jn_all(max(ells), k[:, None] * r[None, :])[l] @ (base * m)
-         for l in set(ells) | {0}}
-    out = []
-    for l in ells:
-        phase = (-1j) ** l if l % 2 == 0 else (-1j) ** l / 1j
-        out.append((2 * l + 1) * (4 * np.pi) ** 2 / i2 * phase.real * f[l] * f[0])
-    return _bin(np.array(out), wk, edges.size - 1)
+    m = CubicSpline(np.log(r_tab), m_tab)(np.log(r))
+    wk, fac, f = _radial_transforms(shell, edges, m, ells, ic, resolution)
+    out = np.array([fac[l] * f[l][0] * f[0][0] for l in ells])
+    return _bin(out, wk, edges.size - 1)
+
+
+def radial_field_templates(shell, edges, names, profiles, ells=(0, 2, 4), ic="none",
+                           resolution=EstimatorResolution(k_nodes=16)):
+    """Pair templates of the estimator applied to m = Σ_a x_a m_a, fields isotropic about the
+    observer given as ``profiles`` (n_a, n_r) on the window nodes of ``resolution`` (those of
+    :func:`monopole_profiles`): {(a, b): (n_ell, n_bins)} for a ≤ b in the order of ``names``,
+    with E[m] = Σ_{a≤b} x_a x_b T_ab (T_ab holds both orderings F_ℓ[a] F_0[b] + F_ℓ[b] F_0[a])."""
+    wk, fac, f = _radial_transforms(shell, edges, profiles, ells, ic, resolution)
+    out = {}
+    for a, na in enumerate(names):
+        for b in range(a, len(names)):
+            t = np.array([fac[l] * (f[l][a] * f[0][b] + (f[l][b] * f[0][a] if b != a else 0.0))
+                          for l in ells])
+            out[na, names[b]] = _bin(t, wk, edges.size - 1)
+    return out
+
+
+def monopole_profiles(cosmo, shell, edges, q, measure, tracer, terms=("density", "rsd"),
+                      resolution=EstimatorResolution(k_nodes=16), snapshot_z=None):
+    """Σ_i measure_i W_0(q_i, r): the angular monopole of the kernel (every piece on the light
+    cone, integrated ones included; no integral constraint) weighted on a caller's q grid, on
+    the window nodes r of ``resolution``. With measure = dq q² P(q) C(q)/(2π²) (C: a constraint
+    field at the observer, c(q) = C δ_m0(q)) this is the cross-correlation ξ_gc(r) of the
+    number counts with the field at the observer: only J = 0 survives the average over
+    directions (Rayleigh expansion). ``tracer``: TracerCoefficients (with ``terms``) or a
+    sequence of BasisKernel. Returns (r, names, profiles (n_names, n_r))."""
+    q = np.asarray(q, dtype=float)
+    measure = np.asarray(measure, dtype=float)
+    if q.ndim != 1 or q.shape != measure.shape or q.size == 0 or q.min() <= 0:
+        raise ConfigError("monopole_profiles: q and measure must be 1-D of equal length, q > 0")
+    _, _, (r, wr), _ = resolution_grids(shell, np.asarray(edges, dtype=float), resolution)
+    sides = _kernel_sides(cosmo, shell, r, q, tracer, terms, None, None, snapshot_z)
+    side = sides.sets[0]
+    names = side.names if not isinstance(side, _KernelSet) else list(side.names)
+    out = np.zeros((len(names), r.size))
+    for q0 in range(0, q.size, resolution.q_block):
+        qb = q[q0:q0 + resolution.q_block]
+        jq = spherical_jn_all(1, qb[:, None] * r[None, :])
+        jn, near = (_near_integrals(sides.los, sides.all_sets, qb, 0) if sides.need_int
+                    else (None, {}))
+        sl = slice(q0, q0 + qb.size)
+        W = _side_kernels(0, side, (qb, r, jq, jn, near), sl, sides.los, None, "none", False)
+        out += np.einsum("q,aqr->ar", measure[sl], W)
+    return r, names, out
 
 
 def expected_multipoles(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"),

@@ -135,8 +135,11 @@ def bias_forecast(config, neglect=None, parameters=None, priors=None, step_rtol=
         analysis = truth if acfg is cfg else build(acfg)
     for n in neglect:
         on = {"integral_constraint": truth.operator.ic != "none",
-              "window": truth.window is not None, "observer": truth.observer_on}.get(
-                  n, n in truth.effects)
+              "window": truth.window is not None, "observer": truth.observer_on,
+              # curved-sky approximations (config/variants.py refuses them otherwise)
+              "plane_parallel": True, "radial_integral_constraint": True,
+              "lensing": cfg["effects"].get("lensing"), "isw": cfg["effects"].get("isw"),
+              "time_delay": cfg["effects"].get("time_delay")}.get(n, n in truth.effects)
         if not on:
             notes.append(f"forecast.neglect: '{n}' is already off in the truth model; "
                          "neglecting it changes nothing")

@@ -15,6 +15,7 @@ import warnings
 import numpy as np
 
 from ..config import Config, load_config, parameter_set, validate
+from ..config.engine import is_curved
 from ..data import (DataVector, check_covariance, covariance_from_mocks, gaussian_covariance,
                     load_covariance)
 from ..errors import DataError
@@ -210,6 +211,9 @@ def build(config):
     if "tracers" in cfg:                      # several tracers: likelihood.model.multitracer
         from .multitracer import build_multi
         return build_multi(cfg)
+    if is_curved(cfg):                       # engine.kind: curved_sky (model/curved.py)
+        from . import curved
+        return curved.build(cfg)
     params = parameters(cfg)
     cosmo = cosmology(cfg)
     srv = survey(cfg, cosmo)

@@ -135,12 +135,7 @@ class Likelihood:
                 lp -= 0.5 * ((x - mean[i]) * inv_sig[i]) ** 2
         vals = dict(self._fixed_floats)
         vals.update(zip(self.parameter_names, th))
-        b1 = vals["b1"]
-        x = [1.0, b1]
-        if "fnl" in self.effects:
-            x.append(vals["fnl"] * (b1 - self.p))
-        for name in self.lin_free:
-            x.append(vals[name])
+        x = self._amplitudes(vals)
         tpl = self._templates
         c = [x[a] * x[b] for a, b in tpl["pair_list"]]
         if self.observer is not None:
@@ -151,6 +146,17 @@ class Likelihood:
         chi2 = self._dd - 2.0 * (c @ tpl["g"]) + c @ (tpl["G"] @ c)
         res = lp + float(self._loglike_from_chi2(chi2))
         return res if res == res else -np.inf
+
+    def _amplitudes(self, vals):
+        """The forward model's coefficient vector x for one point (floats; same order as
+        ``ForwardModel.coefficients``), without numpy overhead."""
+        b1 = vals["b1"]
+        x = [1.0, b1]
+        if "fnl" in self.effects:
+            x.append(vals["fnl"] * (b1 - self.p))
+        for name in self.lin_free:
+            x.append(vals[name])
+        return x
 
     def _chi2(self, values):
         if not self.cosmo_free:

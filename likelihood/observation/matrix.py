@@ -49,7 +49,7 @@ from scipy.interpolate import CubicSpline
 
 from ..numerics import hankel
 from ..errors import ConfigError, DataError, ErgofitError
-from ..io import open_atomic
+from ..io import cache_folder, open_atomic
 from .window import N_ELL, WindowMultipoles
 
 __all__ = ["wigner3j_zero_sq", "coupling_coefficients", "KBins", "theory_k_grid",
@@ -424,10 +424,7 @@ class WindowMatrix:
         shape = (len(self.ells_out) * self.bins.n, len(self.ells_theory) * self.k_theory.size)
         if not cache:
             return self._build()
-        if cache_dir is None:
-            base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"),
-                                                                      ".cache")
-            cache_dir = os.path.join(base, "ergofit")
+        cache_dir = cache_folder(cache_dir)
         key = self.cache_key()
         path = os.path.join(os.fspath(cache_dir), f"window-matrix-{key[:24]}.npz")
         if os.path.isfile(path):

@@ -16,6 +16,7 @@ import os
 
 import numpy as np
 
+from ..config.engine import is_curved
 from ..theory import tracer as tr
 from ..io import open_atomic, save_figure
 from ..model import factories
@@ -72,6 +73,9 @@ def theory_report(cfg, out_path, k=None, fnl=None):
     if tracer.fnl == 0 and "fnl" in eff:
         lines.append("  (f_NL = 0 in the config: the '+fNL' component equals the Newtonian one; "
                      "show it with --fnl VALUE)")
+    if is_curved(cfg):                  # engine.kind: curved_sky (report/curved_theory.py)
+        from .curved_theory import curved_report
+        lines += curved_report(cfg, out_path, fnl)
     if cfg["effects"]["observer"]:
         with warnings.catch_warnings():   # the observer term integrates over the whole theory grid
             warnings.simplefilter("ignore", tr.PlaneParallelWarning)

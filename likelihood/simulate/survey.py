@@ -30,7 +30,8 @@ import numpy as np
 
 from ..theory import tracer as tr
 from ..config.schema import Config, load_config, validate as validate_config
-from ..errors import ErgofitError
+from ..config.engine import is_curved
+from ..errors import ConfigError, ErgofitError
 from ..io import write_text
 from ..model import build
 from ..model.fiducial import make_tracer
@@ -104,6 +105,10 @@ def simulate_survey(config, n, out=None, mesh_n=None, check=False, echo=print, p
     cfg = load_config(config)
     if n < 2:
         raise ErgofitError(f"--n {n}: need at least 2 mocks for a covariance")
+    if check and is_curved(cfg) and not cfg["engine"]["snapshot"]:
+        raise ConfigError(f"{cfg.path}: --validate: the mocks are snapshots (coefficients at "
+                          "survey.redshift, local terms only), not light cones; set "
+                          "engine.snapshot: true to compare them with the curved-sky model")
     lik = build(cfg)
     mesh = choose_mesh(lik, mesh_n)
     out = out or os.path.join(cfg.output_folder, "mocks")

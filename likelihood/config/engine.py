@@ -1,0 +1,130 @@
+"""The ``engine`` section: which theory route computes the model of a run, and the settings of
+the curved-sky route (likelihood.curved; docs/curved_sky.md, "Configuration").
+
+    engine:
+      kind: plane_parallel | curved_sky        # default plane_parallel
+      snapshot: false                          # curved_sky: coefficients at survey.redshift,
+                                               #   local terms only (the plane-parallel
+                                               #   assumptions, for comparison)
+      bias_evolution: constant | inverse_growth   # b1(z) = b1, or b1 D(z_eff)/D(z)
+      tracer_table: FILE                       # or: the redshift dependence of b1, b_e, s from
+                                               #   a table (columns z b1 b_e s; model/curved.py)
+      resolution: {j_factor, q_range, q_density, r_density, k_nodes}
+    effects:
+      integral_constraint: none | global | radial  # radial: curved_sky only
+      lensing: true, isw: true, time_delay: true   # integrated terms: curved_sky only
+                                                   #   (default on there, off in snapshot mode)
+
+Observer term (effects.observer): available with the none and global integral constraints; with
+the radial one it vanishes exactly on the full sky and is refused.
+
+Integral constraint: the plane-parallel route's ``global`` is the approximate form
+P̂_0(0) W̃²_ℓ(k)/W̃²_0(0) (Peacock & Nicholson 1991); the curved-sky route's ``global`` removes
+the survey mean exactly and ``radial`` removes each distance's angular mean (de Mattia &
+Ruhlmann-Kleider 2019), exact on the full sky.
+
+A plane-parallel config never stores this section (its config hash is unchanged by it).
+"""
+from __future__ import annotations
+
+import os
+
+from ..errors import ConfigError
+from .parameters import suggest
+
+ENGINES = ("plane_parallel", "curved_sky")
+BIAS_EVOLUTION = ("constant", "inverse_growth")
+INTEGRATED_EFFECTS = ("lensing", "isw", "time_delay")
+#: resolution key -> (default, lowest, highest): factors on the rules of
+#: likelihood.curved.estimator.EstimatorResolution (1 = the default rule), k_nodes per bin
+RESOLUTION = {"j_factor": (1.0, 0.5, 4.0), "q_range": (1.0, 0.5, 4.0),
+              "q_density": (1.0, 0.5, 4.0), "r_density": (1.0, 0.5, 4.0),
+              "k_nodes": (4, 2, 16)}
+CURVED_KEYS = ("snapshot", "bias_evolution", "resolution", "tracer_table")
+
+
+def table_path(val, where):
+    """engine.tracer_table: a file name (existence is checked against the config's folder)."""
+    if not isinstance(val, str) or not val.strip():
+        raise ConfigError(f"{where}: expected a file name, got {val!r}")
+    return val
+
+
+def resolution(val, where):
+    """engine.resolution: a mapping of the RESOLUTION keys (numbers in their ranges)."""
+    if not isinstance(val, dict):
+        raise ConfigError(f"{where}: expected a mapping like {{q_range: 1.5}}, got {val!r}")
+    out = {}
+    for key, (default, lo, hi) in RESOLUTION.items():
+        v = val.get(key, default)
+        whole = isinstance(default, int)
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not lo <= v <= hi \
+                or (whole and int(v) != v):
+            raise ConfigError(f"{where}.{key}: expected a {'whole ' if whole else ''}number "
+                              f"from {lo} to {hi}, got {v!r}")
+        out[key] = int(v) if whole else float(v)
+    for key in val:
+        if key not in RESOLUTION:
+            raise ConfigError(f"{where}: unknown key '{key}'{suggest(key, RESOLUTION)}; "
+                              f"allowed: {', '.join(RESOLUTION)}")
+    return out
+
+
+def is_curved(cfg):
+    """True when the run uses the curved-sky engine."""
+    return cfg.get("engine", {}).get("kind") == "curved_sky"
+
+
+def check_engine(cfg, src):
+    """Cross-section checks of the engine choice; fills the curved-sky defaults in place.
+
+    Raises ConfigError (one line naming the key) for a setting the chosen engine cannot model.
+    """
+    eng, eff = cfg["engine"], cfg["effects"]
+    kind = eng.get("kind", "plane_parallel")
+    if kind == "plane_parallel":
+        for key in CURVED_KEYS:
+            if key in eng:
+                raise ConfigError(f"{src}: engine.{key} applies to engine.kind: curved_sky only; "
+                                  "remove it or choose the curved-sky engine")
+        for key in INTEGRATED_EFFECTS:
+            if eff.get(key):
+                raise ConfigError(f"{src}: effects.{key}: the integrated terms are modelled by "
+                                  "engine.kind: curved_sky only; set it false or choose that engine")
+            eff.pop(key, None)
+        if eff["integral_constraint"] == "radial":
+            raise ConfigError(f"{src}: effects.integral_constraint: radial needs engine.kind: "
+                              "curved_sky; the plane-parallel engine has none or global")
+        cfg["engine"] = {}
+        return
+    shape = cfg["survey"]["geometry"]["shape"]
+    if shape != "shell":
+        raise ConfigError(f"{src}: survey.geometry.shape: '{shape}' is not available with "
+                          "engine.kind: curved_sky, which models a full-sky radial selection; "
+                          "use shape: shell (angular masks and n(z) tables are not implemented yet)")
+    if not eff["window"]:
+        raise ConfigError(f"{src}: effects.window: false is not possible with engine.kind: "
+                          "curved_sky (the survey's shell is the window it models); set it true")
+    if eff["observer"] and eff["integral_constraint"] == "radial":
+        raise ConfigError(f"{src}: effects.observer: with integral_constraint: radial the "
+                          "constrained-field observer term vanishes exactly on the full sky "
+                          "(the radial mean removes every isotropic field); set it false")
+    snapshot = eng.get("snapshot", False)
+    for key in INTEGRATED_EFFECTS:
+        if snapshot and eff.get(key):
+            raise ConfigError(f"{src}: effects.{key}: engine.snapshot has local terms only; set "
+                              f"effects.{key}: false or snapshot: false")
+        eff[key] = eff.get(key, not snapshot)
+    table = eng.get("tracer_table")
+    if table is not None:
+        if "bias_evolution" in eng:
+            raise ConfigError(f"{src}: engine.tracer_table sets the redshift dependence of b1; "
+                              "remove engine.bias_evolution")
+        if not os.path.isfile(cfg.resolve(table)):
+            raise ConfigError(f"{src}: engine.tracer_table: file '{table}' not found (looked for "
+                              f"{cfg.resolve(table)})")
+    cfg["engine"] = {"kind": kind, "snapshot": snapshot,
+                     "bias_evolution": "table" if table else eng.get("bias_evolution", "constant"),
+                     "resolution": eng.get("resolution", resolution({}, ""))}
+    if table:
+        cfg["engine"]["tracer_table"] = table
