@@ -35,10 +35,9 @@ from .estimator import IC_KINDS, EstimatorResolution, NodeSpectra, Templates
 from .lightcone import ResolutionWarning
 
 __all__ = ["Cap", "HealpixMask", "FULL_SKY", "wigner3j_zero_sq_table", "coupling_matrix",
-           "band_limit", "masked_templates", "masked_multipoles", "MASK_TOLERANCE"]
+           "band_limit", "constrained_coupling", "masked_templates", "masked_multipoles", "MASK_TOLERANCE"]
 
 MASK_TOLERANCE = 1e-4     # default: mask power left beyond the band limit, relative to ∫M²dΩ
-TAIL_TOLERANCE = 1e-3     # the top tenth of the orders L kept, relative to max |P̂_0|
 
 
 def _log_factorials(n):
@@ -244,6 +243,28 @@ class HealpixMask:
         return f"HEALPix map {self.source} (nside {self.nside}, f_sky {self.area / 4 / np.pi:.3g})"
 
 
+def constrained_coupling(mask, power, j_max, l_max, ic):
+    """The angular operators of the masked estimator with an integral constraint (module
+    docstring; derivation in docs/curved_mask.md §4): (coup, xp, wp, wj) with
+    coup_JL = M_JL (ic "none" or "global") or M_JL − 2 X_JL/((2J+1)Ω_M) + W_J (2L+1)W_L/Ω_M²
+    (ic "radial", where R is the identity), xp_JL = X_JL/((2J+1)Ω_M), wp_L = (2L+1)W_L/Ω_M²,
+    wj_J = W_J (None for ic "none"). ``power``: W_K for K = 0..K_band (truncated)."""
+    power = np.asarray(power, dtype=float)
+    coup = coupling_matrix(power, j_max, l_max)
+    if ic == "none":
+        return coup, None, None, None
+    W = np.zeros(max(j_max, l_max) + 1)
+    n = min(W.size, power.size)
+    W[:n] = power[:n]
+    J = np.arange(j_max + 1)
+    xp = mask.triple(j_max, l_max) / ((2 * J + 1)[:, None] * mask.area)
+    wp = (2 * np.arange(l_max + 1) + 1) * W[:l_max + 1] / mask.area ** 2
+    wj = W[:j_max + 1]
+    if ic == "radial":
+        coup = coup - 2.0 * xp + np.outer(wj, wp)
+    return coup, xp, wp, wj
+
+
 def _pair_groups(pairs, size_per_pair, budget):
     n = max(1, int(budget // max(size_per_pair, 1)))
     return [pairs[i:i + n] for i in range(0, len(pairs), n)]
@@ -262,9 +283,9 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
     Band limit: the mask's power is kept to K_band, the first K with the power beyond it
     ≤ ``tolerance`` ∫M²dΩ (or J_max + L_top, beyond which no K couples); orders L ≤ L_top =
     min(J_max + K_band, the highest order resolved by the q grid). ``memory``: bytes for the
-    C_L(r1, r2) of the pairs processed together. ``meta`` adds k_band, l_top, mask_tail (power
-    beyond K_band / ∫M²) and l_tail (share of max |P̂_0| from the top tenth of the orders L:
-    a ResolutionWarning above 1e-3).
+    C_L(r1, r2) of the pairs processed together. ``meta`` adds k_band, l_top and mask_tail (power
+    beyond K_band / ∫M²). The q grid (q_max) is the full-sky rule: the mask's edges couple the
+    orders L up to q_max r_max into J ≤ J_max; the q_range doubling test covers them.
     """
     if ic not in IC_KINDS:
         raise ConfigError(f"ic = {ic!r}: expected one of {IC_KINDS}")
@@ -289,29 +310,20 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
                       ResolutionWarning, stacklevel=2)
     l_top = min(ns.l_limit, j_max + k_band)
     W = np.where(np.arange(W.size) <= k_band, W, 0.0)
-    coup = coupling_matrix(W[:k_band + 1], j_max, l_top)
-    J = np.arange(j_max + 1)
-    if ic != "none":
-        xp = mask.triple(j_max, l_top) / ((2 * J + 1)[:, None] * mask.area)
-        wp = (2 * np.arange(l_top + 1) + 1) * W[:l_top + 1] / mask.area ** 2
-        wj = W[:j_max + 1]
-        if ic == "radial":
-            coup = coup - 2.0 * xp + np.outer(wj, wp)
+    coup, xp, wp, wj = constrained_coupling(mask, W, j_max, l_top, ic)
     v = ns.base / ns.base.sum()
     i2 = float(np.sum(ns.wr * ns.r ** 2 * ns.weight ** 2)) * mask.m2
     na, nb = len(ns.names_a), len(ns.names_b)
     pairs = ([(a, b) for a in range(na) for b in range(a, nb)] if ns.auto else
              [(a, b) for a in range(na) for b in range(nb)])
-    top = slice(int(0.9 * l_top) + 1, l_top + 1)
     per_pair = 8.0 * nr * nr * (l_top + 1 + j_max + 1)
-    acc, tail = {}, np.zeros(ns.k.size)
+    acc = {}
     lfac = np.array([(2 * l + 1) * 4 * np.pi / i2 for l in ells])[:, None]
     for group in _pair_groups(pairs, per_pair, memory):
         spectra = ns.spectra(l_top, group)
         for p in group:
             c = spectra.pop(p)
             cj = (coup @ c.reshape(l_top + 1, -1)).reshape(j_max + 1, nr, nr)
-            ctop = (coup[:, top] @ c[top].reshape(-1, nr * nr)).reshape(j_max + 1, nr, nr)
             if ic == "global":
                 cv, vc = c @ v, np.einsum("r,Lrs->Ls", v, c)
                 u, u2 = xp @ cv, xp @ vc
@@ -323,8 +335,6 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
             for j in range(j_max + 1):
                 stack = np.stack([cj[j], cj[j].T]) if both else cj[j][None]
                 out = out + ns.project(j, ells, stack).sum(axis=0)
-                if 0 in ells:
-                    tail = tail + ns.project(j, (0,), ctop[j][None])[0, 0] * (2 if both else 1)
             acc[p] = lfac * out
     binned = {p: ns.bin(vals) for p, vals in acc.items()}
     names = {(ns.names_a[a], ns.names_b[b]): binned[a, b] for a, b in pairs}
@@ -334,15 +344,6 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
     meta = dict(j_max=j_max, n_q=ns.q.size, n_r=nr, n_k=ns.k.size, q_max=float(ns.q[-1]),
                 ic=ic, snapshot_z=snapshot_z, k_band=k_band, l_top=l_top,
                 mask_tail=mask_tail, mask=mask.describe())
-    if 0 in ells:
-        scale = np.abs(sum(acc[p][ells.index(0)] for p in pairs)).max()
-        l_tail = float(np.abs(tail).max() * lfac[ells.index(0), 0] / scale) if scale else 0.0
-        meta["l_tail"] = l_tail
-        if l_tail > TAIL_TOLERANCE:
-            warnings.warn(f"masked curved-sky estimator: the orders L > {top.start - 1} of "
-                          f"L_top = {l_top} carry {l_tail:.2g} of P̂_0 (> {TAIL_TOLERANCE:g}): "
-                          "the mask's edges couple small scales the q grid cuts; raise q_range",
-                          ResolutionWarning, stacklevel=2)
     return Templates(ells, ns.edges, names, noise, ns.auto, meta)
 
 
