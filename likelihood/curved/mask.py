@@ -35,7 +35,8 @@ from .estimator import IC_KINDS, EstimatorResolution, NodeSpectra, Templates
 from .lightcone import ResolutionWarning
 
 __all__ = ["Cap", "HealpixMask", "FULL_SKY", "wigner3j_zero_sq_table", "coupling_matrix",
-           "band_limit", "constrained_coupling", "masked_templates", "masked_multipoles", "MASK_TOLERANCE"]
+           "band_limit", "constrained_coupling", "coupled_spectra",
+           "masked_templates", "masked_multipoles", "MASK_TOLERANCE"]
 
 MASK_TOLERANCE = 1e-4     # default: mask power left beyond the band limit, relative to ∫M²dΩ
 
@@ -265,6 +266,23 @@ def constrained_coupling(mask, power, j_max, l_max, ic):
     return coup, xp, wp, wj
 
 
+def coupled_spectra(c_l, operators, v, ic):
+    """C̃_J(r_i, r_j), J = 0..J_max (J_max + 1, n_r, n_r), from C_L(r_i, r_j) (L_max + 1, n_r,
+    n_r) and the operators of :func:`constrained_coupling` (module docstring):
+    "none", "radial": Σ_L coup_JL C_L; "global" (R = 1vᵀ, ``v`` the normalised radial weights
+    r² w dr of the survey mean): Σ_L [M_JL C_L − xp_JL (C_L v 1ᵀ + 1 vᵀ C_L)] + W_J (Σ_L wp_L
+    vᵀ C_L v) 1 1ᵀ."""
+    coup, xp, wp, wj = operators
+    n_l, nr = c_l.shape[0], c_l.shape[-1]
+    cj = (coup @ c_l.reshape(n_l, -1)).reshape(-1, nr, nr)
+    if ic == "global":
+        cv, vc = c_l @ v, np.einsum("r,Lrs->Ls", v, c_l)
+        u, u2 = xp @ cv, xp @ vc
+        a3 = wp @ (vc @ v)
+        cj -= u[:, :, None] + u2[:, None, :] - (wj * a3)[:, None, None]
+    return cj
+
+
 def _pair_groups(pairs, size_per_pair, budget):
     n = max(1, int(budget // max(size_per_pair, 1)))
     return [pairs[i:i + n] for i in range(0, len(pairs), n)]
@@ -310,7 +328,7 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
                       ResolutionWarning, stacklevel=2)
     l_top = min(ns.l_limit, j_max + k_band)
     W = np.where(np.arange(W.size) <= k_band, W, 0.0)
-    coup, xp, wp, wj = constrained_coupling(mask, W, j_max, l_top, ic)
+    operators = constrained_coupling(mask, W, j_max, l_top, ic)
     v = ns.base / ns.base.sum()
     i2 = float(np.sum(ns.wr * ns.r ** 2 * ns.weight ** 2)) * mask.m2
     na, nb = len(ns.names_a), len(ns.names_b)
@@ -323,12 +341,7 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
         spectra = ns.spectra(l_top, group)
         for p in group:
             c = spectra.pop(p)
-            cj = (coup @ c.reshape(l_top + 1, -1)).reshape(j_max + 1, nr, nr)
-            if ic == "global":
-                cv, vc = c @ v, np.einsum("r,Lrs->Ls", v, c)
-                u, u2 = xp @ cv, xp @ vc
-                a3 = wp @ (vc @ v)
-                cj -= u[:, :, None] + u2[:, None, :] - (wj * a3)[:, None, None]
+            cj = coupled_spectra(c, operators, v, ic)
             del c
             both = ns.auto and p[0] != p[1]
             out = 0.0
