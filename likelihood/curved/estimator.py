@@ -589,7 +589,6 @@ class NodeSpectra:
         r, q, nr = self.r, self.q, self.r.size
         rmax = self.shell.r_max
         ia_set = sorted({a for a, _ in pairs})
-        ib_set = sorted({b for _, b in pairs})
         out = {p: np.zeros((l_top + 1, nr, nr)) for p in pairs}
         blk_size = self.resolution.q_block
         for q0 in range(0, q.size, blk_size):
@@ -613,12 +612,9 @@ class NodeSpectra:
                 WA = _kernels(L, self.sets[0], blk, sl, self.los, None, "none", self.combine)
                 WB = WA if self.auto else _kernels(L, self.sets[1], blk, sl, self.los, None,
                                                    "none", self.combine)
-                left = (WA[ia_set] * self.meas[sl][None, :, None]).transpose(0, 2, 1)
-                prod = left.reshape(-1, sl.stop - sl.start) @ WB[ib_set].transpose(1, 0, 2) \
-                    .reshape(sl.stop - sl.start, -1)
-                prod = prod.reshape(len(ia_set), nr, len(ib_set), nr)
+                left = {a: (WA[a] * self.meas[sl][:, None]).T for a in ia_set}   # (r, q)
                 for a, b in pairs:
-                    out[a, b][L] += prod[ia_set.index(a), :, ib_set.index(b)]
+                    out[a, b][L] += left[a] @ WB[b]
         return out
 
     def project(self, J, ells, c_j):
@@ -631,10 +627,11 @@ class NodeSpectra:
         jk, base = self._jk, self.base
         coefs = _g_coefficients(J, ells)
         right = jk[J] * base[None, :]                                        # (k, r)
+        z = c_j @ right.T                                                    # (..., r, k)
         out = []
         for l in ells:
             left = sum(c * jk[L] for L, c in coefs[l].items()) * base[None, :]
-            out.append(np.einsum("kr,...rs,ks->...k", left, c_j, right, optimize=True))
+            out.append(np.einsum("kr,...rk->...k", left, z))
         return (2 * J + 1) * np.stack(out, axis=-2)
 
     def bin(self, vals):

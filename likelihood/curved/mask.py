@@ -291,7 +291,7 @@ def _pair_groups(pairs, size_per_pair, budget):
 def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "rsd"),
                      tracer_b=None, terms_b=None, ells=(0, 2, 4), ic="none",
                      resolution=EstimatorResolution(), tolerance=MASK_TOLERANCE,
-                     combine_pieces=False, snapshot_z=None, memory=1.0e9):
+                     combine_pieces=False, snapshot_z=None, memory=1.5e9):
     """Templates of the expected estimator for the window w(r) M(n̂) (module docstring):
     ``shell`` gives w(r) and n̄(r) (likelihood.curved.estimator.Shell), ``mask`` M(n̂)
     (:class:`Cap`, :class:`HealpixMask`, FULL_SKY). Other arguments and the result
@@ -301,7 +301,8 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
     Band limit: the mask's power is kept to K_band, the first K with the power beyond it
     ≤ ``tolerance`` ∫M²dΩ (or J_max + L_top, beyond which no K couples); orders L ≤ L_top =
     min(J_max + K_band, the highest order resolved by the q grid). ``memory``: bytes for the
-    C_L(r1, r2) of the pairs processed together. ``meta`` adds k_band, l_top and mask_tail (power
+    C_L(r1, r2) of the pairs processed together (each group of pairs recomputes the kernels;
+    the peak adds one pair's C̃_J, 8 (J_max + 1) n_r² bytes). ``meta`` adds k_band, l_top and mask_tail (power
     beyond K_band / ∫M²). The q grid (q_max) is the full-sky rule: the mask's edges couple the
     orders L up to q_max r_max into J ≤ J_max; the q_range doubling test covers them.
     """
@@ -334,7 +335,7 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
     na, nb = len(ns.names_a), len(ns.names_b)
     pairs = ([(a, b) for a in range(na) for b in range(a, nb)] if ns.auto else
              [(a, b) for a in range(na) for b in range(nb)])
-    per_pair = 8.0 * nr * nr * (l_top + 1 + j_max + 1)
+    per_pair = 8.0 * nr * nr * (l_top + 1)
     acc = {}
     lfac = np.array([(2 * l + 1) * 4 * np.pi / i2 for l in ells])[:, None]
     for group in _pair_groups(pairs, per_pair, memory):
