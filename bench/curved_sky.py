@@ -48,8 +48,10 @@ else:
     t = multipole_templates(cosmo, Shell(1950.0, 3200.0, nbar=3e-4), edges, tr, terms,
                             ells=(0, 1, 2, 3, 4), ic="radial")
 dt = time.time() - t0
-peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+use = resource.getrusage(resource.RUSAGE_SELF)
+peak, cpu = use.ru_maxrss / 1024.0, use.ru_utime + use.ru_stime   # cpu: includes the imports
 print(f"terms: {terms}")
 print(f"templates: {len(t.pairs)} pairs + noise, {len(t.ells)} multipoles x {edges.size - 1} bins")
 print(f"BLAS threads {_n}, load average {os.getloadavg()[0]:.1f} at the end")
-print(f"time {dt:.1f} s, peak memory {peak:.0f} MB, resolution {t.meta}")
+print(f"time {dt:.1f} s (process CPU {cpu:.1f} s), peak memory {peak:.0f} MB, "
+      f"resolution {t.meta}")

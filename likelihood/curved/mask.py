@@ -31,6 +31,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import ConfigError, DataError
+from ..numerics.legendre import legendre_all
 from .estimator import IC_KINDS, EstimatorResolution, NodeSpectra, Templates
 from .lightcone import ResolutionWarning
 
@@ -90,18 +91,6 @@ def band_limit(power, m2, tolerance):
     return int(hit[0]) if hit.size else len(power) - 1
 
 
-def _legendre_table(n_max, x):
-    """L_n(x) for n = 0..n_max (Bonnet recurrence), (n_max + 1, x.size)."""
-    x = np.asarray(x, dtype=float)
-    out = np.empty((n_max + 1, x.size))
-    out[0] = 1.0
-    if n_max >= 1:
-        out[1] = x
-    for n in range(1, n_max):
-        out[n + 1] = ((2 * n + 1) * x * out[n] - n * out[n - 1]) / (n + 1)
-    return out
-
-
 @dataclass(frozen=True)
 class Cap:
     """Polar cap of sky fraction ``f_sky``: M = 1 for cos θ ≥ c = 1 − 2 f_sky, else 0.
@@ -135,7 +124,7 @@ class Cap:
 
     def legendre_integrals(self, k_max):
         """I_K = ∫_c^1 L_K(x) dx, K = 0..k_max."""
-        leg = _legendre_table(k_max + 1, np.array([self.c]))[:, 0]
+        leg = legendre_all(np.array([self.c]), k_max + 1)[:, 0]
         K = np.arange(k_max + 1)
         out = np.empty(k_max + 1)
         out[0] = 1.0 - self.c
@@ -164,7 +153,7 @@ class Cap:
         x = 0.5 * (1 - self.c) * t + 0.5 * (1 + self.c)
         wx = 0.5 * (1 - self.c) * u
         top = max(j_max, l_max)
-        leg = _legendre_table(top, x) * ((2 * np.arange(top + 1) + 1) / 2.0
+        leg = legendre_all(x, top) * ((2 * np.arange(top + 1) + 1) / 2.0
                                          * self.legendre_integrals(top))[:, None]
         return 2.0 * np.pi * (leg[: j_max + 1] * wx) @ leg[: l_max + 1].T
 
@@ -201,13 +190,18 @@ class HealpixMask:
         self.source = source
         self.map = m
         self.nside = healpy.npix2nside(m.size)
-        self.lmax = 3 * self.nside - 1 if lmax is None else int(lmax)
+        self.lmax = 3 * self.nside - 1 if lmax is None else lmax
+        if isinstance(self.lmax, bool) or not isinstance(self.lmax, (int, np.integer)) \
+                or self.lmax < 1:
+            raise ConfigError(f"{source}: lmax = {lmax!r}: expected an integer >= 1")
         pix = 4.0 * np.pi / m.size
         self.area = float(m.sum() * pix)
         self.m2 = float((m * m).sum() * pix)
         self._alm = healpy.map2alm(m, lmax=self.lmax)
         self._w = healpy.alm2cl(self._alm)
-        self._w2 = healpy.alm2cl(self._alm, healpy.map2alm(m * m, lmax=self.lmax))
+        binary = np.array_equal(m * m, m)
+        self._w2 = self._w if binary else \
+            healpy.alm2cl(self._alm, healpy.map2alm(m * m, lmax=self.lmax))
 
     def _pad(self, arr, k_max):
         out = np.zeros(k_max + 1)
@@ -227,17 +221,21 @@ class HealpixMask:
 
     def triple(self, j_max, l_max):
         """X_JL = ∫ M M_J M_L dΩ by the pixel sum (M_L from healpy.alm2map of the degree-L
-        coefficients); zero beyond lmax."""
+        coefficients); zero beyond lmax. Memory: (min(J_max, lmax) + 65) maps of 12 nside²."""
         hp = self._hp
-        top = min(max(j_max, l_max), self.lmax)
         ell = hp.Alm.getlm(self.lmax)[0]
-        parts = np.empty((top + 1, self.map.size))
-        for L in range(top + 1):
-            parts[L] = hp.alm2map(np.where(ell == L, self._alm, 0.0), self.nside, lmax=self.lmax)
         pix = 4.0 * np.pi / self.map.size
+
+        def parts(lo, hi):
+            return np.array([hp.alm2map(np.where(ell == L, self._alm, 0.0), self.nside,
+                                        lmax=self.lmax) for L in range(lo, hi)])
+
+        nj, nl = min(j_max, self.lmax) + 1, min(l_max, self.lmax) + 1
+        left = parts(0, nj) * (self.map * pix)
         out = np.zeros((j_max + 1, l_max + 1))
-        nj, nl = min(j_max, top) + 1, min(l_max, top) + 1
-        out[:nj, :nl] = (parts[:nj] * (self.map * pix)) @ parts[:nl].T
+        for lo in range(0, nl, 64):
+            hi = min(lo + 64, nl)
+            out[:nj, lo:hi] = left @ parts(lo, hi).T
         return out
 
     def describe(self):

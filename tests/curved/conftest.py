@@ -6,3 +6,26 @@ import sys
 
 if "numpy" not in sys.modules:
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+import numpy as np  # noqa: E402  (after the BLAS setting above)
+import pytest  # noqa: E402
+
+
+class NoGrowth:
+    """A cosmology with D(z) = 1 (an isotropic, unevolving field: the exact case of the
+    configuration-space window convolution)."""
+
+    def __init__(self, cosmo):
+        self._c = cosmo
+
+    def __getattr__(self, name):
+        return getattr(self._c, name)
+
+    def growth_factor(self, z, norm="today"):
+        return np.ones_like(np.asarray(z, dtype=float))
+
+
+@pytest.fixture(scope="session")
+def no_growth():
+    """The NoGrowth wrapper: ``no_growth(cosmo)``."""
+    return NoGrowth
