@@ -47,8 +47,7 @@ def spherical_jn_all(nmax, x):
     if not np.any(small):                    # no boolean scatter of the (nmax+1, n) table
         return _recurrence(nmax, xf).reshape((nmax + 1,) + shape)
     out = np.empty((nmax + 1, xf.size))
-    if np.any(small):
-        out[:, small] = _series(nmax, xf[small])
+    out[:, small] = _series(nmax, xf[small])
     big = ~small
     if np.any(big):
         out[:, big] = _recurrence(nmax, xf[big])

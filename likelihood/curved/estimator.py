@@ -569,10 +569,17 @@ class NodeSpectra:
         self.need_int = any(t in INTEGRATED_TERMS for t in terms_a + terms_b)
         snap_r = None
         if snapshot_z is not None:
+            try:
+                z_snap = float(snapshot_z)
+            except (TypeError, ValueError):
+                raise ConfigError(f"snapshot_z = {snapshot_z!r}: expected a redshift") from None
+            if not 0.0 < z_snap < 0.99 * cone.z_max:
+                raise ConfigError(f"snapshot_z = {snapshot_z}: expected 0 < z < "
+                                  f"{0.99 * cone.z_max:.3g}")
             if self.need_int:
                 raise ConfigError("snapshot_z: the snapshot mode has local terms only; drop "
                                   f"{[t for t in terms_a + terms_b if t in INTEGRATED_TERMS]}")
-            snap_r = float(cosmo.comoving_distance(float(snapshot_z)))
+            snap_r = float(cosmo.comoving_distance(z_snap))
         self.los = _LineOfSight(r, shell.r_min, shell.r_max, cone) if self.need_int else None
         self.sets = [_kernel_set(cone, cosmo, r, q, self.los, tracer_a, terms_a, snap_r)]
         self.sets.append(self.sets[0] if self.auto else

@@ -32,6 +32,7 @@ import numpy as np
 
 from ..errors import ConfigError, DataError
 from ..numerics.legendre import legendre_all
+from .bessel import bessel_order_max, bessel_x_min
 from .estimator import IC_KINDS, EstimatorResolution, NodeSpectra, Templates
 from .lightcone import ResolutionWarning
 
@@ -314,6 +315,11 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
     ns = NodeSpectra(cosmo, shell, edges, tracer_a, terms_a, tracer_b, terms_b, resolution,
                      combine_pieces, snapshot_z)
     j_max, nr = ns.j_max, ns.r.size
+    x = float(ns.k[-1]) * shell.r_max
+    if bessel_x_min(j_max + 1) <= x:
+        warnings.warn(f"masked curved-sky estimator: J_max = {j_max} does not resolve k_max "
+                      f"r_max = {x:.4g} (needs J_max >= {bessel_order_max(x)}); raise j_factor",
+                      ResolutionWarning, stacklevel=2)
     k_cap = j_max + ns.l_limit
     W = mask.power(k_cap)
     k_band = band_limit(W, mask.m2, tolerance)

@@ -295,3 +295,12 @@ def test_resolution_doubling(cosmo, change, tol):
         fine = masked_multipoles(*args, ells=(0, 1, 2), ic="radial",
                                  resolution=EstimatorResolution(**change))
     assert np.max(np.abs(fine - base)) < tol * np.abs(base[0]).max()
+
+
+def test_masked_j_max_warning(cosmo):
+    """J_max below the order k_max r_max needs (j_factor 0.5) raises a ResolutionWarning
+    naming the remedy, as the full-sky engine does."""
+    with pytest.warns(ResolutionWarning, match="raise j_factor"):
+        masked_multipoles(cosmo, Shell(1000.0, 2000.0), Cap(0.5), EDGES[:3],
+                          TracerCoefficients(b=1.5), ("density",), ells=(0,),
+                          resolution=EstimatorResolution(j_factor=0.5))
