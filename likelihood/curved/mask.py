@@ -310,6 +310,8 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
     ells = tuple(int(l) for l in ells)
     if not ells or min(ells) < 0 or max(ells) > 4:
         raise ConfigError(f"ells = {ells}: expected multipoles between 0 and 4")
+    if not all(hasattr(mask, a) for a in ("power", "area", "m2", "triple", "square_power")):
+        raise ConfigError(f"mask = {mask!r}: expected a Cap, a HealpixMask or FULL_SKY")
     if not (isinstance(tolerance, (int, float)) and 0.0 < tolerance < 1.0):
         raise ConfigError(f"mask tolerance = {tolerance!r}: expected a number in (0, 1)")
     ns = NodeSpectra(cosmo, shell, edges, tracer_a, terms_a, tracer_b, terms_b, resolution,

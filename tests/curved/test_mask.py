@@ -247,6 +247,8 @@ def test_bad_masks():
         HealpixMask(bad)
     with pytest.raises(DataError, match="not all zero"):
         HealpixMask(np.zeros(12 * 4 ** 2))
+    with pytest.raises(ConfigError, match="expected a Cap"):
+        masked_templates(None, Shell(1000.0, 2000.0), 0.5, EDGES, TracerCoefficients())
     with pytest.raises(ConfigError, match="tolerance"):
         masked_templates(None, Shell(1000.0, 2000.0), Cap(0.5), EDGES,
                          TracerCoefficients(), tolerance=2.0)
