@@ -109,9 +109,9 @@ def test_coupling_against_direct_sphere_quadrature():
 def test_integral_constraints_against_direct_sphere_quadrature(ic):
     """The integral-constrained angular spectra C̃_J of a masked field (docs/curved_mask.md §4)
     against the definition evaluated by direct quadrature, on two distances r1, r2 with
-    weights v and a band-limited cross spectrum C_L^{AB}(r_i, r_j) (L ≤ 8): the field Δ(r_i n̂) − C with C the
-    M-weighted angular mean at each distance (radial) or the v-weighted mean of those (global,
-    C = ∫ w M Δ d³x/∫ w M d³x), then ∫∫ dΩ1 dΩ2 M1 M2 L_J(n̂1·n̂2) <Δ'Δ'> = 4π C̃_J. Agreement
+    weights v and a band-limited cross spectrum C_L^{AB}(r_i, r_j) (L ≤ 8): the field
+    Δ(r_i n̂) − C with C the M-weighted angular mean at each distance (radial) or the
+    v-weighted mean of those (global, C = ∫ w M Δ d³x/∫ w M d³x), then ∫∫ dΩ1 dΩ2 M1 M2 L_J(n̂1·n̂2) <Δ'Δ'> = 4π C̃_J. Agreement
     to 1e-10 for J ≤ 8 on a cap of f_sky = 0.2 (an independent numerical route: no harmonic
     coefficients of the mask)."""
     f, lmax = 0.2, 8
