@@ -205,6 +205,27 @@ class HealpixMask:
         self._w2 = self._w if binary else \
             healpy.alm2cl(self._alm, healpy.map2alm(m * m, lmax=self.lmax))
 
+    @classmethod
+    def from_file(cls, path, lmax=None):
+        """The mask in a HEALPix FITS file (first column; ordering from its header, as
+        healpy.read_map reads it); one-line DataError naming the file if it cannot be read."""
+        try:
+            import healpy
+        except ImportError:
+            raise ConfigError(f"{path}: a HEALPix mask needs healpy (pip install healpy)") \
+                from None
+        import os
+        if not os.path.isfile(path):
+            raise DataError(f"{path}: HEALPix mask file not found")
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                values = healpy.read_map(path, field=0, nest=False, dtype=float)
+        except Exception as exc:  # noqa: BLE001 - any reader failure becomes one line
+            raise DataError(f"{path}: not a readable HEALPix FITS map "
+                            f"({type(exc).__name__}: {str(exc).splitlines()[0][:80]})") from None
+        return cls(np.asarray(values, dtype=float), lmax=lmax, source=str(path))
+
     def _pad(self, arr, k_max):
         out = np.zeros(k_max + 1)
         n = min(k_max, self.lmax) + 1

@@ -317,3 +317,29 @@ def test_masked_j_max_warning(cosmo):
         masked_multipoles(cosmo, Shell(1000.0, 2000.0), Cap(0.5), EDGES[:3],
                           TracerCoefficients(b=1.5), ("density",), ells=(0,),
                           resolution=EstimatorResolution(j_factor=0.5))
+
+
+def test_healpix_mask_from_file(tmp_path):
+    """A HEALPix FITS file (written by healpy, the reference library) reads back to the same
+    mask; a missing file, a file that is not FITS and a map with negative values give one-line
+    errors naming the file."""
+    hp = pytest.importorskip("healpy")
+    nside = 16
+    theta, _ = hp.pix2ang(nside, np.arange(12 * nside ** 2))
+    m = (np.cos(theta) >= 0.0).astype(float)
+    path = tmp_path / "cap.fits"
+    hp.write_map(str(path), hp.reorder(m, r2n=True), nest=True, dtype=np.float64)  # NESTED
+    hm = HealpixMask.from_file(str(path))
+    ref = HealpixMask(m)
+    np.testing.assert_allclose(hm.power(30), ref.power(30), rtol=1e-12, atol=1e-14)
+    assert hm.area == pytest.approx(ref.area, rel=1e-12) and hm.m2 == pytest.approx(ref.m2)
+    with pytest.raises(DataError, match="not found"):
+        HealpixMask.from_file(str(tmp_path / "none.fits"))
+    bad = tmp_path / "bad.fits"
+    bad.write_text("not a map")
+    with pytest.raises(DataError, match="bad.fits: not a readable HEALPix"):
+        HealpixMask.from_file(str(bad))
+    neg = tmp_path / "neg.fits"
+    hp.write_map(str(neg), m - 0.5, dtype=np.float64)
+    with pytest.raises(DataError, match="neg.fits: expected finite mask values >= 0"):
+        HealpixMask.from_file(str(neg))
