@@ -589,6 +589,16 @@ class NodeSpectra:
         self.names_b = ["total"] if self.combine else self.sets[1].names
         self.l_limit = bessel_order_max(float(q[-1]) * shell.r_max)
 
+    def nbar(self):
+        """n̄(r_i) of the shell on the radial nodes [(h/Mpc)³] (ConfigError if not given or not
+        > 0), for the shot noise."""
+        if self.shell.nbar is None:
+            raise ConfigError("shell nbar: needed for the shot noise")
+        nbar = self.shell._eval("nbar", self.shell.nbar, self.r)
+        if np.any(nbar <= 0):
+            raise ConfigError("shell nbar(r): expected > 0 on the shell")
+        return nbar
+
     def spectra(self, l_top, pairs):
         """{(ia, ib): array (l_top + 1, n_r, n_r)} of C_L^{ab}(r_i, r_j), L = 0..l_top, for
         the index pairs ``pairs`` into names_a × names_b. Memory: 8 (l_top + 1) n_r² bytes

@@ -397,9 +397,7 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
 def _noise(ns, mask, ells, ic, i2, v, lfac, W, j_max):
     """Shot-noise template: δ_ℓ0 ∫r²w²/n̄ dr/∫r²w² dr plus the IC terms (module docstring)."""
     r, wr, w = ns.r, ns.wr, ns.weight
-    nbar = ns.shell._eval("nbar", ns.shell.nbar, r)
-    if np.any(nbar <= 0):
-        raise ConfigError("shell nbar(r): expected > 0 on the shell")
+    nbar = ns.nbar()
     out = np.zeros((len(ells), ns.k.size))
     if 0 in ells:
         out[ells.index(0)] += np.sum(wr * r ** 2 * w ** 2 / nbar) / np.sum(wr * r ** 2 * w ** 2)
