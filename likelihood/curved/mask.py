@@ -39,7 +39,7 @@ from .lightcone import ResolutionWarning
 
 __all__ = ["Cap", "HealpixMask", "FULL_SKY", "wigner3j_zero_sq_table", "coupling_matrix",
            "band_limit", "constrained_coupling", "coupled_spectra",
-           "masked_templates", "masked_multipoles", "MASK_TOLERANCE"]
+           "masked_templates", "separability", "SeparabilityWarning", "masked_multipoles", "MASK_TOLERANCE"]
 
 MASK_TOLERANCE = 1e-4     # default: mask power left beyond the band limit, relative to ∫M²dΩ
 
@@ -326,7 +326,7 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
     the peak adds one pair's C̃_J, 8 (J_max + 1) n_r² bytes). ``meta`` adds k_band, l_top and
     mask_tail (power beyond K_band / ∫M²). The q grid (q_max) is the full-sky rule: the mask's
     edges couple the orders L up to q_max r_max into J ≤ J_max; the q_range doubling test
-    covers them (docs/curved_mask.md §7: the mask adds a quarter to the full-sky q tail).
+    covers them (docs/curved_mask.md §9: the mask adds a quarter to the full-sky q tail).
 
     Cost (bench/curved_sky.py --mask): ∝ L_top n_r² n_q per pair of pieces plus the coupling
     (J_max+1)(L_top+1) n_r² per pair; 7 s for the direct path of the demo shell at f_sky = 0.25,
@@ -429,4 +429,61 @@ def masked_multipoles(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "
     t = masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a, tracer_b, terms_b, ells,
                          ic, resolution, tolerance, combine_pieces=True, snapshot_z=snapshot_z)
     return t.combine({}, {})
+
+
+class SeparabilityWarning(UserWarning):
+    """The randoms' density is measurably not a product w(r) M(n̂) (distance × direction)."""
+
+
+def separability(positions, n_theta=8, n_phi=16, n_r=16, alpha=1e-3, source="randoms"):
+    """How far a random catalogue is from separable in distance × direction, the assumption of
+    the masked curved-sky expectation (window w(r) M(n̂)).
+
+    The randoms are counted in equal-area sky patches (n_theta bands in cos θ × n_phi sectors in
+    φ about the observer at the origin; patches holding fewer than 5 n_r randoms are left out)
+    and n_r distance bins with equal numbers of randoms. Separability means the table of counts
+    n_pb is the product of its margins, E_pb = n_p· n_·b / N: Pearson's χ² test of independence
+    (Pearson 1900; dof = (P − 1)(B − 1)), and the size of the departure is the root mean square
+    contingency φ = √(max(χ² − dof, 0)/N) (Pearson 1904), the count-weighted rms of
+    n_pb/E_pb − 1 with its Poisson expectation removed: a density p_p p_b (1 + ε s_p t_b) with
+    zero-mean s, t of unit variance has φ = ε.
+
+    ``positions``: (N, 3) Cartesian positions [Mpc/h] about the observer. Returns a dict
+    (chi2, dof, p_value, rms_departure, n_patches, n_bins). A SeparabilityWarning naming
+    ``source`` when p_value < ``alpha``.
+    """
+    from scipy.stats import chi2 as chi2_dist
+    x = np.asarray(positions, dtype=float)
+    if x.ndim != 2 or x.shape[1] != 3 or x.shape[0] < 100 or not np.all(np.isfinite(x)):
+        raise DataError(f"{source}: expected finite (N, 3) positions with N >= 100")
+    r = np.sqrt(np.sum(x * x, axis=1))
+    if np.any(r <= 0):
+        raise DataError(f"{source}: a random sits at the observer (r = 0)")
+    mu = np.clip(x[:, 2] / r, -1.0, 1.0)
+    phi = np.mod(np.arctan2(x[:, 1], x[:, 0]), 2 * np.pi)
+    band = np.minimum(((mu + 1.0) / 2.0 * n_theta).astype(int), n_theta - 1)
+    sector = np.minimum((phi / (2 * np.pi) * n_phi).astype(int), n_phi - 1)
+    patch = band * n_phi + sector
+    edges = np.quantile(r, np.linspace(0.0, 1.0, n_r + 1))
+    rbin = np.clip(np.searchsorted(edges, r, side="right") - 1, 0, n_r - 1)
+    table = np.zeros((n_theta * n_phi, n_r))
+    np.add.at(table, (patch, rbin), 1.0)
+    table = table[table.sum(axis=1) >= 5 * n_r]
+    table = table[:, table.sum(axis=0) > 0]
+    n_p, n_b = table.shape
+    if n_p < 2 or n_b < 2:
+        raise DataError(f"{source}: too few randoms for a separability test ({x.shape[0]})")
+    total = table.sum()
+    expect = np.outer(table.sum(axis=1), table.sum(axis=0)) / total
+    chi2 = float(np.sum((table - expect) ** 2 / expect))
+    dof = (n_p - 1) * (n_b - 1)
+    out = dict(chi2=chi2, dof=dof, p_value=float(chi2_dist.sf(chi2, dof)),
+               rms_departure=float(np.sqrt(max(chi2 - dof, 0.0) / total)),
+               n_patches=n_p, n_bins=n_b)
+    if out["p_value"] < alpha:
+        warnings.warn(f"{source}: not separable in distance x direction (rms departure "
+                      f"{out['rms_departure']:.3g} over {n_p} sky patches x {n_b} distance bins, "
+                      f"chi2/dof = {chi2 / dof:.3g}); the masked curved-sky expectation assumes "
+                      "w(r) M(n)", SeparabilityWarning, stacklevel=2)
+    return out
 
