@@ -43,10 +43,11 @@ def spherical_jn_all(nmax, x):
     xf = x.ravel()
     if xf.size and not (np.all(np.isfinite(xf)) and xf.min() > 0.0):
         raise ValueError("spherical_jn_all: x must be finite and > 0")
-    out = np.empty((nmax + 1, xf.size))
     small = xf < _X_SMALL
-    if np.any(small):
-        out[:, small] = _series(nmax, xf[small])
+    if not np.any(small):                    # no boolean scatter of the (nmax+1, n) table
+        return _recurrence(nmax, xf).reshape((nmax + 1,) + shape)
+    out = np.empty((nmax + 1, xf.size))
+    out[:, small] = _series(nmax, xf[small])
     big = ~small
     if np.any(big):
         out[:, big] = _recurrence(nmax, xf[big])
@@ -94,7 +95,14 @@ def _recurrence(nmax, x):
         u2 = d2 = np.zeros_like(u1)
     norm = (u1 * d1 + u2 * d2) / (d1 * d1 + d2 * d2)
     orders = np.arange(nmax + 1)[:, None]
-    up[:, idx] = np.where(orders > n0d[None, :], down * norm[None, :], up[:, idx])
+    down *= norm[None, :]
+    above = orders > n0d[None, :]
+    if idx.size == m:                        # every point: blend in place (no gather/scatter)
+        np.copyto(up, down, where=above)
+    else:
+        sub = up[:, idx]
+        np.copyto(sub, down, where=above)
+        up[:, idx] = sub
     return up
 
 

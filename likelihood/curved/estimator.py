@@ -688,3 +688,128 @@ def expected_multipoles(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
     t = multipole_templates(cosmo, shell, edges, tracer_a, terms_a, tracer_b, terms_b, ells, ic,
                             resolution, combine_pieces=True, snapshot_z=snapshot_z)
     return t.combine({}, {})
+
+
+class NodeSpectra:
+    """The angular spectra of a tracer pair on the estimator's radial nodes, for estimators
+    that need C_L(r1, r2) itself rather than the full-sky sum (the angular mask of
+    likelihood.curved.mask):
+
+        C_L^{ab}(r_i, r_j) = (2/π) ∫ q² dq P(q) W_L^a(q, r_i) W_L^b(q, r_j)
+
+    (docs/curved_sky.md §1; Heavens & Taylor 1995), W_L^a the kernel of piece a of tracer A
+    (tracer B for b), on the grids of :func:`resolution_grids` (the same J_max, q, r and k nodes
+    as :func:`multipole_templates`). Arguments as :func:`multipole_templates`.
+
+    Attributes: ``j_max``, ``q``/``wq``, ``r``/``wr``, ``k``/``wk`` (grids), ``weight`` w(r_i),
+    ``base`` = ωr r² w (the radial measure of the estimator), ``names_a``/``names_b`` (pieces,
+    or ["total"] with ``combine_pieces``), ``auto``, ``l_limit`` (the highest order whose
+    kernel is not negligible on the q grid, bessel_order_max(q_max r_max)).
+    """
+
+    def __init__(self, cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"), tracer_b=None,
+                 terms_b=None, resolution=EstimatorResolution(), combine_pieces=False,
+                 snapshot_z=None):
+        edges = np.asarray(edges, dtype=float)
+        if edges.ndim != 1 or edges.size < 2 or edges[0] <= 0 or np.any(np.diff(edges) <= 0):
+            raise ConfigError("edges: expected increasing positive k bin edges in h/Mpc")
+        self.auto = tracer_b is None
+        terms_a = check_terms(terms_a)
+        terms_b = terms_a if terms_b is None else check_terms(terms_b)
+        tracer_b = tracer_a if self.auto else tracer_b
+        self.shell, self.edges, self.resolution = shell, edges, resolution
+        self.j_max, (self.q, self.wq), (self.r, self.wr), (self.k, self.wk) = \
+            resolution_grids(shell, edges, resolution)
+        r, q = self.r, self.q
+        cone = LightCone(cosmo, _z_at(cosmo, shell.r_max) * 1.01 + 0.01)
+        self.weight = shell._eval("weight", shell.weight, r)
+        self.base = self.wr * r ** 2 * self.weight
+        self.meas = (2.0 / np.pi) * self.wq * q * q * np.asarray(cosmo.power(q, 0.0), dtype=float)
+        self.need_int = any(t in INTEGRATED_TERMS for t in terms_a + terms_b)
+        snap_r = None
+        if snapshot_z is not None:
+            try:
+                z_snap = float(snapshot_z)
+            except (TypeError, ValueError):
+                raise ConfigError(f"snapshot_z = {snapshot_z!r}: expected a redshift") from None
+            if not 0.0 < z_snap < 0.99 * cone.z_max:
+                raise ConfigError(f"snapshot_z = {snapshot_z}: expected 0 < z < "
+                                  f"{0.99 * cone.z_max:.3g}")
+            if self.need_int:
+                raise ConfigError("snapshot_z: the snapshot mode has local terms only; drop "
+                                  f"{[t for t in terms_a + terms_b if t in INTEGRATED_TERMS]}")
+            snap_r = float(cosmo.comoving_distance(z_snap))
+        self.los = _LineOfSight(r, shell.r_min, shell.r_max, cone) if self.need_int else None
+        self.sets = [_kernel_set(cone, cosmo, r, q, self.los, tracer_a, terms_a, snap_r)]
+        self.sets.append(self.sets[0] if self.auto else
+                         _kernel_set(cone, cosmo, r, q, self.los, tracer_b, terms_b, snap_r))
+        self.combine = bool(combine_pieces)
+        self.names_a = ["total"] if self.combine else self.sets[0].names
+        self.names_b = ["total"] if self.combine else self.sets[1].names
+        self.l_limit = bessel_order_max(float(q[-1]) * shell.r_max)
+
+    def nbar(self):
+        """n̄(r_i) of the shell on the radial nodes [(h/Mpc)³] (ConfigError if not given or not
+        > 0), for the shot noise."""
+        if self.shell.nbar is None:
+            raise ConfigError("shell nbar: needed for the shot noise")
+        nbar = self.shell._eval("nbar", self.shell.nbar, self.r)
+        if np.any(nbar <= 0):
+            raise ConfigError("shell nbar(r): expected > 0 on the shell")
+        return nbar
+
+    def spectra(self, l_top, pairs):
+        """{(ia, ib): array (l_top + 1, n_r, n_r)} of C_L^{ab}(r_i, r_j), L = 0..l_top, for
+        the index pairs ``pairs`` into names_a × names_b. Memory: 8 (l_top + 1) n_r² bytes
+        per pair; q is processed in blocks as in :func:`multipole_templates`."""
+        r, q, nr = self.r, self.q, self.r.size
+        rmax = self.shell.r_max
+        ia_set = sorted({a for a, _ in pairs})
+        out = {p: np.zeros((l_top + 1, nr, nr)) for p in pairs}
+        blk_size = self.resolution.q_block
+        for q0 in range(0, q.size, blk_size):
+            qb = q[q0:q0 + blk_size]
+            n_top = min(l_top, bessel_order_max(float(qb[-1]) * rmax))
+            jq = spherical_jn_all(n_top + 1, qb[:, None] * r[None, :])
+            jn, near = None, {}
+            if self.need_int:
+                nodes, weights, bgn = self.los.near_grid(float(qb[-1]))
+                jn = spherical_jn_all(n_top, qb[:, None] * nodes[None, :]) if nodes.size else None
+                for kset in self.sets:
+                    for parts in kset.integ.values():
+                        for part, _ in parts:
+                            near[id(part)] = weights * part.inner(bgn) if nodes.size else weights
+            for L in range(n_top + 1):
+                qa = int(np.searchsorted(qb * rmax, bessel_x_min(max(L - 1, 0))))
+                if qa >= qb.size:
+                    continue
+                sl = slice(q0 + qa, q0 + qb.size)
+                blk = (qb[qa:], r, jq[:, qa:], None if jn is None else jn[:, qa:], near)
+                WA = _kernels(L, self.sets[0], blk, sl, self.los, None, "none", self.combine)
+                WB = WA if self.auto else _kernels(L, self.sets[1], blk, sl, self.los, None,
+                                                   "none", self.combine)
+                left = {a: (WA[a] * self.meas[sl][:, None]).T for a in ia_set}   # (r, q)
+                for a, b in pairs:
+                    out[a, b][L] += left[a] @ WB[b]
+        return out
+
+    def project(self, J, ells, c_j):
+        """The radial double integral of the estimator for order J (module docstring):
+        (2J+1) Σ_ij G_ℓJ(k r_i) base_i c_J(r_i, r_j) base_j j_J(k r_j) for each ℓ in ``ells``
+        on the k nodes, (n_ell, n_k) (real; Π_ℓ for odd ℓ). The caller multiplies by
+        (2ℓ+1)·4π/I₂. ``c_j``: (n_r, n_r) or a stack (..., n_r, n_r)."""
+        if not hasattr(self, "_jk"):
+            self._jk = spherical_jn_all(self.j_max + 5, self.k[:, None] * self.r[None, :])
+        jk, base = self._jk, self.base
+        coefs = _g_coefficients(J, ells)
+        right = jk[J] * base[None, :]                                        # (k, r)
+        z = c_j @ right.T                                                    # (..., r, k)
+        out = []
+        for l in ells:
+            left = sum(c * jk[L] for L, c in coefs[l].items()) * base[None, :]
+            out.append(np.einsum("kr,...rk->...k", left, z))
+        return (2 * J + 1) * np.stack(out, axis=-2)
+
+    def bin(self, vals):
+        """Bin averages (…, n_k) → (…, n_bins) with the Gauss nodes' mode weights."""
+        return _bin(vals, self.wk, self.edges.size - 1)
