@@ -56,7 +56,7 @@ def raw_config(cosmo: bool) -> dict:
         raw = yaml.safe_load(fh)
     if cosmo:
         raw["parameters"]["h"] = {"gauss": [0.6736, 0.0054], "start": 0.6736, "scale": 0.002}
-        raw["parameters"]["omega_cdm"] = {"gauss": [0.1200, 0.0012], "start": 0.12, "scale": 5e-4}
+        raw["parameters"]["omega_c"] = {"gauss": [0.1200, 0.0012], "start": 0.12, "scale": 5e-4}
         raw["effects"]["observer"] = False        # keeps the bench to minutes (see docstring)
         del raw["parameters"]["nu_obs"]
         raw["sampling"]["walkers"] = 12
