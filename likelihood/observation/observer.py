@@ -62,7 +62,10 @@ F_ℓ(k) = ∫d³x F e^{−ik·x} Lₗ(k̂·x̂) and P̂ₗ = (2ℓ+1)/I₂ <F_�
   independent of k̂; s_ℓ = Re (−i)^ℓ = (−1)^{ℓ/2} for even ℓ, and for odd ℓ the data convention
   Πₗ = Im P̂ₗ gives s_ℓ = Im (−i)^ℓ = (−1)^{(ℓ+1)/2} (:func:`likelihood.numerics.hankel.ell_sign`).
   f_ℓ by Gauss–Legendre in r (panels aligned with the window's edges), bins by Gauss–Legendre in
-  k with the mode weight k² (∫k²E dk/∫k²dk, the continuous-shell average of ``KBins``).
+  k with the mode weight k² (∫k²E dk/∫k²dk, the continuous-shell average of ``KBins``). For the
+  templates (cosmological parameters sampled) every step from C P Z_a on the k grid to f_ℓ is a
+  fixed linear map, built once per k grid (:class:`_RadialTemplates`): per cosmology only C P,
+  σ_c and a few FFTs are new; same numbers as :meth:`ObserverTerm.correction` to round-off.
 * Plain volume V (no window, periodic box): W = 1, I₂ = V, no mean subtraction (it only removes
   k = 0); f_ℓ = ∫₀^∞ r² m jₗ dr by FFTLog. Without RSD and Doppler term m is the transform of
   P_gc/σ_c, P_gc = A C P, and (3) reduces to E₀ = P_gc(k)²/(σ_c² V) (the shared design's limit);
