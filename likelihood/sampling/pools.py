@@ -159,6 +159,11 @@ def choose_evaluation(evaluate, pool, coords, repeats: int = 3):
     if pool is None:
         return evaluate, ""
     n = pool_size(pool)
+    if n < 2:
+        release_unused(pool)
+        return evaluate, ("pool of 1 worker not used: the master would wait while its one worker "
+                          "evaluates, which cannot beat one process (MPI: use 3 or more ranks); "
+                          "running in one process")
     t_serial = min(_timed(evaluate, coords) for _ in range(repeats))
     if t_serial < POOL_MIN_SECONDS:
         release_unused(pool)

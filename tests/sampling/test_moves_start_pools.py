@@ -243,6 +243,24 @@ def test_chunked_evaluation_splits_walkers_over_workers():
     assert fn == lik.log_prob and msg == ""
 
 
+def test_pool_of_one_worker_is_not_used():
+    """MPI with 2 ranks: one worker while the master waits cannot beat one process, so the run
+    stays in one process without timing the pool (no task is sent)."""
+    class OneWorker:
+        size = 1
+        sent = 0
+
+        def map(self, fn, chunks):
+            OneWorker.sent += 1
+            return [fn(c) for c in chunks]
+
+    lik = CostlyGaussian(per_walker=2e-3)
+    theta = np.zeros((4, 2))
+    fn, msg = choose_evaluation(lik.log_prob, OneWorker(), theta)
+    assert fn == lik.log_prob and OneWorker.sent == 0
+    assert msg.startswith("pool of 1 worker not used") and "one process" in msg
+
+
 # ---------------------------------------------------------------------------------------------
 # The posterior does not depend on the moves
 # ---------------------------------------------------------------------------------------------
