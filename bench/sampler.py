@@ -173,8 +173,9 @@ def mpi_worker(kind: str) -> None:
     from likelihood.sampling.pools import close_pool, mpi_pool
     warnings.simplefilter("ignore")
     cosmo = kind == "cosmo"
-    lik = make_lik(cosmo)
-    pool = mpi_pool()            # worker rank serves here and exits
+    pool = mpi_pool()            # worker rank serves here and exits (before building anything, as
+    lik = make_lik(cosmo)        # `ergofit run --mpi` does: a worker building its own copy would
+                                 # compete with the master's measurement)
     n = 40 if cosmo else 3000
     try:
         res = {kind: {"forced": steps_per_second(lik, pool, n, True)[0],
