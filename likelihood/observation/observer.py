@@ -391,10 +391,16 @@ class _RadialTemplates:
         self.w_ir = ir_weight(self.k, k_ir)
         self.plans = [hankel.FFTLogPlan(self.k, p) for p in (0, 1, 2)]
         n = self.k.size
-        eye = np.eye(n)
-        log_s0 = np.log(self.plans[0].s)
-        to_nodes = CubicSpline(log_s0, eye, extrapolate=False)(np.log(est.r))
-        to_nodes[est.r < self.plans[0].s[0]] = eye[0]          # as in _Radial.transforms
+        s0 = self.plans[0].s
+        log_s0, log_r = np.log(s0), np.log(est.r)
+        lo, hi = np.searchsorted(log_s0, [log_r.min(), log_r.max()])
+        near = slice(0 if est.r.min() < s0[0] else max(lo - _SPLINE_REACH, 0),
+                     min(hi + _SPLINE_REACH, n))
+        to_nodes = np.zeros((est.r.size, n))
+        to_nodes[:, near] = _spline_columns(log_s0, near, log_r, extrapolate=False)
+        below = est.r < s0[0]
+        to_nodes[below] = 0.0
+        to_nodes[below, 0] = 1.0                               # as in _Radial.transforms
         if not np.all(np.isfinite(to_nodes)):
             raise ErgofitError("observer: the radial nodes lie beyond the FFTLog grid; extend the "
                                "k grid to smaller k")
@@ -406,10 +412,12 @@ class _RadialTemplates:
             cols = _support(to_nodes)
             m = to_nodes[:, cols]
             if p:
-                shift = CubicSpline(np.log(plan.s), eye, extrapolate=True)(log_s0)
-                m = m @ shift[cols]
-                cols = _support(m)
-                m = m[:, cols]
+                near = slice(max(cols.start - _SPLINE_REACH, 0), min(cols.stop + _SPLINE_REACH, n))
+                shifted = np.zeros((est.r.size, n))
+                shifted[:, near] = m @ _spline_columns(np.log(plan.s), near, log_s0[cols],
+                                                        extrapolate=True)
+                cols = _support(shifted)
+                m = shifted[:, cols]
             self.maps.append((cols, np.ascontiguousarray(
                 np.concatenate([est.J[l] @ m for l in self.ells]).T)))
 
@@ -429,6 +437,17 @@ class _RadialTemplates:
         out /= sigma
         n = out.shape[1] // len(self.ells)
         return {l: out[:, i * n:(i + 1) * n] for i, l in enumerate(self.ells)}
+
+
+#: knots beyond which a cubic spline's response to one data point is below 1e-30 (it decays by
+#: 2 − √3 ≈ 0.27 per knot): the spline matrices are built only for the columns within this reach
+_SPLINE_REACH = 60
+
+
+def _spline_columns(x, cols, x_out, extrapolate):
+    """Columns ``cols`` of the matrix of the not-a-knot cubic spline through (x, y) evaluated at
+    ``x_out`` (y ↦ spline values; scipy's CubicSpline applied to unit vectors)."""
+    return CubicSpline(x, np.eye(x.size)[:, cols], extrapolate=extrapolate)(x_out)
 
 
 def _support(m, rel=1e-20):
