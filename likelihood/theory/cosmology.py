@@ -116,6 +116,8 @@ def _checked(name, value, finite=True):
 
 
 def _redshift(z):
+    if isinstance(z, float) and 0.0 <= z < math.inf:      # one number: no array reductions
+        return np.asarray(z)
     z = np.asarray(z, dtype=float)
     if not np.all(z >= 0.0) or not np.all(np.isfinite(z)):
         raise ErgofitError("redshift z must be finite and >= 0")

@@ -98,6 +98,8 @@ def _wavenumbers(k):
 
 
 def _redshift(z, positive=False):
+    if isinstance(z, float) and (0.0 < z if positive else 0.0 <= z) and z < math.inf:
+        return np.asarray(z)                                # one number: no array reductions
     try:
         z = np.asarray(z, dtype=float)
     except (TypeError, ValueError):
