@@ -116,7 +116,7 @@ class ObserverMeshWarning(UserWarning):
 
 _K_UV_SIGMA = 200.0      # upper end of the σ_c quadrature [h/Mpc]
 _GL_R = 10               # Gauss–Legendre nodes per radial panel
-_GL_K = 6                # minimum Gauss–Legendre nodes per k bin
+_GL_K = 5                # minimum Gauss–Legendre nodes per k bin
 
 
 # ---------------------------------------------------------------------------------------------
@@ -329,10 +329,13 @@ def _bin_nodes(edges, r_osc):
     """k nodes and the (n_bins, n_nodes) matrix of mode-average weights k²/∫k²dk per bin.
 
     E(k) oscillates with period ~π/r_osc (the window's edge), so each bin gets
-    6 + 8 Δk r_osc/π Gauss–Legendre nodes."""
+    5 + 5 Δk r_osc/π Gauss–Legendre nodes. Measured against twice as many nodes (12 + 16 Δk
+    r_osc/π) for shells 1937–3144, 300–3144 and 100–200 Mpc/h and spheres of 500 and 800 Mpc/h,
+    bins of 0.003–0.03 h/Mpc up to k = 0.2: the binned correction moves by ≤ 3e-15 relative
+    (it did by ≤ 3e-15 with the earlier 6 + 8 Δk r_osc/π as well)."""
     ks, ws, rows = [], [], []
     for i, (lo, hi) in enumerate(zip(edges[:-1], edges[1:])):
-        n = _GL_K + int(math.ceil(8.0 * (hi - lo) * r_osc / math.pi))
+        n = _GL_K + int(math.ceil(5.0 * (hi - lo) * r_osc / math.pi))
         x, w = np.polynomial.legendre.leggauss(n)
         kk = 0.5 * (lo + hi) + 0.5 * (hi - lo) * x
         ww = 0.5 * (hi - lo) * w * kk * kk / ((hi ** 3 - lo ** 3) / 3.0)
