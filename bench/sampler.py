@@ -12,7 +12,7 @@ Prints, in one run (a few minutes on 2 cores):
 
 The cosmology-varying config is the demo with h and ω_c sampled under Gaussian priors from
 Planck 2018 (TT,TE,EE+lowE+lensing, Table 2 of the 2018 parameters paper: h = 0.6736 ± 0.0054,
-ω_c = 0.1200 ± 0.0012), the observer term off (one evaluation ≈ 0.8 ms; ≈ 1.5–2 ms with it, see
+ω_c = 0.1200 ± 0.0012), the observer term off (one evaluation ≈ 0.7 ms; ≈ 1.3–1.5 ms with it, see
 bench/likelihood.py), 12 walkers; its chains are capped at ``COSMO_STEPS`` steps (τ from that
 chain, time to convergence projected as tau_factor × τ steps at the measured step rate, marked
 "proj.").
