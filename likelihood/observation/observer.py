@@ -456,7 +456,7 @@ def _spline_columns(x, cols, x_out, extrapolate):
 def _support(m, rel=1e-20):
     """Slice of the columns of ``m`` with an entry above ``rel`` times its largest entry."""
     used = np.flatnonzero(np.max(np.abs(m), axis=0) > rel * np.max(np.abs(m)))
-    return slice(int(used[0]), int(used[-1]) + 1)
+    return slice(int(used[0]), int(used[-1]) + 1) if used.size else slice(0, 1)
 
 
 class _Plain:
