@@ -12,8 +12,8 @@ Prints, in one run (a few minutes on 2 cores):
 
 The cosmology-varying config is the demo with h and ω_c sampled under Gaussian priors from
 Planck 2018 (TT,TE,EE+lowE+lensing, Table 2 of the 2018 parameters paper: h = 0.6736 ± 0.0054,
-ω_c = 0.1200 ± 0.0012), the observer term off (with it one evaluation costs ~8 ms instead of
-~2.7 ms, which would make this bench take a quarter of an hour), 12 walkers; its chains are capped at ``COSMO_STEPS`` steps (τ from that
+ω_c = 0.1200 ± 0.0012), the observer term off (one evaluation ≈ 0.7 ms; ≈ 1.3–1.5 ms with it, see
+bench/likelihood.py), 12 walkers; its chains are capped at ``COSMO_STEPS`` steps (τ from that
 chain, time to convergence projected as tau_factor × τ steps at the measured step rate, marked
 "proj.").
 
@@ -56,7 +56,7 @@ def raw_config(cosmo: bool) -> dict:
         raw = yaml.safe_load(fh)
     if cosmo:
         raw["parameters"]["h"] = {"gauss": [0.6736, 0.0054], "start": 0.6736, "scale": 0.002}
-        raw["parameters"]["omega_cdm"] = {"gauss": [0.1200, 0.0012], "start": 0.12, "scale": 5e-4}
+        raw["parameters"]["omega_c"] = {"gauss": [0.1200, 0.0012], "start": 0.12, "scale": 5e-4}
         raw["effects"]["observer"] = False        # keeps the bench to minutes (see docstring)
         del raw["parameters"]["nu_obs"]
         raw["sampling"]["walkers"] = 12
@@ -173,8 +173,9 @@ def mpi_worker(kind: str) -> None:
     from likelihood.sampling.pools import close_pool, mpi_pool
     warnings.simplefilter("ignore")
     cosmo = kind == "cosmo"
-    lik = make_lik(cosmo)
-    pool = mpi_pool()            # worker rank serves here and exits
+    pool = mpi_pool()            # worker rank serves here and exits (before building anything, as
+    lik = make_lik(cosmo)        # `ergofit run --mpi` does: a worker building its own copy would
+                                 # compete with the master's measurement)
     n = 40 if cosmo else 3000
     try:
         res = {kind: {"forced": steps_per_second(lik, pool, n, True)[0],

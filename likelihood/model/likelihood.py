@@ -234,6 +234,9 @@ class Likelihood:
         if direct:
             return self.model_full(vals)[0][self.mask]
         tpl = self._templates
+        if self.cosmo_free:   # the templates of this point's cosmology, as log_likelihood uses
+            tpl = self.forward.templates(self.forward.cosmology(
+                {k: float(vals[k][0]) for k in self.cosmo_free}))
         return (self.forward.design(vals, tpl) @ tpl["M"])[0] - self._sn_shift
 
     def log_likelihood_direct(self, params):

@@ -118,25 +118,20 @@ class ForwardModel:
 
     def templates(self, cosmo):
         """Unwhitened template rows (masked) at the given cosmology, in the order of :meth:`design`:
-        dict(pairs, pair_list, n_pairs, M, sigma8, growth)."""
+        dict(pairs, pair_list, n_pairs, M). All pairs go through the operator in one product."""
         k = self.k_theory
         pm = cosmo.power(k, self.z)
         basis = self.basis(cosmo, k)
+        kernels = [z for _, z in basis]
         n = len(basis)
         pairs = [(a, b) for a in range(n) for b in range(a, n)]
-        rows = []
-        for a, b in pairs:
-            pab = tr.pair_multipoles(basis[a][1], basis[b][1], pm, self.ells_theory)
-            if a != b:
-                pab = pab + tr.pair_multipoles(basis[b][1], basis[a][1], pm, self.ells_theory)
-            rows.append(self.operator(pab)[self.mask])
-        stack = [np.array(rows)]
+        pab = tr.symmetric_pair_multipoles(kernels, pairs, pm, self.ells_theory)
+        stack = [self.operator(pab)[:, self.mask]]
         if self.observer is not None:
-            stack.append(self.observer.templates(cosmo, self.z, self.k_theory, [z for _, z in basis],
+            stack.append(self.observer.templates(cosmo, self.z, self.k_theory, kernels,
                                                  pairs)[:, self.mask])
         stack.append(self.white_noise[self.mask][None] / self.nbar)
-        return dict(pairs=np.array(pairs), n_pairs=len(pairs), pair_list=pairs, M=np.vstack(stack),
-                    sigma8=cosmo.sigma8, growth=cosmo.growth_factor(self.z) / cosmo.growth_factor(0.0))
+        return dict(pairs=np.array(pairs), n_pairs=len(pairs), pair_list=pairs, M=np.vstack(stack))
 
     def design(self, values, tpl):
         """(n, n_templates) coefficients multiplying the template rows ``tpl["M"]``."""

@@ -31,7 +31,7 @@ from scipy import fft as _fft
 from ..errors import ErgofitError
 
 __all__ = ["log_step", "fftlog_offset", "ell_sign", "xi_from_pk", "pk_from_xi",
-           "conjugate_grid"]
+           "conjugate_grid", "FFTLogPlan"]
 
 _TWO_PI_32 = (2.0 * np.pi) ** 1.5
 
@@ -137,3 +137,33 @@ def pk_from_xi(s, xi, ell, offset=None, bias=0.0):
     """
     k, a = _signed_fht(s, xi, ell, offset, bias, ("pk_from_xi", "s", "xi"))
     return k, a * _TWO_PI_32
+
+
+class FFTLogPlan:
+    """:func:`xi_from_pk` on a fixed k grid with its FFTLog coefficients computed once.
+
+    FFTLog is A = flip(irfft(rfft(a) u)) with u_m = (k_c s_c)^{-iy_m} U_μ(iy_m),
+    U_μ(x) = 2^x Γ((μ+1+x)/2)/Γ((μ+1−x)/2), y_m = 2πm/(n Δ) (Hamilton 2000, eqs. 163–166,
+    unbiased). Since rfft of the unit impulse is 1, u = rfft(flip(fht(e₀))): the coefficients of
+    scipy.fft.fht itself, taken once, so a call is one rfft/irfft pair (the same numbers as
+    :func:`xi_from_pk` to round-off; tests). ``plan(pk)`` transforms along the last axis and
+    returns ξ_ℓ on ``plan.s``.
+    """
+
+    def __init__(self, k, ell, offset=None):
+        ell = _check_ell(ell)
+        k = np.asarray(k, dtype=float)
+        dln = log_step(k, "k")
+        if offset is None:
+            offset = fftlog_offset(dln, ell)
+        self.k, self.ell, self.offset = k, ell, float(offset)
+        self.s = conjugate_grid(k, offset)
+        impulse = np.zeros(k.size)
+        impulse[0] = 1.0
+        self._u = _fft.rfft(_fft.fht(impulse, dln, ell + 0.5, offset=offset)[::-1])
+        self._pre = k ** 1.5
+        self._post = ell_sign(ell) * self.s ** -1.5 / _TWO_PI_32
+
+    def __call__(self, pk):
+        a = _fft.rfft(np.asarray(pk, dtype=float) * self._pre, axis=-1)
+        return _fft.irfft(a * self._u, self.k.size, axis=-1)[..., ::-1] * self._post

@@ -379,8 +379,8 @@ def run_sampler(lik: Any, settings: SamplerSettings | None, out_dir: str | os.Pa
         initargs=(signal.SIGINT, signal.SIG_IGN)`` so that Ctrl-C reaches only this process,
         which then stops cleanly after the current step. The pool gets one chunk of walkers
         per worker and step (evaluated vectorised there), and only when that is measured to be
-        faster than one process (:func:`.pools.choose_evaluation`); otherwise the run stays in
-        this process and says so.
+        more than 10 % faster than one process with at least 2 workers
+        (:func:`.pools.choose_evaluation`); otherwise the run stays in this process and says so.
     report: callable taking one line (e.g. ``print``): the best fit before a new chain starts,
         whether the pool is used, a change of moves on resume. ``None``: silent.
 

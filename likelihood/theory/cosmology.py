@@ -22,6 +22,7 @@ Model and its regime of validity
 """
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 from functools import cached_property
@@ -115,6 +116,8 @@ def _checked(name, value, finite=True):
 
 
 def _redshift(z):
+    if isinstance(z, float) and 0.0 <= z < math.inf:      # one number: no array reductions
+        return np.asarray(z)
     z = np.asarray(z, dtype=float)
     if not np.all(z >= 0.0) or not np.all(np.isfinite(z)):
         raise ErgofitError("redshift z must be finite and >= 0")
@@ -126,6 +129,31 @@ def _wavenumber(k):
     if not np.all(k > 0.0) or not np.all(np.isfinite(k)):
         raise ErgofitError("wavenumber k must be finite and > 0 (in h/Mpc)")
     return k
+
+
+_MEMO_SIZE = 256      # entries kept per Cosmology before its memo is cleared
+
+
+def _memoised(method):
+    """Remember ``method(self, z)`` per instance for a scalar z (a number or a 0-d array: the
+    background at the survey redshift is asked for many times per likelihood evaluation);
+    arrays are computed afresh.
+    A Cosmology does not change after construction, so the remembered value stays right."""
+    name = method.__name__
+
+    @functools.wraps(method)
+    def wrapper(self, z):
+        scalar = isinstance(z, (float, int, np.floating, np.integer)) or (
+            isinstance(z, np.ndarray) and z.shape == () and z.dtype.kind in "fi")
+        if not scalar or isinstance(z, (bool, np.bool_)):
+            return method(self, z)
+        key = (name, float(z))
+        if key not in self._memo:
+            if len(self._memo) >= _MEMO_SIZE:
+                self._memo.clear()
+            self._memo[key] = method(self, z)
+        return self._memo[key]
+    return wrapper
 
 
 # --------------------------------------------------------------------------------------------
@@ -162,6 +190,7 @@ class Cosmology:
     def __init__(self, h, omega_b, omega_c, n_s, A_s=None, sigma8=None, w=-1.0, m_nu=0.06,
                  T_cmb=2.7255, k_pivot=0.05, transfer="eh98", table_file=None,
                  table_kind=None):
+        self._memo = {}   # values at scalar z and transfer functions on grids, see _memoised
         self._params = dict(h=h, omega_b=omega_b, omega_c=omega_c, n_s=n_s, A_s=A_s,
                             sigma8=sigma8, w=w, m_nu=m_nu, T_cmb=T_cmb, k_pivot=k_pivot,
                             transfer=transfer, table_file=table_file, table_kind=table_kind)
@@ -332,6 +361,7 @@ class Cosmology:
         """H(z) in km/s/Mpc (H0 = 100 h)."""
         return 100.0 * self.h * self.efunc(z)
 
+    @_memoised
     def comoving_distance(self, z):
         """Line-of-sight comoving distance chi(z) = (c/H0) int_0^z dz'/E(z'), in Mpc/h.
 
@@ -345,16 +375,19 @@ class Cosmology:
         integrand = 2.0 / (u**3 * self._efunc(1.0 / u**2 - 1.0))
         return HUBBLE_DISTANCE * (1.0 - u0) * (integrand @ _GL_W)
 
+    @_memoised
     def conformal_hubble(self, z):
         """Conformal Hubble rate calH = a H / c = E(z) / ((1+z) c/H0), in h/Mpc."""
         z = _redshift(z)
         return self._efunc(z) / (HUBBLE_DISTANCE * (1.0 + z))
 
+    @_memoised
     def Omega_m(self, z):
         """Matter density parameter Omega_m(z) = Omega_m0 (1+z)^3 / E(z)^2."""
         z = _redshift(z)
         return self.Omega_m0 * (1.0 + z)**3 / self._efunc(z)**2
 
+    @_memoised
     def conformal_hubble_ratio(self, z):
         """calH'/calH^2 (prime: derivative w.r.t. conformal time) = 1 + dlnH/dlna
         = 1 - (3/2) [Omega_m(z) + (1+w) Omega_de(z)] for flat wCDM (from the Friedmann
@@ -394,6 +427,7 @@ class Cosmology:
     def _d0(self):
         return float(self._growth_md(0.0))
 
+    @_memoised
     def growth_rate(self, z):
         """Linear growth rate f = dlnD/dlna.
 
@@ -422,6 +456,21 @@ class Cosmology:
         return self._transfer(_wavenumber(k))
 
     def _transfer(self, k):
+        """T(k); a 1-D grid of >= 64 points is remembered (the same fine k grid is asked for by
+        P(k), the f_NL bias and the observer term of one evaluation), returned read-only."""
+        if k.ndim != 1 or k.size < 64:
+            return self._transfer_of(k)
+        key = ("transfer", k.size, float(k[0]), float(k[-1]))
+        hit = self._memo.get(key)
+        if hit is None or not np.array_equal(hit[0], k):
+            if len(self._memo) >= _MEMO_SIZE:
+                self._memo.clear()
+            tk = np.asarray(self._transfer_of(k), dtype=float)
+            tk.flags.writeable = False
+            hit = self._memo[key] = (k.copy(), tk)
+        return hit[1]
+
+    def _transfer_of(self, k):
         if self.transfer_kind == "eh98":
             return eh98_transfer(k * self.h, self._eh)
         if self.transfer_kind == "eh98_nowiggle":

@@ -98,6 +98,8 @@ def _wavenumbers(k):
 
 
 def _redshift(z, positive=False):
+    if isinstance(z, float) and (0.0 < z if positive else 0.0 <= z) and z < math.inf:
+        return np.asarray(z)                                # one number: no array reductions
     try:
         z = np.asarray(z, dtype=float)
     except (TypeError, ValueError):
@@ -424,6 +426,44 @@ def pair_multipoles(za, zb, pk, ells=(0, 2, 4)):
             w = legendre_moment(n, ell)
             if w:
                 out[i] += w * coeffs[n]
+    return out * pk
+
+
+def symmetric_pair_multipoles(kernels, pairs, pk, ells=(0, 2, 4)):
+    """Multipoles of the symmetrised products of kernel pairs, all pairs at once: shape
+    (len(pairs), len(ells), len(k)); row (a, b) is ``pair_multipoles(Z_a, Z_a, pk)`` for a = b and
+    ``pair_multipoles(Z_a, Z_b, pk) + pair_multipoles(Z_b, Z_a, pk)`` for a != b.
+
+    Z_a Z_b^* + Z_b Z_a^* = 2 [A_a A_b + mu^2 (A_a F_b + F_a A_b + B_a B_b) + mu^4 F_a F_b]: the odd
+    powers of mu cancel, so odd multipoles are 0; the even ones use :func:`legendre_moment` as
+    :func:`pair_multipoles` does, and equal the pairwise sum to round-off (tests).
+    """
+    ells = _ells(ells)
+    kernels = list(kernels)
+    if not all(isinstance(z, Kernel) for z in kernels):
+        raise ErgofitError("symmetric_pair_multipoles kernels must be Kernel objects")
+    pk = np.asarray(pk, dtype=float)
+    if pk.ndim != 1 or not np.all(np.isfinite(pk)):
+        raise ErgofitError(f"symmetric_pair_multipoles pk must be a finite 1-D array, got shape {pk.shape}")
+    try:
+        A = np.array([np.broadcast_to(z.A, pk.shape) for z in kernels])
+        B = np.array([np.broadcast_to(z.B, pk.shape) for z in kernels])
+    except ValueError:
+        raise ErgofitError(f"symmetric_pair_multipoles: kernel arrays do not match pk (shape "
+                           f"{pk.shape})") from None
+    F = np.array([z.F for z in kernels])[:, None]
+    a, b = np.array(pairs, dtype=int).reshape(-1, 2).T
+    fac = np.where(a == b, 1.0, 2.0)[:, None]
+    coeffs = {0: fac * (A[a] * A[b]), 2: fac * (A[a] * F[b] + F[a] * A[b] + B[a] * B[b]),
+              4: np.broadcast_to(fac * (F[a] * F[b]), (a.size, pk.size))}
+    out = np.zeros((a.size, len(ells), pk.size))
+    for i, ell in enumerate(ells):
+        if ell % 2:
+            continue
+        for n, c in coeffs.items():
+            w = legendre_moment(n, ell)
+            if w:
+                out[:, i] += w * c
     return out * pk
 
 

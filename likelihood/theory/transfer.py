@@ -69,11 +69,15 @@ def eh98_parameters(omega_m, omega_b, T_cmb=2.7255):
                 alpha_b=alpha_b, beta_b=beta_b, beta_node=beta_node)
 
 
-def _eh98_t0(q, alpha, beta):
+def _eh98_t0(q, alpha, beta, L=None, tail=None):
     """EH98 eqs. 19-20: T0(k; alpha, beta) = L / (L + C q^2), L = ln(e + 1.8 beta q),
-    C = 14.2/alpha + 386 / (1 + 69.9 q^1.08)."""
-    L = np.log(math.e + 1.8 * beta * q)
-    C = 14.2 / alpha + 386.0 / (1.0 + 69.9 * q**1.08)
+    C = 14.2/alpha + 386 / (1 + 69.9 q^1.08); L and the 386/(...) term may be passed in when
+    already computed (the same numbers)."""
+    if L is None:
+        L = np.log(math.e + 1.8 * beta * q)
+    if tail is None:
+        tail = 386.0 / (1.0 + 69.9 * q**1.08)
+    C = 14.2 / alpha + tail
     return L / (L + C * q * q)
 
 
@@ -92,12 +96,14 @@ def eh98_transfer(k_mpc, par):
     ks = k * s
     q = k / (13.41 * par["k_eq"])
     f = 1.0 / (1.0 + (ks / 5.4)**4)
-    t_c = (f * _eh98_t0(q, 1.0, par["beta_c"])
-           + (1.0 - f) * _eh98_t0(q, par["alpha_c"], par["beta_c"]))
+    tail = 386.0 / (1.0 + 69.9 * q**1.08)          # the three T0 share C's k-dependent part
+    log_c = np.log(math.e + 1.8 * par["beta_c"] * q)  # and T_c's two share L
+    t_c = (f * _eh98_t0(q, 1.0, par["beta_c"], log_c, tail)
+           + (1.0 - f) * _eh98_t0(q, par["alpha_c"], par["beta_c"], log_c, tail))
     s_tilde = s / np.cbrt(1.0 + (par["beta_node"] / ks)**3)
     x = k * s_tilde
     j0 = np.sinc(x / math.pi)
-    t_b = (_eh98_t0(q, 1.0, 1.0) / (1.0 + (ks / 5.2)**2)
+    t_b = (_eh98_t0(q, 1.0, 1.0, None, tail) / (1.0 + (ks / 5.2)**2)
            + par["alpha_b"] / (1.0 + (par["beta_b"] / ks)**3)
            * np.exp(-(k / par["k_silk"])**1.4)) * j0
     return par["f_b"] * t_b + par["f_c"] * t_c

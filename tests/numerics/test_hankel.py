@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from likelihood.errors import ErgofitError
-from likelihood.numerics.hankel import ell_sign, pk_from_xi, xi_from_pk
+from likelihood.numerics.hankel import FFTLogPlan, ell_sign, pk_from_xi, xi_from_pk
 
 
 def _gauss_transform(x_out, ell, a):
@@ -33,6 +33,23 @@ def test_pk_of_gaussian(ell):
     ref = ell_sign(ell) * 4 * np.pi * _gauss_transform(k, ell, 0.01)
     m = (k > 1e-2) & (k < 1)
     assert np.max(np.abs(pk - ref)[m]) < 1e-5 * np.max(np.abs(ref))
+
+
+@pytest.mark.parametrize("ell", [0, 1, 2, 3])
+def test_plan_against_gaussian_and_xi_from_pk(ell):
+    """FFTLogPlan (coefficients once, rows at once) gives G&R 6.631.4 like xi_from_pk, and the
+    same numbers as xi_from_pk (scipy.fft.fht) to round-off, on a grid size with a large prime."""
+    k = np.geomspace(1e-5, 1e2, 1316)                      # 1316 = 4 · 7 · 47
+    rows = np.array([k ** ell * np.exp(-k ** 2), 3.0 * k ** ell * np.exp(-2.0 * k ** 2)])
+    plan = FFTLogPlan(k, ell)
+    xi = plan(rows)
+    for row, a, scale in ((0, 1.0, 1.0), (1, 2.0, 3.0)):
+        s, ref_fht = xi_from_pk(k, rows[row], ell)
+        np.testing.assert_array_equal(s, plan.s)
+        assert np.max(np.abs(xi[row] - ref_fht)) < 1e-12 * np.max(np.abs(ref_fht))
+        ref = scale * ell_sign(ell) * _gauss_transform(s, ell, a) / (2 * np.pi ** 2)
+        m = (s > 0.05) & (s < 20)
+        assert np.max(np.abs(xi[row] - ref)[m]) < 1e-5 * np.max(np.abs(ref))
 
 
 def test_signs_follow_the_i_power_convention():

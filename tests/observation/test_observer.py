@@ -268,7 +268,7 @@ def random_basis(k, rng):
     return [tr.Kernel(A=a, B=b, F=f) for a, b, f in zip(A, B, F)]
 
 
-@pytest.mark.parametrize("geometry", ["plain", "sphere", "shell", "cap"])
+@pytest.mark.parametrize("geometry", ["plain", "sphere", "shell", "shell-no-ic", "cap"])
 def test_templates_reproduce_correction(cosmo, kgrid, geometry):
     # Bilinearity (eq. (3) is quadratic in m, m linear in the kernel): sum_rows x_a x_b row equals
     # correction(sum_a x_a kernel_a) to 1e-10 for random coefficient vectors.
@@ -283,6 +283,8 @@ def test_templates_reproduce_correction(cosmo, kgrid, geometry):
         ob = ObserverTerm(window=SphereWindow(800.0), **kw)
     elif geometry == "shell":
         ob = ObserverTerm(window=ShellWindow(300.0, 900.0), **kw)
+    elif geometry == "shell-no-ic":
+        ob = ObserverTerm(window=ShellWindow(300.0, 900.0), ic="none", **kw)
     else:
         ob = ObserverTerm(window=CapShellWindow(300.0, 600.0, 0.3), **kw)
         assert ob.method == "mesh"

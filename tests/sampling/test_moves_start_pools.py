@@ -243,6 +243,24 @@ def test_chunked_evaluation_splits_walkers_over_workers():
     assert fn == lik.log_prob and msg == ""
 
 
+def test_pool_of_one_worker_is_not_used():
+    """MPI with 2 ranks: one worker while the master waits cannot beat one process, so the run
+    stays in one process without timing the pool (no task is sent)."""
+    class OneWorker:
+        size = 1
+        sent = 0
+
+        def map(self, fn, chunks):
+            OneWorker.sent += 1
+            return [fn(c) for c in chunks]
+
+    lik = CostlyGaussian(per_walker=2e-3)
+    theta = np.zeros((4, 2))
+    fn, msg = choose_evaluation(lik.log_prob, OneWorker(), theta)
+    assert fn == lik.log_prob and OneWorker.sent == 0
+    assert msg.startswith("pool of 1 worker not used") and "one process" in msg
+
+
 # ---------------------------------------------------------------------------------------------
 # The posterior does not depend on the moves
 # ---------------------------------------------------------------------------------------------
@@ -289,3 +307,47 @@ def test_posterior_does_not_depend_on_the_moves_long(tmp_path):
     for n in ("fnl", "b1"):
         assert abs(a[n][0] - b[n][0]) < 0.1 * a[n][1], n
         assert abs(a[n][1] - b[n][1]) < 0.1 * a[n][1], n
+
+
+_IDLE_WORKER_SCRIPT = r"""
+import os, sys, time
+from mpi4py import MPI
+pids = MPI.COMM_WORLD.allgather(os.getpid())
+from likelihood.sampling.pools import close_pool, mpi_pool
+
+def cpu(pid):
+    fields = open(f"/proc/{pid}/stat").read().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+pool = mpi_pool()                              # the worker rank serves in here
+c0, t0 = cpu(pids[1]), time.perf_counter()
+while time.perf_counter() - t0 < 1.0:          # the master works; the pool is open but idle
+    sum(range(10000))
+idle_cpu = cpu(pids[1]) - c0
+squares = pool.map(abs, [-1, -2, -3])
+close_pool(pool)
+print("RESULT", idle_cpu, squares, flush=True)
+"""
+
+
+@pytest.mark.mpi
+def test_idle_mpi_worker_sleeps(tmp_path):
+    """An open but idle MPI pool's worker does not poll a core (mpich's blocking receive would
+    take ~1 s of CPU per second, the master's core on a 2-core machine), and still serves tasks."""
+    pytest.importorskip("mpi4py")
+    pytest.importorskip("schwimmbad")
+    import shutil
+    import subprocess
+    import sys
+    exe = shutil.which("mpiexec") or os.path.join(os.path.dirname(sys.executable), "mpiexec")
+    if not os.path.exists(exe):
+        pytest.skip("mpiexec not found (install the mpi extra)")
+    script = tmp_path / "idle.py"
+    script.write_text(_IDLE_WORKER_SCRIPT)
+    root = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+    r = subprocess.run([exe, "-n", "2", sys.executable, str(script)], capture_output=True, text=True,
+                       timeout=120, env=dict(os.environ, PYTHONPATH=root))
+    assert r.returncode == 0, r.stderr[-2000:]
+    line = [ln for ln in r.stdout.splitlines() if ln.startswith("RESULT")][0].split(" ", 2)
+    assert float(line[1]) < 0.2
+    assert line[2] == "[1, 2, 3]"

@@ -405,3 +405,24 @@ def test_replace_and_params():
     p = c.params
     p["h"] = 1.0
     assert c.params["h"] == 0.7
+
+
+def test_remembered_values_equal_fresh_ones():
+    """The per-instance memo (background at scalar z, T(k) on grids) returns what a fresh
+    Cosmology computes, keeps grids with the same ends apart, and hands out read-only arrays."""
+    c = Cosmology.from_preset("planck2018")
+    k = np.geomspace(1e-4, 10.0, 300)
+    k2 = np.geomspace(1e-4, 10.0, 300) ** 1.0001 * 1e-4 ** -0.0001   # same ends, other points
+    for z in (1.2, np.float64(1.2), np.array(1.2)):
+        fresh = Cosmology.from_preset("planck2018")
+        for name in ("comoving_distance", "conformal_hubble", "Omega_m", "conformal_hubble_ratio",
+                     "growth_rate"):
+            assert getattr(c, name)(z) == getattr(fresh, name)(z)
+    np.testing.assert_array_equal(c.comoving_distance(np.array([0.5, 1.2])),
+                                  [c.comoving_distance(0.5), c.comoving_distance(1.2)])
+    t1, t1_again, t2 = c.transfer(k), c.transfer(k), c.transfer(k2)
+    assert t1_again is t1 and not t1.flags.writeable
+    np.testing.assert_array_equal(t1, Cosmology.from_preset("planck2018").transfer(k))
+    np.testing.assert_array_equal(t2, Cosmology.from_preset("planck2018").transfer(k2))
+    assert np.any(t2 != t1)
+    assert c.replace(h=0.7).transfer(k)[-1] != t1[-1]

@@ -13,7 +13,8 @@ from likelihood.theory.cosmology import Cosmology
 from likelihood.errors import ErgofitError
 from likelihood.theory.tracer import (DELTA_C, EFFECTS, PROJECTION_TERMS, Kernel, PlaneParallelWarning,
                                Tracer, cross_multipoles, effective_fnl, fnl_alpha, gamma1,
-                               gamma2, kernel, legendre_moment, multipoles, pair_multipoles)
+                               gamma2, kernel, legendre_moment, multipoles, pair_multipoles,
+                               symmetric_pair_multipoles)
 
 pytestmark = pytest.mark.filterwarnings("ignore::likelihood.theory.tracer.PlaneParallelWarning")
 
@@ -183,6 +184,30 @@ def test_pair_multipoles_against_quadrature(seed):
             np.testing.assert_allclose(got[i], ref[i].imag, rtol=1e-11, atol=1e-9 * abs(ref).max())
     assert np.abs(got[1]).max() > 0 and np.abs(got[3]).max() > 0
     np.testing.assert_array_equal(got[5:], 0.0)
+
+
+def test_symmetric_pair_multipoles_against_quadrature():
+    """All pairs at once: the μ quadrature of Z_a Z_b* + Z_b Z_a* (Z_a Z_a* on the diagonal) and
+    the pairwise sums of pair_multipoles; odd multipoles cancel."""
+    rng = np.random.default_rng(5)
+    nk = 9
+    kernels = [Kernel(A=rng.normal(1, 1, nk), B=rng.normal(0, 1, nk), F=rng.uniform(0, 1)),
+               Kernel(A=rng.normal(2, 1, nk), B=np.zeros(nk), F=0.0),
+               Kernel(A=rng.normal(0, 1, nk), B=rng.normal(0, 1, nk), F=rng.uniform(0, 1))]
+    pk = rng.uniform(1e3, 1e4, nk)
+    ells = (0, 1, 2, 3, 4)
+    pairs = [(a, b) for a in range(3) for b in range(a, 3)]
+    got = symmetric_pair_multipoles(kernels, pairs, pk, ells)
+    assert got.shape == (len(pairs), len(ells), nk)
+    for row, (a, b) in zip(got, pairs):
+        ref = _brute_force(kernels[a], kernels[b], pk, ells)
+        pw = pair_multipoles(kernels[a], kernels[b], pk, ells)
+        if a != b:
+            ref = ref + _brute_force(kernels[b], kernels[a], pk, ells)
+            pw = pw + pair_multipoles(kernels[b], kernels[a], pk, ells)
+        np.testing.assert_allclose(row, ref.real, rtol=1e-11, atol=1e-9 * abs(ref).max())
+        np.testing.assert_allclose(row, pw, rtol=1e-14, atol=1e-14 * abs(pw).max())
+        np.testing.assert_array_equal(row[[1, 3]], 0.0)
 
 
 # ----------------------------------------------------------------------------------------------
