@@ -270,9 +270,7 @@ def cmd_forecast(args):
 
 
 def cmd_simulate(args):
-    from ..config import load_config
     from ..simulate.survey import simulate_survey
-    _one_tracer(load_config(args.config), "simulate")
     simulate_survey(args.config, args.n, out=args.out, mesh_n=args.mesh, check=args.validate,
                     poisson=not args.no_poisson)
     return 0

@@ -243,8 +243,12 @@ MULTI_CASES = [
      "tracers[0].name: expected a letter then letters/digits"),
     ("nbar-negative", lambda c: c["tracers"][0].update(nbar=-1), "check",
      "tracers[0].nbar = -1: expected a positive number"),
-    ("cov-mocks", lambda c: c.update(covariance={"kind": "mocks", "mocks": "m_*.txt"}), "check",
-     "covariance.kind: mocks is not available with several tracers yet"),
+    ("cov-mocks-none", lambda c: c.update(covariance={"kind": "mocks", "mocks": "m_*.txt"}), "check",
+     "m_*.txt: found 0 mock data-vector files; need at least 2"),
+    ("simulate-samples", _as_samples("south", {"bright": "b2", "faint": "f2"}), "simulate",
+     "ergofit simulate makes the mocks of one sample"),
+    ("simulate-shared-noise", _spectrum(1, "shared_nbar", 2e-5), "simulate",
+     "shared_nbar (overlapping populations) cannot be simulated"),
     ("samples-same-name", _as_samples("north", {"bright": "brightS", "faint": "faintS"}), "check",
      "samples: two samples are named 'north'"),
     ("samples-same-tracer", _as_samples("south", {"bright": "brightS"}), "check",
@@ -259,7 +263,7 @@ MULTI_CASES = [
 ] + [(f"{cmd}-not-yet{'-samples' if smp else ''}",
        _as_samples("south", {"bright": "b2", "faint": "f2"}) if smp else (lambda c: None), cmd,
        f"ergofit {cmd} does not handle several tracers or samples yet")
-      for cmd in ("theory", "forecast", "simulate") for smp in (False, True)]
+      for cmd in ("theory", "forecast") for smp in (False, True)]
 
 
 @pytest.mark.parametrize("case", MULTI_CASES, ids=[c[0] for c in MULTI_CASES])
