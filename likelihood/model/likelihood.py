@@ -33,6 +33,17 @@ def mock_corrections(cfg, mock_cov, n_data, n_params):
             mock_cov.percival_m1(n_data, n_params))
 
 
+def covariance_line(lik):
+    """The ``describe`` line of the covariance of a likelihood (with its mock corrections)."""
+    return (f"covariance: {lik.config['covariance']['kind']}, condition number {lik.condition_number:.3g}"
+            + (f"; {lik.n_mocks} mocks, "
+               + ("Sellentin-Heavens t-likelihood" if lik.t_likelihood else
+                  f"Hartlap factor {lik.precision_scale:.3f}")
+               + ("" if lik.t_likelihood else
+                  f"; Percival m1 = {lik.percival_m1:.3f} (inflate parameter errors by "
+                  f"{np.sqrt(lik.percival_m1):.3f})") if lik.mock_cov is not None else ""))
+
+
 class Likelihood:
     """Gaussian likelihood of the measured multipoles; built by :func:`likelihood.build`.
 
@@ -345,13 +356,7 @@ class Likelihood:
                  f"data: {self.data.size} points, multipoles {list(self.ells)}, k in "
                  f"[{self.data_full.k_eff[self.mask.reshape(len(self.data_full.ells), -1).any(0)].min():.4g}, "
                  f"{self.data_full.k_eff[self.mask.reshape(len(self.data_full.ells), -1).any(0)].max():.4g}] h/Mpc",
-                 f"covariance: {cfg['covariance']['kind']}, condition number {self.condition_number:.3g}"
-                 + (f"; {self.n_mocks} mocks, "
-                    + ("Sellentin-Heavens t-likelihood" if self.t_likelihood else
-                       f"Hartlap factor {self.precision_scale:.3f}")
-                    + ("" if self.t_likelihood else
-                       f"; Percival m1 = {self.percival_m1:.3f} (inflate parameter errors by "
-                       f"{np.sqrt(self.percival_m1):.3f})") if self.mock_cov is not None else ""),
+                 covariance_line(self),
                  "sampled parameters:"]
         for p in self.params.free:
             lines.append(f"  {p.name:<10s} {p.prior.describe():<30s} start {p.start:g}")

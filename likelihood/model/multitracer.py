@@ -38,7 +38,7 @@ from ..spectra import (SpectraVector, load_spectra, load_spectra_covariance, pai
                        spectra_covariance_from_mocks)
 from ..theory import tracer as tr
 from .fiducial import COSMO_PARAMS, fiducial_values, held_values
-from .likelihood import Likelihood, mock_corrections
+from .likelihood import Likelihood, covariance_line, mock_corrections
 from .templates import basis_kernels
 
 ELLS_AUTO = (0, 2, 4)
@@ -448,7 +448,7 @@ class MultiLikelihood(Likelihood):
             lines.append(f"  {s.label:<16s} ells {list(s.part.ells)}, k in [{k.min():.4g}, {k.max():.4g}] "
                          f"h/Mpc, {int(s.mask.sum())} points"
                          + (f", noise {s.noise_name}" if s.noise_name else ""))
-        lines.append(f"covariance: {cfg['covariance']['kind']}, condition number {self.condition_number:.3g}")
+        lines.append(covariance_line(self))
         if self._lin.size:
             lines.append("marginalised analytically: " + ", ".join(
                 f"{n} ({'Gaussian N(%g, %g)' % (m, iv ** -0.5) if iv else 'flat, unbounded'})"
@@ -614,6 +614,7 @@ def build_multi(cfg):
             cov = mock_cov.covariance
         if take is not None:
             cov = cov[np.ix_(take, take)]            # the blocks of the spectra fitted
+    else:                                            # gaussian (validated)
         cov = analytic_covariance(sv, cosmo, forward, fiducial)
     if cfg["data"].get("mock") is not None:
         mean, meta = fac.mock_vector(cfg, forward, fiducial, cosmo_free, cov)
