@@ -132,7 +132,7 @@ def simulate_one_tracer(config, n, out=None, mesh_n=None, check=False, echo=prin
     :func:`validation_model`; the test uses the mocks' own scatter, Hotelling's T²);
     ``echo`` (a print-like callable) receives the progress and result lines.
     Returns the validation result (a dict) or None."""
-    cfg = load_config(config)
+    cfg = config if isinstance(config, Config) else load_config(config)
     lik = build(cfg)
     mesh = choose_mesh(lik, mesh_n)
     out = out or os.path.join(cfg.output_folder, "mocks")
