@@ -255,7 +255,10 @@ def cmd_forecast(args):
     """``ergofit forecast CONFIG [--out DIR] [--check-mcmc] [--mpi] [--processes N]``."""
     from ..config import load_config
     from ..forecast import forecast_lines, forecast_settings, run_forecast
-    cfg = _one_tracer(load_config(args.config), "forecast")
+    cfg = load_config(args.config)
+    if "samples" in cfg:
+        raise ErgofitError(f"{cfg.path}: ergofit forecast works on one sample; write a config with "
+                           "that sample's survey, tracers and spectra")
     processes = int(getattr(args, "processes", 0) or 0)
     if processes > 0 and not forecast_settings(cfg)["scan"]:
         processes = 0                          # nothing to spread over a pool

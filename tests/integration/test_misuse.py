@@ -263,7 +263,9 @@ MULTI_CASES = [
 ] + [(f"{cmd}-not-yet{'-samples' if smp else ''}",
        _as_samples("south", {"bright": "b2", "faint": "f2"}) if smp else (lambda c: None), cmd,
        f"ergofit {cmd} does not handle several tracers or samples yet")
-      for cmd in ("theory", "forecast") for smp in (False, True)]
+      for cmd in ("theory",) for smp in (False, True)] + [
+    ("forecast-samples", _as_samples("south", {"bright": "b2", "faint": "f2"}), "forecast",
+     "ergofit forecast works on one sample")]
 
 
 @pytest.mark.parametrize("case", MULTI_CASES, ids=[c[0] for c in MULTI_CASES])
