@@ -265,7 +265,18 @@ MULTI_CASES = [
        f"ergofit {cmd} does not handle several tracers or samples yet")
       for cmd in ("theory",) for smp in (False, True)] + [
     ("forecast-samples", _as_samples("south", {"bright": "b2", "faint": "f2"}), "forecast",
-     "ergofit forecast works on one sample")]
+     "ergofit forecast works on one sample"),
+    ("forecast-scan-quantity", lambda c: c.update(forecast={"scan": {"quantity": "nbar",
+                                                                     "values": [1e-4, 2e-4]}}),
+     "forecast", "forecast.scan quantity nbar is for one tracer; with several tracers scan "
+     "quantity: bias_split"),
+    ("forecast-scan-three", lambda c: (c["tracers"].append({"name": "dim", "nbar": 1e-4}),
+                                       c.update(forecast={"scan": {"quantity": "bias_split",
+                                                                   "values": [0, 1]}})),
+     "forecast", "bias_split compares one tracer with a split into two; the config has 3 tracers"),
+    ("forecast-split-nbar", lambda c: c.update(forecast={"scan": {"quantity": "nbar", "values": [1e-4],
+                                                                  "nbar": [1e-4]}}),
+     "forecast", "forecast.scan.nbar: only with quantity: bias_split")]
 
 
 @pytest.mark.parametrize("case", MULTI_CASES, ids=[c[0] for c in MULTI_CASES])
