@@ -99,7 +99,8 @@ def _check_refused(base, case, folder, capsys, monkeypatch):
     monkeypatch.chdir(folder)
     before = sorted(os.listdir(folder))
     path = _write(folder, cfg)
-    code = main([command, path])
+    cmd, *options = command.split()
+    code = main([cmd, path, *options])
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 2
     assert len([l for l in err if "error:" in l]) == 1 and words in err[-1], err
@@ -274,6 +275,8 @@ MULTI_CASES = [
                                        c.update(forecast={"scan": {"quantity": "bias_split",
                                                                    "values": [0, 1]}})),
      "forecast", "bias_split compares one tracer with a split into two; the config has 3 tracers"),
+    ("forecast-check-mcmc", lambda c: None, "forecast --check-mcmc",
+     "--check-mcmc is for one tracer"),
     ("forecast-split-nbar", lambda c: c.update(forecast={"scan": {"quantity": "nbar", "values": [1e-4],
                                                                   "nbar": [1e-4]}}),
      "forecast", "forecast.scan.nbar: only with quantity: bias_split")]
