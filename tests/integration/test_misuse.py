@@ -261,10 +261,9 @@ MULTI_CASES = [
      "parameters.b1_faint.analytic: only parameters entering the model linearly"),
     ("analytic-not-bool", lambda c: c["parameters"]["shot_noise_faint"].update(analytic="yes"),
      "check", "parameters.shot_noise_faint.analytic: expected true or false"),
-] + [(f"{cmd}-not-yet{'-samples' if smp else ''}",
-       _as_samples("south", {"bright": "b2", "faint": "f2"}) if smp else (lambda c: None), cmd,
-       f"ergofit {cmd} does not handle several tracers or samples yet")
-      for cmd in ("theory",) for smp in (False, True)] + [
+] + [
+    ("theory-samples", _as_samples("south", {"bright": "b2", "faint": "f2"}), "theory",
+     "ergofit theory works on one sample"),
     ("forecast-samples", _as_samples("south", {"bright": "b2", "faint": "f2"}), "forecast",
      "ergofit forecast works on one sample"),
     ("forecast-scan-quantity", lambda c: c.update(forecast={"scan": {"quantity": "nbar",
