@@ -17,6 +17,13 @@ that the Nyquist frequency is at least 1.5 times the data's k_max. The mocks are
 FFT estimator (:mod:`likelihood.observation.estimator`) on the data's k bins and multipoles; ``--validate``
 compares their mean with the model they were made from (:func:`validation_model`), using the
 mocks' own scatter, and writes ``validation.png`` and ``validation.json``.
+
+Several tracers (a config with ``tracers``, one sample): all populations from one Gaussian field,
+each Poisson sampled independently (:func:`simulate_several_tracers`), measured into the spectra
+of the config's data vector on one set of k bins and written as labelled spectra files; the
+validation is made per spectrum and multipole. The mocks' estimator takes the line of sight at
+each galaxy, so their odd cross multipoles carry the wide-angle dipole ∝ (b_X − b_Y)/(kχ) that the
+plane-parallel model leaves out: those tests fail where kχ is small (README).
 """
 from __future__ import annotations
 
