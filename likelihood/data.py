@@ -280,6 +280,17 @@ class MockCovariance:
                             f"the Hartlap factor needs more than n_data + 2 = {n_data + 2}")
         return (self.n_mocks - n_data - 2.0) / (self.n_mocks - 1.0)
 
+    def require(self, n_used, where):
+        """Refuse, in one line naming ``where``, too few mocks for ``n_used`` data points: the
+        inverse sample covariance is unbiased after the Hartlap factor only for n_s > n_d + 2
+        (Hartlap, Simon & Schneider 2007, eq. 17)."""
+        if self.n_mocks <= n_used + 2:
+            raise DataError(f"{where}: {self.n_mocks} mocks for {n_used} data points; a mock "
+                            f"covariance needs more than n_data + 2 = {n_used + 2} mocks for an "
+                            f"unbiased inverse (Hartlap, Simon & Schneider 2007): make at least "
+                            f"{n_used + 3} (ergofit simulate CONFIG --n {n_used + 3})")
+        return self
+
     def percival_m1(self, n_data, n_params):
         ns, nd, npar = float(self.n_mocks), float(n_data), float(n_params)
         a = 2.0 / ((ns - nd - 1.0) * (ns - nd - 4.0))
@@ -294,9 +305,7 @@ def covariance_from_mocks(pattern, ells=None):
     (``# ergofit covariance``, e.g. the ``covariance.txt`` that ``ergofit simulate`` writes beside
     its ``mock_*.txt``) is skipped; every other matched file must be a data vector.
     """
-    files = [f for f in sorted(_glob.glob(os.fspath(pattern))) if not _is_covariance_file(f)]
-    if len(files) < 2:
-        raise DataError(f"{pattern}: found {len(files)} mock data-vector files; need at least 2")
+    files = mock_data_files(pattern)
     vecs = [DataVector.load(f) for f in files]
     first = vecs[0]
     for v in vecs[1:]:
@@ -305,6 +314,15 @@ def covariance_from_mocks(pattern, ells=None):
     x = np.array([v.flat for v in vecs])
     cov = np.cov(x, rowvar=False, ddof=1)
     return MockCovariance(cov, len(files)), first
+
+
+def mock_data_files(pattern):
+    """The files matching ``pattern`` (sorted) that are not covariance files (the rule of
+    :func:`covariance_from_mocks`); at least 2."""
+    files = [f for f in sorted(_glob.glob(os.fspath(pattern))) if not _is_covariance_file(f)]
+    if len(files) < 2:
+        raise DataError(f"{pattern}: found {len(files)} mock data-vector files; need at least 2")
+    return files
 
 
 def _is_covariance_file(path):

@@ -36,7 +36,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .data import COV_HEADER, DATA_HEADER, DataVector, check_covariance
+from .data import COV_HEADER, DATA_HEADER, DataVector, MockCovariance, check_covariance, mock_data_files
 from .errors import DataError
 from .io import input_file, open_atomic, read_comment_header
 
@@ -320,3 +320,20 @@ def load_spectra_covariance(path, sv):
                         f"differ from the data's {[(pair_label(p), list(e)) for p, e in mine]}")
     check_covariance(cov, n=sv.flat.size, source=path)
     return cov
+
+
+def spectra_covariance_from_mocks(pattern):
+    """(MockCovariance, first vector): the unbiased (1/(n−1)) sample covariance of the
+    multi-tracer data vectors matching ``pattern`` (covariance files skipped, as in
+    :func:`likelihood.data.covariance_from_mocks`); all must hold the same spectra, multipoles
+    and k bins."""
+    files = mock_data_files(pattern)
+    vecs = [SpectraVector.load(f) for f in files]
+    first = vecs[0]
+    layout = [(p, d.ells) for p, d in zip(first.pairs, first.parts)]
+    for v in vecs[1:]:
+        if ([(p, d.ells) for p, d in zip(v.pairs, v.parts)] != layout
+                or any(not np.allclose(a.edges, b.edges) for a, b in zip(v.parts, first.parts))):
+            raise DataError(f"{v.source}: spectra, multipoles or k bins differ from {first.source}")
+    x = np.array([v.flat for v in vecs])
+    return MockCovariance(np.atleast_2d(np.cov(x, rowvar=False, ddof=1)), len(files)), first

@@ -27,20 +27,21 @@ def cmd_check(args):
     return 0
 
 
-def _one_tracer(cfg, command):
-    """Refuse a config with several tracers in a command that does not handle them yet."""
-    if "tracers" in cfg or "samples" in cfg:
-        raise ErgofitError(f"{cfg.path}: ergofit {command} does not handle several tracers or "
-                           "samples yet (tracers/samples section); use check, run or summarize")
+def _one_sample(cfg, command):
+    """Refuse a config with several samples in a command that works on one."""
+    if "samples" in cfg:
+        raise ErgofitError(f"{cfg.path}: ergofit {command} works on one sample; write a config with "
+                           "that sample's survey, tracers and spectra")
     return cfg
 
 
 def cmd_theory(args):
-    from ..report.theory import theory_report
+    from ..report.theory import spectra_theory_report, theory_report
     from ..config.schema import load_config
-    cfg = _one_tracer(load_config(args.config), "theory")
+    cfg = _one_sample(load_config(args.config), "theory")
     out = os.path.join(_out_dir(args.out or cfg.output_folder), "theory.txt")
-    for line in theory_report(cfg, out, fnl=args.fnl):
+    report = spectra_theory_report if "tracers" in cfg else theory_report
+    for line in report(cfg, out, fnl=args.fnl):
         print(line)
     return 0
 
@@ -255,7 +256,7 @@ def cmd_forecast(args):
     """``ergofit forecast CONFIG [--out DIR] [--check-mcmc] [--mpi] [--processes N]``."""
     from ..config import load_config
     from ..forecast import forecast_lines, forecast_settings, run_forecast
-    cfg = _one_tracer(load_config(args.config), "forecast")
+    cfg = _one_sample(load_config(args.config), "forecast")
     processes = int(getattr(args, "processes", 0) or 0)
     if processes > 0 and not forecast_settings(cfg)["scan"]:
         processes = 0                          # nothing to spread over a pool
@@ -270,9 +271,7 @@ def cmd_forecast(args):
 
 
 def cmd_simulate(args):
-    from ..config import load_config
     from ..simulate.survey import simulate_survey
-    _one_tracer(load_config(args.config), "simulate")
     simulate_survey(args.config, args.n, out=args.out, mesh_n=args.mesh, check=args.validate,
                     poisson=not args.no_poisson)
     return 0

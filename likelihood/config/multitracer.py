@@ -157,13 +157,10 @@ def validate_tracers(raw, cfg, src):
 
 
 def check_covariance_kind(cfg, src):
-    """Several tracers take a covariance file or the analytic Gaussian one; the latter needs
-    P_XX and P_YY for a cross spectrum X x Y, so a cross spectrum whose autos are not fitted is
-    refused."""
+    """The analytic Gaussian covariance of several tracers needs P_XX and P_YY for a cross
+    spectrum X x Y, so a cross spectrum whose autos are not fitted is refused (a covariance file
+    or mocks take any spectra)."""
     kind = cfg["covariance"]["kind"]
-    if kind == "mocks":
-        raise ConfigError(f"{src}: covariance.kind: mocks is not available with several tracers yet; "
-                          "use gaussian or file")
     if kind != "gaussian":
         return
     autos = {s["pair"][0] for s in cfg["spectra"] if s["pair"][0] == s["pair"][1]}

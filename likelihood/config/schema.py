@@ -172,7 +172,8 @@ def _mapping(val, where):
 # forecast: {neglect: [doppler, potential, fnl, rsd, integral_constraint, window, observer,
 #                      plane_parallel, radial_integral_constraint, lensing, isw, time_delay],
 #            parameters: [NAME, ...], priors: {NAME: sigma}, threshold: x, step_rtol: x,
-#            scan: {quantity: redshift | volume | fsky | thickness | b1 | nbar | b_e | s | k_min,
+#            scan: {quantity: redshift | volume | fsky | thickness | b1 | nbar | b_e | s | k_min
+#                             | bias_split (several tracers; with nbar: [total n̄, ...]),
 #                   values: [x, ...] | range: [lo, hi, n], spacing: linear | log,
 #                   redshift_geometry: recentre | fixed_volume,
 #                   bias_evolution: constant | inverse_growth}}
@@ -180,7 +181,8 @@ def _mapping(val, where):
 FORECAST_NEGLECT = ("doppler", "potential", "fnl", "rsd", "integral_constraint", "window", "observer",
                     # curved-sky truth models only (config/variants.py)
                     "plane_parallel", "radial_integral_constraint", "lensing", "isw", "time_delay")
-FORECAST_SCAN = ("redshift", "volume", "fsky", "thickness", "b1", "nbar", "b_e", "s", "k_min")
+FORECAST_SCAN = ("redshift", "volume", "fsky", "thickness", "b1", "nbar", "b_e", "s", "k_min",
+                 "bias_split")
 _SCAN_POSITIVE = ("redshift", "volume", "fsky", "thickness", "nbar", "k_min")
 
 
@@ -210,7 +212,7 @@ def _forecast_priors(val, where):
 
 def forecast_scan(val, where):
     """Validate forecast.scan and normalise it to {quantity, values, redshift_geometry, bias_evolution}."""
-    allowed = ("quantity", "values", "range", "spacing", "redshift_geometry", "bias_evolution")
+    allowed = ("quantity", "values", "range", "spacing", "redshift_geometry", "bias_evolution", "nbar")
     _mapping(val, where)
     _check_keys(val, allowed, where)
     if "quantity" not in val:
@@ -252,7 +254,16 @@ def forecast_scan(val, where):
         raise ConfigError(f"{where}: {q} must be > 0 at every grid point, got {min(grid)}")
     if q == "fsky" and max(grid) > 1:
         raise ConfigError(f"{where}: fsky must be <= 1 at every grid point, got {max(grid)}")
-    return {"quantity": q, "values": grid,
+    extra = {}
+    if "nbar" in val:
+        if q != "bias_split":
+            raise ConfigError(f"{where}.nbar: only with quantity: bias_split (the total densities "
+                              "of the split); scan nbar with quantity: nbar")
+        nb = val["nbar"]
+        if not isinstance(nb, list) or not nb:
+            raise ConfigError(f"{where}.nbar: expected a list of total number densities, got {nb!r}")
+        extra["nbar"] = [_num(0.0, lo_open=True)(v, f"{where}.nbar[{i}]") for i, v in enumerate(nb)]
+    return {"quantity": q, "values": grid, **extra,
             "redshift_geometry": _choice("recentre", "fixed_volume")(
                 val.get("redshift_geometry", "recentre"), f"{where}.redshift_geometry"),
             "bias_evolution": _choice("constant", "inverse_growth")(

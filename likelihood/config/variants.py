@@ -16,6 +16,8 @@ def config_to_raw(cfg):
     """A raw config mapping that :func:`likelihood.config.validate` turns back into ``cfg``."""
     if not isinstance(cfg, Config):
         raise ErgofitError(f"expected a validated Config, got {type(cfg).__name__}")
+    if "tracers" in cfg:          # several tracers: the validator rewrote sections; keep the file's
+        return {**copy.deepcopy(cfg.raw), "run": cfg["run"]}
     raw = {"run": cfg["run"]}
     for name in SCHEMA:
         if name in cfg:
@@ -51,7 +53,7 @@ def analysis_config(cfg, neglect):
     if not neglect:
         return cfg
     raw = config_to_raw(cfg)
-    e = raw["effects"]
+    e = raw.setdefault("effects", {})
     for n in neglect:
         if n in CURVED_NEGLECT:
             _neglect_curved(cfg, raw, n)

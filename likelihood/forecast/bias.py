@@ -97,7 +97,7 @@ class BiasForecast:
 
 def _describe_model(lik):
     return {"effects": list(lik.effects), "window": lik.window is not None,
-            "integral_constraint": lik.operator.ic, "observer": bool(lik.observer_on)}
+            "integral_constraint": lik.survey.ic, "observer": bool(lik.observer_on)}
 
 
 def _effective_fnl(lik, terms):
@@ -106,6 +106,8 @@ def _effective_fnl(lik, terms):
     if not terms:
         return 0.0
     fid = lik.fiducial
+    if "b1" not in fid:
+        return None                   # several tracers: one effective f_NL per tracer, not shown
     effects = terms + (["rsd"] if "rsd" in lik.effects else [])
     try:
         t = tr.Tracer(b1=fid["b1"], fnl=fid["fnl"], p=lik.p, nbar=lik.nbar, b_e=fid["b_e"],
@@ -134,7 +136,7 @@ def bias_forecast(config, neglect=None, parameters=None, priors=None, step_rtol=
         acfg = analysis_config(cfg, neglect)
         analysis = truth if acfg is cfg else build(acfg)
     for n in neglect:
-        on = {"integral_constraint": truth.operator.ic != "none",
+        on = {"integral_constraint": truth.survey.ic != "none",
               "window": truth.window is not None, "observer": truth.observer_on,
               # curved-sky approximations (config/variants.py refuses them otherwise)
               "plane_parallel": True, "radial_integral_constraint": True,
@@ -162,9 +164,9 @@ def bias_forecast(config, neglect=None, parameters=None, priors=None, step_rtol=
                          "truth mock uses the second, the analysis the first, and the mismatch "
                          "enters the bias")
     info = {"config": cfg.path, "config_hash": cfg.hash, "run": cfg["run"], "redshift": truth.z,
-            "nbar": truth.nbar, "geometry": dict(cfg["survey"]["geometry"]),
+            "nbar": truth.survey.nbar, "geometry": dict(cfg["survey"]["geometry"]),
             "volume": float(truth.volume), "n_data": int(truth.data.size),
-            "ells": list(truth.ells), "k_range": _k_range(truth),
+            **_data_layout(truth),
             "truth_model": _describe_model(truth), "analysis_model": _describe_model(analysis),
             "fiducial": {n: float(v) for n, v in truth.fiducial.items()}}
     return BiasForecast(fisher=fisher, neglect=neglect, delta=delta, mu_truth=mu_t, mu_analysis=mu_a,
@@ -175,10 +177,20 @@ def bias_forecast(config, neglect=None, parameters=None, priors=None, step_rtol=
                         info=info, warnings=notes, analysis_config=acfg, config=cfg)
 
 
-def _k_range(lik):
-    m2 = lik.mask.reshape(len(lik.data_full.ells), -1).any(0)
-    k = lik.data_full.k_eff[m2]
-    return [float(k.min()), float(k.max())]
+def _data_layout(lik):
+    """{"ells": multipoles (several tracers: {spectrum: multipoles}), "k_range": [k_min, k_max]
+    of the bins fitted}."""
+    if hasattr(lik.data_full, "parts"):
+        obs = lik.observables()
+        k = np.concatenate(obs["k"])
+        ells = {}
+        for s in lik.forward.spectra:
+            ells[s.label] = [int(l) for l, used in zip(s.part.ells, s.mask.reshape(len(s.part.ells), -1).any(1))
+                             if used]
+    else:
+        m2 = lik.mask.reshape(len(lik.data_full.ells), -1).any(0)
+        k, ells = lik.data_full.k_eff[m2], list(lik.ells)
+    return {"ells": ells, "k_range": [float(k.min()), float(k.max())]}
 
 
 def _flat_prior_notes(lik, fisher, notes):

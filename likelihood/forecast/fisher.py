@@ -10,7 +10,6 @@ import numpy as np
 from scipy.linalg import solve_triangular
 
 from ..errors import ConfigError, ErgofitError
-from ..config.parameters import KNOWN
 
 _SINGULAR_RCOND = 1e-10      # smallest/largest eigenvalue of the normalised Fisher matrix
 _MAX_HALVINGS = 8
@@ -298,7 +297,7 @@ def likelihood_fisher(lik, names=None, priors=None, step_rtol=1e-3):
         else:
             gauss[n] = (point[n], float(sigma))
     return fisher_from_derivatives(np.array(D), lik.chol, names,
-                                   labels=[KNOWN[n].label for n in names],
+                                   labels=[dict(zip(lik.parameter_names, lik.labels))[n] for n in names],
                                    fiducial=[point[n] for n in names], priors=gauss,
                                    precision_scale=lik.precision_scale, steps=steps)
 

@@ -15,7 +15,9 @@ from ..config.schema import Config, load_config
 from ..io import ensure_folder, open_atomic, plain_data, write_text
 from .bias import bias_forecast, forecast_settings
 from .mcmc import mcmc_check
+from .multitracer import config_split_scan, split_scan_tables
 from .scans import bias_scan
+from ..errors import ConfigError
 
 def _g(x, digits=4):
     return "—" if x is None or (isinstance(x, float) and not math.isfinite(x)) else f"{x:.{digits}g}"
@@ -214,13 +216,19 @@ def run_forecast(config, out_dir=None, check_mcmc=False, pool=None, scan=True):
     (``mcmc``) and the written paths (``files``).
     """
     cfg = config if isinstance(config, Config) else load_config(config)
+    fs = forecast_settings(cfg)
+    split = _split_scan(cfg, fs["scan"])
+    if check_mcmc and "tracers" in cfg:
+        raise ConfigError(f"{cfg.path}: --check-mcmc is for one tracer; with several tracers run "
+                          "the chain with 'ergofit run' on a config with data.mock")
     out_dir = out_dir or os.path.join(cfg.output_folder, "forecast")
     ensure_folder(out_dir, "choose another with --out")
-    fs = forecast_settings(cfg)
     bias = bias_forecast(cfg)
-    scan_res = None
-    if scan and fs["scan"]:
+    scan_res = split_res = None
+    if scan and fs["scan"] and not split:
         scan_res = bias_scan(cfg, pool=pool)
+    if scan and split:
+        split_res = config_split_scan(cfg, fs["scan"]["values"], fs["scan"].get("nbar"))
     mcmc = None
     if check_mcmc:
         mcmc = mcmc_check(bias, os.path.join(out_dir, "mcmc_check"))
@@ -232,6 +240,11 @@ def run_forecast(config, out_dir=None, check_mcmc=False, pool=None, scan=True):
         write_text(os.path.join(out_dir, "scan.md"), md_text)
         plot_scan(scan_res, os.path.join(out_dir, "scan.png"))
         files += ["scan.csv", "scan.md", "scan.png"]
+    if split_res is not None:
+        csv_text, md_text = split_scan_tables(split_res)
+        write_text(os.path.join(out_dir, "scan.csv"), csv_text)
+        write_text(os.path.join(out_dir, "scan.md"), md_text)
+        files += ["scan.csv", "scan.md"]
     if mcmc is not None:
         files.append("mcmc_check/")
     doc = {"run": cfg["run"], "config": cfg.path, "config_hash": cfg.hash,
@@ -243,13 +256,32 @@ def run_forecast(config, out_dir=None, check_mcmc=False, pool=None, scan=True):
                                                   "threshold": scan_res.threshold,
                                                   "exceeding": scan_res.exceeding(),
                                                   "rows": scan_res.rows},
+           "bias_split_scan": split_res,
            "mcmc_check": mcmc,
            "warnings": list(dict.fromkeys(bias.warnings + (scan_res.notes if scan_res else [])))}
     write_text(os.path.join(out_dir, "fisher.json"), json.dumps(plain_data(doc), indent=1) + "\n")
     write_text(os.path.join(out_dir, "forecast.md"),
                 forecast_markdown(bias, scan_res, mcmc, files))
-    return {"bias": bias, "scan": scan_res, "mcmc": mcmc, "out_dir": out_dir,
+    return {"bias": bias, "scan": scan_res, "split": split_res, "mcmc": mcmc, "out_dir": out_dir,
             "files": [os.path.join(out_dir, f) for f in files]}
+
+
+def _split_scan(cfg, scan):
+    """True for the bias-split scan of a multi-tracer config; other pairings refused in one line."""
+    if not scan:
+        return False
+    several = "tracers" in cfg
+    if scan["quantity"] == "bias_split" and not several:
+        raise ConfigError(f"{cfg.path}: forecast.scan quantity bias_split needs a config with two "
+                          "tracers (tracers section)")
+    if several and scan["quantity"] != "bias_split":
+        raise ConfigError(f"{cfg.path}: forecast.scan quantity {scan['quantity']} is for one tracer; "
+                          "with several tracers scan quantity: bias_split (values: splits, nbar: "
+                          "total densities)")
+    if several and len(cfg["tracers"]) != 2:
+        raise ConfigError(f"{cfg.path}: forecast.scan quantity bias_split compares one tracer with "
+                          f"a split into two; the config has {len(cfg['tracers'])} tracers (give two)")
+    return scan["quantity"] == "bias_split"
 
 
 def forecast_lines(cfg, res):
@@ -264,6 +296,12 @@ def forecast_lines(cfg, res):
         where = ranges_text(res["scan"])
         lines.append(f"scan over {res['scan'].quantity}: |shift(f_NL)| > {res['scan'].threshold:g} sigma "
                      + (f"for {res['scan'].quantity} = {where}" if where else "nowhere on the grid"))
+    sp = res.get("split")
+    if sp is not None:
+        lines.append(f"bias split b = {sp['b_mean']:.3g} ± split/2, gain sigma(f_NL) one tracer / two:")
+        for i, d in enumerate(sp["splits"]):
+            lines.append(f"  split {d:<5g} " + "  ".join(
+                f"nbar {nb:.3g}: {sp['gain'][i, j]:.3f}" for j, nb in enumerate(sp["nbar"])))
     if res["mcmc"] is not None:
         m = res["mcmc"]
         lines.append(f"MCMC check: {'agrees' if m['agree'] else 'DISAGREES'} with the Fisher shift "

@@ -141,12 +141,7 @@ def covariance(cfg, dv, cosmo, forward, fiducial, mask=None):
         mc, first = covariance_from_mocks(cfg.resolve(c["mocks"]))
         if first.ells != dv.ells or not np.allclose(first.edges, dv.edges):
             raise DataError(f"{c['mocks']}: mock multipoles/k bins differ from the data vector")
-        if mc.n_mocks <= n_used + 2:
-            raise DataError(f"{cfg.path}: covariance.mocks '{c['mocks']}': {mc.n_mocks} mocks for "
-                            f"{n_used} data points; a mock covariance needs more than n_data + 2 "
-                            f"= {n_used + 2} mocks for an unbiased inverse (Hartlap, Simon & "
-                            f"Schneider 2007): make at least {n_used + 3} (ergofit simulate "
-                            f"CONFIG --n {n_used + 3})")
+        mc.require(n_used, f"{cfg.path}: covariance.mocks '{c['mocks']}'")
         return mc.covariance, mc
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", tr.PlaneParallelWarning)

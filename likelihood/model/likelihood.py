@@ -20,6 +20,30 @@ from ..theory import tracer as tr
 from .fiducial import COSMO_PARAMS, make_tracer
 
 
+def mock_corrections(cfg, mock_cov, n_data, n_params):
+    """(n_mocks, t_likelihood, precision_scale, percival_m1) of a covariance from mocks
+    (``mock_cov`` a MockCovariance, or None: (None, False, 1.0, None)): the Sellentin-Heavens
+    t-likelihood with covariance.method: t, else the Hartlap factor; Percival et al. (2014)
+    eq. 18: parameter variances from a mock covariance are inflated by m1 (reported; the
+    posterior itself is not rescaled)."""
+    if mock_cov is None:
+        return None, False, 1.0, None
+    t = cfg["covariance"]["kind"] == "mocks" and cfg["covariance"]["method"] == "t"
+    return (mock_cov.n_mocks, t, 1.0 if t else mock_cov.hartlap(n_data),
+            mock_cov.percival_m1(n_data, n_params))
+
+
+def covariance_line(lik):
+    """The ``describe`` line of the covariance of a likelihood (with its mock corrections)."""
+    return (f"covariance: {lik.config['covariance']['kind']}, condition number {lik.condition_number:.3g}"
+            + (f"; {lik.n_mocks} mocks, "
+               + ("Sellentin-Heavens t-likelihood" if lik.t_likelihood else
+                  f"Hartlap factor {lik.precision_scale:.3f}")
+               + ("" if lik.t_likelihood else
+                  f"; Percival m1 = {lik.percival_m1:.3f} (inflate parameter errors by "
+                  f"{np.sqrt(lik.percival_m1):.3f})") if lik.mock_cov is not None else ""))
+
+
 class Likelihood:
     """Gaussian likelihood of the measured multipoles; built by :func:`likelihood.build`.
 
@@ -59,16 +83,8 @@ class Likelihood:
         self.chol = check_covariance(cov, n=self.data.size, source="covariance")
         self.covariance = cov
         self.condition_number = condition_number(cov)
-        self.n_mocks = mock_cov.n_mocks if mock_cov is not None else None
-        self.t_likelihood = cfg["covariance"]["kind"] == "mocks" and cfg["covariance"]["method"] == "t"
-        scale = 1.0
-        if mock_cov is not None and not self.t_likelihood:
-            scale = mock_cov.hartlap(self.data.size)
-        self.precision_scale = scale
-        # Percival et al. (2014) eq. 18: parameter variances from a mock covariance are inflated
-        # by m1 (reported; the posterior itself is not rescaled)
-        self.percival_m1 = (mock_cov.percival_m1(self.data.size, len(self.parameter_names))
-                            if mock_cov is not None else None)
+        (self.n_mocks, self.t_likelihood, self.precision_scale,
+         self.percival_m1) = mock_corrections(cfg, mock_cov, self.data.size, len(self.parameter_names))
         self.dof = int(self.data.size - len(self.parameter_names))
         self._fixed_floats = forward.held
         self._chol_inv = np.linalg.inv(self.chol)   # tiny matrix; matmul beats repeated solves
@@ -349,13 +365,7 @@ class Likelihood:
                  f"data: {self.data.size} points, multipoles {list(self.ells)}, k in "
                  f"[{self.data_full.k_eff[self.mask.reshape(len(self.data_full.ells), -1).any(0)].min():.4g}, "
                  f"{self.data_full.k_eff[self.mask.reshape(len(self.data_full.ells), -1).any(0)].max():.4g}] h/Mpc",
-                 f"covariance: {cfg['covariance']['kind']}, condition number {self.condition_number:.3g}"
-                 + (f"; {self.n_mocks} mocks, "
-                    + ("Sellentin-Heavens t-likelihood" if self.t_likelihood else
-                       f"Hartlap factor {self.precision_scale:.3f}")
-                    + ("" if self.t_likelihood else
-                       f"; Percival m1 = {self.percival_m1:.3f} (inflate parameter errors by "
-                       f"{np.sqrt(self.percival_m1):.3f})") if self.mock_cov is not None else ""),
+                 covariance_line(self),
                  "sampled parameters:"]
         for p in self.params.free:
             lines.append(f"  {p.name:<10s} {p.prior.describe():<30s} start {p.start:g}")

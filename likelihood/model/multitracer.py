@@ -34,10 +34,11 @@ from ..config.multitracer import parameter_table
 from ..data import DataVector, check_covariance, condition_number
 from ..errors import ConfigError, DataError
 from ..observation.matrix import KBins, WindowMatrix, theory_k_grid
-from ..spectra import SpectraVector, load_spectra, load_spectra_covariance, pair_label
+from ..spectra import (SpectraVector, load_spectra, load_spectra_covariance, pair_label,
+                       spectra_covariance_from_mocks)
 from ..theory import tracer as tr
 from .fiducial import COSMO_PARAMS, fiducial_values, held_values
-from .likelihood import Likelihood
+from .likelihood import Likelihood, covariance_line, mock_corrections
 from .templates import basis_kernels
 
 ELLS_AUTO = (0, 2, 4)
@@ -231,7 +232,7 @@ class MultiLikelihood(Likelihood):
     :class:`~likelihood.model.likelihood.Likelihood`; parameters named per tracer)."""
 
     def __init__(self, cfg, params, cosmo, survey, data_full, forward, covariance_full, fiducial,
-                 known):
+                 known, mock_cov=None):
         self.config, self.config_hash = cfg, cfg.hash
         self.params, self.parameter_names = params, params.names
         self.labels, self.prior_bounds = params.labels, params.bounds
@@ -244,9 +245,10 @@ class MultiLikelihood(Likelihood):
         self.cosmo_free = [n for n in self.parameter_names if n in COSMO_PARAMS]
         self.forward, self.known, self.fiducial = forward, known, fiducial
         self.data_full, self.mask = data_full, forward.mask
-        self.covariance_full, self.mock_cov, self.n_mocks = covariance_full, None, None
-        self.t_likelihood, self.precision_scale, self.percival_m1 = False, 1.0, None
+        self.covariance_full, self.mock_cov = covariance_full, mock_cov
         self.data = data_full.flat[self.mask]
+        (self.n_mocks, self.t_likelihood, self.precision_scale,
+         self.percival_m1) = mock_corrections(cfg, mock_cov, self.data.size, len(params.names))
         cov = covariance_full[np.ix_(self.mask, self.mask)]
         self.chol = check_covariance(cov, n=self.data.size, source="covariance")
         self.covariance = cov
@@ -327,7 +329,7 @@ class MultiLikelihood(Likelihood):
         return parts
 
     def _log_prob_single(self, theta):
-        if self._lin.size:
+        if self._lin.size or self.t_likelihood:
             return float(self.log_prob(theta[None])[0])
         lo, hi, mean, inv_sig, _ = self.params.prior_arrays()
         th = theta.tolist()
@@ -348,7 +350,7 @@ class MultiLikelihood(Likelihood):
         c = (np.concatenate([c, (vals["nu_obs"] ** 2 - 1.0) * c, noise]) if self.observer_on
              else np.concatenate([c, noise]))
         chi2 = self._dd - 2.0 * (c @ tpl["g"]) + c @ (tpl["G"] @ c)
-        res = lp - 0.5 * chi2
+        res = lp - 0.5 * self.precision_scale * chi2
         return res if res == res else -np.inf
 
     @property
@@ -446,7 +448,7 @@ class MultiLikelihood(Likelihood):
             lines.append(f"  {s.label:<16s} ells {list(s.part.ells)}, k in [{k.min():.4g}, {k.max():.4g}] "
                          f"h/Mpc, {int(s.mask.sum())} points"
                          + (f", noise {s.noise_name}" if s.noise_name else ""))
-        lines.append(f"covariance: {cfg['covariance']['kind']}, condition number {self.condition_number:.3g}")
+        lines.append(covariance_line(self))
         if self._lin.size:
             lines.append("marginalised analytically: " + ", ".join(
                 f"{n} ({'Gaussian N(%g, %g)' % (m, iv ** -0.5) if iv else 'flat, unbounded'})"
@@ -560,6 +562,23 @@ def analytic_covariance(sv, cosmo, forward, fiducial):
     return covariance_function()(first.n_modes, spectra, pkmu, noise)
 
 
+def mock_covariance(cfg, layout, mask, take):
+    """MockCovariance of ``covariance.mocks`` (multi-tracer files laid out like ``layout``, the
+    data file's vector or the config's), refusing too few mocks for the points fitted (``mask``)
+    in one line; ``take`` (positions of the fitted spectra in ``layout``, or None) selects the
+    blocks, the Hartlap factor is then that of the points fitted."""
+    pattern = cfg["covariance"]["mocks"]
+    mc, first = spectra_covariance_from_mocks(cfg.resolve(pattern))
+    mine = [(p, d.ells, d.n_bins) for p, d in zip(layout.pairs, layout.parts)]
+    theirs = [(p, d.ells, d.n_bins) for p, d in zip(first.pairs, first.parts)]
+    if theirs != mine or any(not np.allclose(a.edges, b.edges) for a, b in zip(first.parts, layout.parts)):
+        raise DataError(f"{pattern}: the mocks' spectra {[(pair_label(p), list(e)) for p, e, _ in theirs]} "
+                        f"or k bins differ from the data's {[(pair_label(p), list(e)) for p, e, _ in mine]}; "
+                        "make the mocks with ergofit simulate on this config")
+    mc.require(int(np.count_nonzero(mask)), f"{cfg.path}: covariance.mocks '{pattern}'")
+    return mc
+
+
 def build_multi(cfg):
     """The :class:`MultiLikelihood` of a validated multi-tracer config."""
     from . import factories as fac
@@ -586,11 +605,16 @@ def build_multi(cfg):
                           "the wide-angle dipole ~ (b_X - b_Y) P/(k chi) (not included) is of the "
                           "same order as the Doppler dipole at every k: read the README's regime of "
                           "validity", tr.PlaneParallelWarning, stacklevel=2)
-    if cfg["covariance"]["kind"] == "file":       # file or gaussian (validated)
-        cov = load_spectra_covariance(cfg.resolve(cfg["covariance"]["file"]), file_sv or sv)
+    kind, mock_cov = cfg["covariance"]["kind"], None
+    if kind in ("file", "mocks"):
+        if kind == "file":
+            cov = load_spectra_covariance(cfg.resolve(cfg["covariance"]["file"]), file_sv or sv)
+        else:
+            mock_cov = mock_covariance(cfg, file_sv or sv, forward.mask, take)
+            cov = mock_cov.covariance
         if take is not None:
             cov = cov[np.ix_(take, take)]            # the blocks of the spectra fitted
-    else:
+    else:                                            # gaussian (validated)
         cov = analytic_covariance(sv, cosmo, forward, fiducial)
     if cfg["data"].get("mock") is not None:
         mean, meta = fac.mock_vector(cfg, forward, fiducial, cosmo_free, cov)
@@ -603,4 +627,4 @@ def build_multi(cfg):
         sv = SpectraVector(sv.tracers, sv.pairs, parts, meta, source="mock")
         for s, p in zip(spectra, parts):
             s.part = p
-    return MultiLikelihood(cfg, params, cosmo, srv, sv, forward, cov, fiducial, known)
+    return MultiLikelihood(cfg, params, cosmo, srv, sv, forward, cov, fiducial, known, mock_cov)

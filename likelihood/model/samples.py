@@ -37,8 +37,9 @@ class SampleSum(Likelihood):
                        - sum(len(p._lin_names) for p in parts))
         self.effects = parts[0].effects
 
-    # the parent's log_prob runs prior → _theta_values → _chi2 → _loglike_from_chi2; the samples'
-    # likelihoods are Gaussian with unit precision scale, so the sum of their χ² is −2 Σ ln L_i
+    # the parent's log_prob runs prior → _theta_values → _chi2 → _loglike_from_chi2; with unit
+    # precision scale and no t-likelihood here, _chi2 returns −2 Σ ln L_i of the samples (each
+    # sample's own Hartlap factor or t-likelihood for a mock covariance included)
     t_likelihood, precision_scale = False, 1.0
 
     def _theta_values(self, theta):
@@ -46,7 +47,8 @@ class SampleSum(Likelihood):
 
     def _chi2(self, theta):
         """(n,) sum of the samples' χ² for (n, n_dim) theta; each sample reads its own columns."""
-        return sum(p._chi2(p._theta_values(theta[:, cols])) for p, cols in zip(self.parts, self.columns))
+        return sum(-2.0 * p._loglike_from_chi2(p._chi2(p._theta_values(theta[:, cols])))
+                   for p, cols in zip(self.parts, self.columns))
 
     def _log_prob_single(self, theta):
         return float(self.log_prob(theta[None])[0])

@@ -24,6 +24,15 @@ from ..model.fiducial import config_tracer
 from ..observation.geometry import effects_tuple
 
 ELLS = (0, 2, 4)
+ELLS_CROSS = (0, 1, 2, 3, 4)
+
+
+def _steps(eff):
+    """The cumulative components: Newtonian, + f_NL, + projection (effects of each)."""
+    rsd = ("rsd",) if "rsd" in eff else ()
+    fnl = ("fnl",) if "fnl" in eff else ()
+    proj = tuple(e for e in eff if e in ("doppler", "potential"))
+    return {"newtonian": rsd, "plus_fnl": rsd + fnl, "plus_projection": rsd + fnl + proj}
 
 
 def components(cfg, k, fnl=None):
@@ -35,13 +44,81 @@ def components(cfg, k, fnl=None):
     t = cfg["tracer"]
     tracer = config_tracer(cfg, dict(t, fnl=t["fnl"] if fnl is None else float(fnl)))
     eff = effects_tuple(cfg)
-    rsd = ("rsd",) if "rsd" in eff else ()
-    fnl = ("fnl",) if "fnl" in eff else ()
-    proj = tuple(e for e in eff if e in ("doppler", "potential"))
-    steps = {"newtonian": rsd, "plus_fnl": rsd + fnl, "plus_projection": rsd + fnl + proj}
     out = {name: tr.multipoles(cosmo, z, k, tracer, effects=e, ells=ELLS, shot_noise=False)
-           for name, e in steps.items()}
+           for name, e in _steps(eff).items()}
     return out, cosmo, tracer, eff
+
+
+def spectra_components(cfg, k, fnl=None):
+    """Several tracers: [(pair, ells, {component: (len(ells), len(k))})] for each spectrum of the
+    config (autos ℓ = 0, 2, 4; crosses ℓ = 0–4 with Π_ℓ for odd ℓ), the tracers at their fiducial
+    values (the ``tracers`` entries; f_NL from the parameters or ``fnl``); no window, no noise."""
+    from ..config.multitracer import parameter_table
+    from ..model.fiducial import fiducial_values
+    cosmo = factories.cosmology(cfg)
+    z = cfg["survey"]["redshift"]
+    fid = fiducial_values(cfg, parameter_table(cfg))
+    f = fid["fnl"] if fnl is None else float(fnl)
+    tracers = {t["name"]: tr.Tracer(b1=fid[f"b1_{t['name']}"], fnl=f, p=fid[f"p_{t['name']}"],
+                                    nbar=t["nbar"], b_e=fid[f"b_e_{t['name']}"],
+                                    s=fid[f"s_{t['name']}"], name=t["name"])
+               for t in cfg["tracers"]}
+    eff = effects_tuple(cfg)
+    out = []
+    for spec in cfg["spectra"]:
+        x, y = spec["pair"]
+        if x == y:
+            comps = {name: tr.multipoles(cosmo, z, k, tracers[x], effects=e, ells=ELLS,
+                                         shot_noise=False) for name, e in _steps(eff).items()}
+            out.append(((x, y), ELLS, comps))
+        else:
+            comps = {name: tr.cross_multipoles(cosmo, z, k, tracers[x], tracers[y], effects=e,
+                                               ells=ELLS_CROSS) for name, e in _steps(eff).items()}
+            out.append(((x, y), ELLS_CROSS, comps))
+    return out, tracers, eff, f
+
+
+def spectra_theory_report(cfg, out_path, k=None, fnl=None):
+    """``ergofit theory`` on a config with several tracers: one table of every spectrum's
+    multipoles component by component (columns PAIR_COMPONENT_P<ℓ>, odd ℓ of a cross as Π_ℓ
+    with P_ℓ = iΠ_ℓ) and a PNG per spectrum beside it; returns lines to print."""
+    from ..spectra import pair_label
+    k = np.geomspace(1e-3, 0.2, 60) if k is None else np.asarray(k, float)
+    specs, tracers, eff, f = spectra_components(cfg, k, fnl)
+    z = cfg["survey"]["redshift"]
+    cols, data = ["k"], [k]
+    for (x, y), ells, comps in specs:
+        tag = x if x == y else f"{x}x{y}"
+        for name, pl in comps.items():
+            cols += [f"{tag}_{name}_P{l}" for l in ells]
+            data += list(pl)
+
+    def write(fh):
+        fh.write("# ergofit theory multipoles of several tracers (linear theory, plane-parallel "
+                 "kernel, no window, no shot noise; odd ell of a cross spectrum: Pi_ell, P_ell = i Pi_ell)\n")
+        fh.write(f"# z = {z:g}, fnl = {f:g}; effects: {', '.join(eff)}\n")
+        for t in tracers.values():
+            fh.write(f"# tracer {t.name}: b1 = {t.b1:g}, p = {t.p:g}, b_e = {t.b_e:g}, s = {t.s:g}, "
+                     f"nbar = {t.nbar:g}\n")
+        fh.write("# units: k in h/Mpc, P in (Mpc/h)^3\n# columns: " + " ".join(cols) + "\n")
+        np.savetxt(fh, np.column_stack(data), fmt="%.8e")
+    open_atomic(out_path, write)
+    stem = os.path.splitext(out_path)[0]
+    lines = [f"theory multipoles of {len(specs)} spectra written to {out_path}"]
+    j = int(np.argmin(np.abs(k - 0.01)))
+    for (x, y), ells, comps in specs:
+        png = f"{stem}_{x if x == y else x + '_' + y}.png"
+        plot_components(k, comps, png, title=f"{pair_label((x, y))}: z = {z:g}, fNL = {f:g}",
+                        ells=ells)
+        lines.append(f"  {pair_label((x, y))}: plot {png}; at k = {k[j]:.4f} P0 newtonian "
+                     f"{comps['newtonian'][0, j]:.4g}, +fNL {comps['plus_fnl'][0, j]:.4g}, "
+                     f"+projection {comps['plus_projection'][0, j]:.4g}"
+                     + (f", Pi1 (Doppler dipole) {comps['plus_projection'][1, j]:.4g}" if x != y else ""))
+    if f == 0 and "fnl" in eff:
+        lines.append("  (f_NL = 0: the '+fNL' component equals the Newtonian one; show it with --fnl VALUE)")
+    if cfg["effects"]["observer"]:
+        lines.append("  (the observer term is not shown for several tracers)")
+    return lines
 
 
 def theory_report(cfg, out_path, k=None, fnl=None):
@@ -158,27 +235,31 @@ def plot_observer(k, E, sig_p, k_f, k_f_text, path, title=""):
     plt.close(fig)
 
 
-def plot_components(k, comps, path, title=""):
+def plot_components(k, comps, path, title="", ells=ELLS):
     """Top row: |P_ℓ(k)| of each component; bottom row: each component relative to the
-    Newtonian one, P_ℓ/P_ℓ^Newt − 1, where the f_NL and projection terms show up."""
+    Newtonian one, P_ℓ/P_ℓ^Newt − 1, where the f_NL and projection terms show up (an odd ℓ,
+    zero in the Newtonian cross spectrum, shows the difference to it instead)."""
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
-    fig, axes = plt.subplots(2, len(ELLS), figsize=(4.2 * len(ELLS), 6.4), sharex=True,
+    fig, axes = plt.subplots(2, len(ells), figsize=(4.2 * len(ells), 6.4), sharex=True,
                              gridspec_kw={"height_ratios": [3, 2]})
     styles = {"newtonian": ("0.2", "-"), "plus_fnl": ("tab:orange", "--"),
               "plus_projection": ("tab:purple", ":")}
     names = {"newtonian": "Newtonian (b1 + RSD)", "plus_fnl": "+ f_NL", "plus_projection": "+ projection"}
     newt = comps["newtonian"]
-    for i, ell in enumerate(ELLS):
+    for i, ell in enumerate(ells):
         top, bot = axes[0, i], axes[1, i]
         for name, pl in comps.items():
             c, ls = styles[name]
             top.loglog(k, np.abs(pl[i]), color=c, ls=ls, lw=1.6, label=names[name])
             with np.errstate(divide="ignore", invalid="ignore"):
-                rel = np.where(newt[i] != 0, pl[i] / newt[i] - 1.0, 0.0)
+                rel = (np.where(newt[i] != 0, pl[i] / newt[i] - 1.0, 0.0) if np.any(newt[i])
+                       else pl[i] - newt[i])
             bot.semilogx(k, rel, color=c, ls=ls, lw=1.6)
         top.set_title(rf"$|P_{ell}(k)|$")
+        if not np.any(newt[i]):
+            bot.set_ylabel(r"$\Pi_\ell - \Pi_\ell^{\rm Newt}$ [(Mpc/h)$^3$]", fontsize=8)
         bot.axhline(0.0, color="0.6", lw=0.8)
         bot.set_xlabel(r"$k\ [h\,{\rm Mpc}^{-1}]$")
     axes[0, 0].set_ylabel(r"$[({\rm Mpc}/h)^3]$")

@@ -82,16 +82,12 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
     ells = multipole_list(ells, "ells", max_ell=MAX_ELL)
     e = check_edges(mesh, edges)
     n = _mock_count(n_mocks)
-    if constraint is not None and not isinstance(constraint, ObserverConstraint):
-        raise ErgofitError(f"constraint = {constraint!r}: expected an ObserverConstraint or None")
     w = window_weights(mesh, window, "window")
     extent_warning(mesh, w)
     p = _mesh_power(mesh, pk, k_cut, e)
     a, bk = _mesh_kernel(mesh, A, B, "")
-    c_value = tpl = None
-    if constraint is not None:
-        tpl = ConstraintTemplate.make(mesh, constraint.kernel, p)
-        c_value = constraint.nu * math.sqrt(tpl.sigma2)
+    tpl = _constraint_template(mesh, constraint, p)
+    c_value = None if tpl is None else constraint.nu * math.sqrt(tpl.sigma2)
     mocks = []
     max_clip, max_gain = 0.0, 1.0
     for i, child in enumerate(np.random.SeedSequence(seed).spawn(n)):
@@ -173,18 +169,20 @@ class MultiTracerMocks:
 
 
 def multi_tracer_mocks(mesh, pk, tracers, spectra, edges, n_mocks=10, seed=0, window=None,
-                       subtract_mean=True, k_cut=None, progress=None):
+                       subtract_mean=True, k_cut=None, progress=None, constraint=None,
+                       subtract_shot_noise=True):
     """Mocks of several populations tracing one Gaussian field, with auto and cross multipoles.
 
     Per mock i (streams spawned from ``seed``: mock i depends only on (seed, i)): one δ_k ~
-    :func:`gaussian_field` (pk, zero above ``k_cut``); for each tracer X (a :class:`MeshTracer`
+    :func:`gaussian_field` (pk, zero above ``k_cut``), constrained at the observer by
+    ``constraint`` (an :class:`ObserverConstraint`, as in :func:`simulate_mocks`) if given; for each tracer X (a :class:`MeshTracer`
     in the dict ``tracers``) Δ_X = :func:`observed_field` with its own kernel, then, if X has an
     n̄, independent Poisson counts N_X ~ Poisson(n̄_X H³ W [1 + a_X Δ_X]₊) (its own stream; a_X
     the gain of ``fields.clip_gain`` for the rms of Δ_X, see the module notes; a warning gives the
     largest clipped fraction over the mocks when it exceeds 0.1 %); the spectra [((X, Y), ells), ...] are measured by
     :func:`likelihood.observation.estimator.measure_spectra` (autos: the Poisson shot noise
-    S_X ≈ 1/n̄_X subtracted from ℓ = 0, the data convention ``data.shot_noise_subtracted: true``;
-    crosses: nothing subtracted, the samples are independent; odd ℓ of a cross as Π_ℓ).
+    S_X ≈ 1/n̄_X subtracted from ℓ = 0, the data convention ``data.shot_noise_subtracted: true``,
+    or kept when ``subtract_shot_noise`` is False; crosses: nothing subtracted, the samples are independent; odd ℓ of a cross as Π_ℓ).
     Linear-theory Gaussian mocks: see the module notes for the regime of validity.
     Returns :class:`MultiTracerMocks`.
     """
@@ -208,10 +206,14 @@ def multi_tracer_mocks(mesh, pk, tracers, spectra, edges, n_mocks=10, seed=0, wi
     p = _mesh_power(mesh, pk, k_cut, e)
     kern = {x: _mesh_kernel(mesh, tracers[x].A, tracers[x].B, f" of tracer {x}") for x in names}
     nbar = {x: tracers[x].nbar for x in names if tracers[x].nbar is not None}
+    tpl = _constraint_template(mesh, constraint, p)
     vectors, first, max_clip, max_gain = [], None, 0.0, 1.0
     for i, child in enumerate(np.random.SeedSequence(seed).spawn(n)):
         streams = child.spawn(1 + len(names))
         dk = gaussian_field(mesh, p, streams[0])
+        if tpl is not None:
+            dk, _, _ = constrain_at_origin(mesh, dk, None, constraint.nu * math.sqrt(tpl.sigma2), p,
+                                           template=tpl, inplace=True)
         fields = {}
         for x, s_poisson in zip(names, streams[1:]):
             a, b = kern[x]
@@ -223,6 +225,8 @@ def multi_tracer_mocks(mesh, pk, tracers, spectra, edges, n_mocks=10, seed=0, wi
         del dk
         out = measure_spectra(mesh, fields, spectra, e, w, nbar=nbar, subtract_mean=subtract_mean)
         del fields
+        if not subtract_shot_noise:
+            _add_back_shot_noise(out)
         first = next(iter(out.values()))
         vectors.append(np.concatenate([out[(x, y)].values.ravel() for x, y, _ in specs]))
         if progress is not None:
@@ -230,6 +234,24 @@ def multi_tracer_mocks(mesh, pk, tracers, spectra, edges, n_mocks=10, seed=0, wi
     clip_warning(max_clip, stacklevel=3, gain=max_gain)
     return MultiTracerMocks([((x, y), ells) for x, y, ells in specs], e, first.k_eff,
                             first.n_modes, np.array(vectors), max_clip)
+
+
+def _constraint_template(mesh, constraint, p):
+    """The :class:`ConstraintTemplate` of ``constraint`` (None: no constraint)."""
+    if constraint is None:
+        return None
+    if not isinstance(constraint, ObserverConstraint):
+        raise ErgofitError(f"constraint = {constraint!r}: expected an ObserverConstraint or None")
+    return ConstraintTemplate.make(mesh, constraint.kernel, p)
+
+
+def _add_back_shot_noise(spectra):
+    """Convention ``data.shot_noise_subtracted: false``: the subtracted S_X back into ℓ = 0 of
+    each auto spectrum of {(X, Y): DataVector} (in place)."""
+    for (x, y), dv in spectra.items():
+        if x == y and 0 in dv.ells:
+            dv.values[list(dv.ells).index(0)] += float(dv.meta["shot_noise"])
+            dv.meta["shot_noise_subtracted"] = "False"
 
 
 def _mock_count(n_mocks):
@@ -294,10 +316,12 @@ def _tracer_on_mesh(cosmo, z, tracer, effects, mesh):
 
 
 def simulate_tracers(cosmo, z, tracers, effects, mesh, spectra, edges, n_mocks, seed=0,
-                     window=None, poisson=True, k_cut=None, progress=None):
+                     window=None, poisson=True, k_cut=None, progress=None, observer=None,
+                     subtract_shot_noise=True):
     """Mocks of several populations of ``likelihood.theory.tracer.Tracer`` (dict {name: Tracer}):
     each kernel from ``likelihood.theory.tracer.kernel(cosmo, z, k, tracer, effects)`` on the
-    mesh, P(k, z) from ``cosmo``, Poisson sampling with each tracer's n̄ (``poisson``), then
+    mesh, P(k, z) from ``cosmo``, Poisson sampling with each tracer's n̄ (``poisson``), the
+    observer constraint ``observer`` (as in :func:`simulate_from_settings`), then
     :func:`multi_tracer_mocks` (which see). One tracer with the same seed gives the same numbers
     as :func:`simulate_from_settings`. Returns :class:`MultiTracerMocks`."""
     from ..theory.tracer import Tracer
@@ -313,7 +337,9 @@ def simulate_tracers(cosmo, z, tracers, effects, mesh, spectra, edges, n_mocks, 
         mesh_tracers[name] = MeshTracer(a, b, f, t.nbar if poisson else None)
     pk = mesh.on_grid(lambda k: cosmo.power(k, zf), "cosmology power").astype(mesh.real_dtype)
     return multi_tracer_mocks(mesh, pk, mesh_tracers, spectra, edges, n_mocks, seed, window,
-                              k_cut=k_cut, progress=progress)
+                              k_cut=k_cut, progress=progress,
+                              constraint=_observer_from_settings(observer),
+                              subtract_shot_noise=subtract_shot_noise)
 
 
 def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells, n_mocks, seed,

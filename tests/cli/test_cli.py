@@ -176,3 +176,41 @@ def test_help_version_and_examples(capsys):
         with pytest.raises(SystemExit) as exc:
             main(bad)
         assert exc.value.code == 2 and "expected" in capsys.readouterr().err
+
+
+def test_theory_of_several_tracers(write_config, tmp_path, capsys):
+    """`ergofit theory` on a config with tracers: one tracer gives the single-tracer table's
+    numbers (same kernel); the Newtonian cross monopole of two tracers is
+    [b_A b_B + f (b_A + b_B)/3 + f²/5] P(k) (Kaiser 1987 RSD averaged over μ for two biases:
+    common practice) and its Newtonian dipole vanishes."""
+    from likelihood.config.schema import load_config
+    from likelihood.model import factories
+    single = write_config({"tracer": {"b1": 2.0, "fnl": 5.0, "b_e": 1.0, "s": 0.3},
+                           "effects": {"observer": False}}, "single.yaml")
+    raw = load_config(single).raw
+    multi = {k: v for k, v in raw.items() if k not in ("tracer", "data", "covariance", "parameters")}
+    multi["survey"] = {k: v for k, v in raw["survey"].items() if k != "nbar"}
+    multi.update(tracers=[{"name": "g", "nbar": raw["survey"]["nbar"], "b1": 2.0, "b_e": 1.0, "s": 0.3},
+                          {"name": "h", "nbar": 1e-4, "b1": 1.2}],
+                 spectra=[{"pair": ["g", "g"], "ells": [0, 2]}, {"pair": ["g", "h"], "ells": [0, 1, 2]},
+                          {"pair": ["h", "h"], "ells": [0, 2]}],
+                 data={"mock": {"k_min": 0.005, "k_max": 0.05, "n_bins": 5}},
+                 parameters={"fnl": {"flat": [-100, 100], "start": 5.0}, "b1_g": {"flat": [0.5, 5]}})
+    import yaml
+    mpath = tmp_path / "multi.yaml"
+    mpath.write_text(yaml.safe_dump(multi))
+    assert main(["theory", single, "--out", str(tmp_path / "one"), "--fnl", "5"]) == 0
+    assert main(["theory", str(mpath), "--out", str(tmp_path / "two"), "--fnl", "5"]) == 0
+    text = capsys.readouterr().out
+    assert "Pi1 (Doppler dipole)" in text and (tmp_path / "two" / "theory_g_h.png").exists()
+    one = np.loadtxt(tmp_path / "one" / "theory.txt")
+    two = np.loadtxt(tmp_path / "two" / "theory.txt")
+    np.testing.assert_allclose(two[:, :10], one, rtol=1e-12)
+    k = two[:, 0]
+    cfg = load_config(str(mpath))
+    cosmo, z = factories.cosmology(cfg), cfg["survey"]["redshift"]
+    f = cosmo.growth_rate(z)
+    kaiser = (2.0 * 1.2 + f * (2.0 + 1.2) / 3 + f ** 2 / 5) * cosmo.power(k, z)
+    np.testing.assert_allclose(two[:, 10], kaiser, rtol=1e-6)       # g x h newtonian P0
+    # columns 10-24: g x h newtonian, + f_NL, + projection, each P0..P4 (Π1, Π3 for odd ℓ)
+    assert np.all(two[:, 11] == 0) and np.all(two[:, 21] != 0)   # Π1: 0 Newtonian, ≠ 0 with Doppler

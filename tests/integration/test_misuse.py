@@ -99,7 +99,8 @@ def _check_refused(base, case, folder, capsys, monkeypatch):
     monkeypatch.chdir(folder)
     before = sorted(os.listdir(folder))
     path = _write(folder, cfg)
-    code = main([command, path])
+    cmd, *options = command.split()
+    code = main([cmd, path, *options])
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 2
     assert len([l for l in err if "error:" in l]) == 1 and words in err[-1], err
@@ -243,8 +244,12 @@ MULTI_CASES = [
      "tracers[0].name: expected a letter then letters/digits"),
     ("nbar-negative", lambda c: c["tracers"][0].update(nbar=-1), "check",
      "tracers[0].nbar = -1: expected a positive number"),
-    ("cov-mocks", lambda c: c.update(covariance={"kind": "mocks", "mocks": "m_*.txt"}), "check",
-     "covariance.kind: mocks is not available with several tracers yet"),
+    ("cov-mocks-none", lambda c: c.update(covariance={"kind": "mocks", "mocks": "m_*.txt"}), "check",
+     "m_*.txt: found 0 mock data-vector files; need at least 2"),
+    ("simulate-samples", _as_samples("south", {"bright": "b2", "faint": "f2"}), "simulate",
+     "ergofit simulate makes the mocks of one sample"),
+    ("simulate-shared-noise", _spectrum(1, "shared_nbar", 2e-5), "simulate",
+     "shared_nbar (overlapping populations) cannot be simulated"),
     ("samples-same-name", _as_samples("north", {"bright": "brightS", "faint": "faintS"}), "check",
      "samples: two samples are named 'north'"),
     ("samples-same-tracer", _as_samples("south", {"bright": "brightS"}), "check",
@@ -256,10 +261,24 @@ MULTI_CASES = [
      "parameters.b1_faint.analytic: only parameters entering the model linearly"),
     ("analytic-not-bool", lambda c: c["parameters"]["shot_noise_faint"].update(analytic="yes"),
      "check", "parameters.shot_noise_faint.analytic: expected true or false"),
-] + [(f"{cmd}-not-yet{'-samples' if smp else ''}",
-       _as_samples("south", {"bright": "b2", "faint": "f2"}) if smp else (lambda c: None), cmd,
-       f"ergofit {cmd} does not handle several tracers or samples yet")
-      for cmd in ("theory", "forecast", "simulate") for smp in (False, True)]
+] + [
+    ("theory-samples", _as_samples("south", {"bright": "b2", "faint": "f2"}), "theory",
+     "ergofit theory works on one sample"),
+    ("forecast-samples", _as_samples("south", {"bright": "b2", "faint": "f2"}), "forecast",
+     "ergofit forecast works on one sample"),
+    ("forecast-scan-quantity", lambda c: c.update(forecast={"scan": {"quantity": "nbar",
+                                                                     "values": [1e-4, 2e-4]}}),
+     "forecast", "forecast.scan quantity nbar is for one tracer; with several tracers scan "
+     "quantity: bias_split"),
+    ("forecast-scan-three", lambda c: (c["tracers"].append({"name": "dim", "nbar": 1e-4}),
+                                       c.update(forecast={"scan": {"quantity": "bias_split",
+                                                                   "values": [0, 1]}})),
+     "forecast", "bias_split compares one tracer with a split into two; the config has 3 tracers"),
+    ("forecast-check-mcmc", lambda c: None, "forecast --check-mcmc",
+     "--check-mcmc is for one tracer"),
+    ("forecast-split-nbar", lambda c: c.update(forecast={"scan": {"quantity": "nbar", "values": [1e-4],
+                                                                  "nbar": [1e-4]}}),
+     "forecast", "forecast.scan.nbar: only with quantity: bias_split")]
 
 
 @pytest.mark.parametrize("case", MULTI_CASES, ids=[c[0] for c in MULTI_CASES])

@@ -223,6 +223,16 @@ def test_simulate_tracers_one_tracer_equals_single_tracer_mocks():
                                mesh, [(("g", "g"), (0,)), (("g", "h"), (0, 1)), (("h", "h"), (0,))],
                                edges, 2, 7)
     np.testing.assert_allclose(many.vectors, np.array([m.flat for m in one]), rtol=1e-10)
+    # the same with the observer's constrained potential and the shot noise kept in the monopole
+    obs = {"field": "potential", "nu_true": 1.5}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        one_c, _ = simulate_from_settings(cosmo, 1.2, t, eff, mesh, None, edges, (0, 2), 2, 7,
+                                          nbar=t.nbar, observer=obs, subtract_shot_noise=False)
+        many_c = simulate_tracers(cosmo, 1.2, {"g": t}, eff, mesh, [(("g", "g"), (0, 2))], edges,
+                                  2, 7, observer=obs, subtract_shot_noise=False)
+    np.testing.assert_allclose(many_c.vectors, np.array([m.flat for m in one_c]), rtol=1e-10)
+    assert not np.allclose(many_c.vectors, many.vectors[:2])
     assert two.vectors.shape == (2, 4 * 3) and np.all(np.isfinite(two.vectors))
     with pytest.raises(ErgofitError, match="Tracer"):
         simulate_tracers(cosmo, 1.2, {"g": 2.0}, eff, mesh, [(("g", "g"), (0,))], edges, 1)
