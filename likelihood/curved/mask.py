@@ -39,7 +39,8 @@ from .lightcone import ResolutionWarning
 
 __all__ = ["Cap", "HealpixMask", "FULL_SKY", "wigner3j_zero_sq_table", "coupling_matrix",
            "band_limit", "constrained_coupling", "coupled_spectra",
-           "masked_templates", "separability", "SeparabilityWarning", "masked_multipoles", "MASK_TOLERANCE"]
+           "masked_templates", "read_healpix_map", "separability", "SeparabilityWarning",
+           "masked_multipoles", "MASK_TOLERANCE"]
 
 MASK_TOLERANCE = 1e-4     # default: mask power left beyond the band limit, relative to ∫M²dΩ
 
@@ -178,8 +179,8 @@ class HealpixMask:
         try:
             import healpy
         except ImportError:
-            raise ConfigError(f"{source}: a HEALPix mask needs healpy (pip install healpy)") \
-                from None
+            raise ConfigError(f"{source}: a HEALPix mask needs healpy (pip install "
+                              "\"ergofit[healpix]\")") from None
         self._hp = healpy
         m = np.asarray(values, dtype=float)
         if m.ndim != 1 or not healpy.isnpixok(m.size):
@@ -209,22 +210,13 @@ class HealpixMask:
     def from_file(cls, path, lmax=None):
         """The mask in a HEALPix FITS file (first column; ordering from its header, as
         healpy.read_map reads it); one-line DataError naming the file if it cannot be read."""
-        try:
-            import healpy
-        except ImportError:
-            raise ConfigError(f"{path}: a HEALPix mask needs healpy (pip install healpy)") \
-                from None
-        import os
-        if not os.path.isfile(path):
-            raise DataError(f"{path}: HEALPix mask file not found")
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                values = healpy.read_map(path, field=0, nest=False, dtype=float)
-        except Exception as exc:  # noqa: BLE001 - any reader failure becomes one line
-            raise DataError(f"{path}: not a readable HEALPix FITS map "
-                            f"({type(exc).__name__}: {str(exc).splitlines()[0][:80]})") from None
-        return cls(np.asarray(values, dtype=float), lmax=lmax, source=str(path))
+        return cls(read_healpix_map(path), lmax=lmax, source=str(path))
+
+    def mode_fraction(self):
+        """f = (∫M² dΩ)²/(4π ∫M⁴ dΩ): the sky fraction of the mode count (= f_sky for a binary
+        mask; the weighted-volume rule of Feldman, Kaiser & Peacock 1994 applied to M)."""
+        pix = 4.0 * np.pi / self.map.size
+        return self.m2 ** 2 / (4.0 * np.pi * float(np.sum(self.map ** 4) * pix))
 
     def _pad(self, arr, k_max):
         out = np.zeros(k_max + 1)
@@ -263,6 +255,28 @@ class HealpixMask:
 
     def describe(self):
         return f"HEALPix map {self.source} (nside {self.nside}, f_sky {self.area / 4 / np.pi:.3g})"
+
+
+def read_healpix_map(path):
+    """The values of a HEALPix FITS map (first column, RING order; healpy.read_map converts a
+    NESTED map by its header); one-line errors naming the file (ConfigError naming the
+    ``healpix`` extra when healpy is missing, DataError when unreadable)."""
+    try:
+        import healpy
+    except ImportError:
+        raise ConfigError(f"{path}: a HEALPix mask needs healpy (pip install "
+                          "\"ergofit[healpix]\")") from None
+    import os
+    if not os.path.isfile(path):
+        raise DataError(f"{path}: HEALPix mask file not found")
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            values = healpy.read_map(path, field=0, nest=False, dtype=float)
+    except Exception as exc:  # noqa: BLE001 - any reader failure becomes one line
+        raise DataError(f"{path}: not a readable HEALPix FITS map "
+                        f"({type(exc).__name__}: {str(exc).splitlines()[0][:80]})") from None
+    return np.asarray(values, dtype=float)
 
 
 def constrained_coupling(mask, power, j_max, l_max, ic):

@@ -21,7 +21,7 @@ import warnings
 
 import numpy as np
 
-from ..curved.estimator import multipole_templates
+from ..errors import ConfigError
 from ..curved.lightcone import INTEGRATED_TERMS, LOCAL_TERMS
 from ..io import open_atomic, save_figure
 from ..model import factories
@@ -49,9 +49,12 @@ def comparison(cfg, fnl=None):
         values["fnl"] = np.atleast_1d(float(fnl))
     tracer = fw.tracer(cosmo, values)
     local = tuple(t for t in fw.terms if t in LOCAL_TERMS)
-    run = dict(ells=fw.ells, ic=fw.ic, resolution=fw.resolution)
-    light = multipole_templates(cosmo, fw.shell, fw.edges, tracer, fw.terms, **run)
-    snap = multipole_templates(cosmo, fw.shell, fw.edges, tracer, local, snapshot_z=fw.z, **run)
+    if lik.survey.window is None:
+        raise ConfigError(f"{cfg.path}: survey.geometry.mask: the plane-parallel comparison "
+                          "needs a plane-parallel window, which a HEALPix map does not give "
+                          "(use shape: cap, or a window from randoms in a plane-parallel run)")
+    light = fw.engine_templates(cosmo, tracer, fw.terms)
+    snap = fw.engine_templates(cosmo, tracer, local, snapshot_z=fw.z)
 
     steps = {}
     on = ["density"]
