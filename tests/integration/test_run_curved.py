@@ -87,3 +87,16 @@ def test_curved_run_with_healpix_mask(write_config, tmp_path):
     assert copied["survey"]["geometry"]["mask"] == os.path.join("inputs", "north.fits")
     assert (out / "inputs" / "north.fits").stat().st_size > 0
     assert load_config(str(out / "config.yaml")).hash == load_config(path).hash
+
+
+@pytest.mark.parametrize("content, words", [(b"not a map", "not a readable HEALPix FITS map"),
+                                            (None, "not found")])
+def test_bad_mask_file_exit_2(write_config, tmp_path, capsys, content, words):
+    """A mask file that is not a HEALPix map, or missing: exit code 2, one line naming it."""
+    pytest.importorskip("healpy")
+    if content is not None:
+        (tmp_path / "bad.fits").write_bytes(content)
+    path = write_config(dict(CURVED_SMALL, survey={"geometry": {"mask": "bad.fits"}}))
+    assert main(["check", path]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "bad.fits" in err[0] and words in err[0]
