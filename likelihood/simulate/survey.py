@@ -43,6 +43,9 @@ from ..simulate.validation import validate
 def choose_mesh(lik, n_mesh=None):
     """Mesh for the survey of ``lik``: (L, N) as described in the module docstring."""
     k_max = float(lik.data_full.edges[-1])
+    if "mask" in lik.config["survey"]["geometry"]:
+        raise ErgofitError("simulate: survey.geometry.mask: a HEALPix mask cannot be meshed yet; "
+                           "use shape: cap for mocks")
     if lik.window is None:
         box = lik.volume ** (1.0 / 3.0)
     else:

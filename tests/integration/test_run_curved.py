@@ -87,6 +87,8 @@ def test_curved_run_with_healpix_mask(write_config, tmp_path):
     assert copied["survey"]["geometry"]["mask"] == os.path.join("inputs", "north.fits")
     assert (out / "inputs" / "north.fits").stat().st_size > 0
     assert load_config(str(out / "config.yaml")).hash == load_config(path).hash
+    assert main(["simulate", path, "--n", "2", "--out", str(tmp_path / "m")]) == 2   # not meshed
+    assert not (tmp_path / "m").exists()
 
 
 @pytest.mark.parametrize("content, words", [(b"not a map", "not a readable HEALPix FITS map"),
