@@ -36,9 +36,10 @@ def _one_tracer(cfg, command):
 
 
 def cmd_theory(args):
-    from ..report.theory import theory_report
+    from ..report.theory import check_theory, theory_report
     from ..config.schema import load_config
     cfg = _one_tracer(load_config(args.config), "theory")
+    check_theory(cfg)
     out = os.path.join(_out_dir(args.out or cfg.output_folder), "theory.txt")
     for line in theory_report(cfg, out, fnl=args.fnl):
         print(line)

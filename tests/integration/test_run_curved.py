@@ -87,8 +87,10 @@ def test_curved_run_with_healpix_mask(write_config, tmp_path):
     assert copied["survey"]["geometry"]["mask"] == os.path.join("inputs", "north.fits")
     assert (out / "inputs" / "north.fits").stat().st_size > 0
     assert load_config(str(out / "config.yaml")).hash == load_config(path).hash
-    assert main(["simulate", path, "--n", "2", "--out", str(tmp_path / "m")]) == 2   # not meshed
-    assert not (tmp_path / "m").exists()
+    for cmd in ("simulate", "theory"):       # not meshed; no plane-parallel window to compare
+        extra = ["--n", "2"] if cmd == "simulate" else []
+        assert main([cmd, path, *extra, "--out", str(tmp_path / cmd)]) == 2
+        assert not (tmp_path / cmd).exists()
 
 
 @pytest.mark.parametrize("content, words", [(b"not a map", "not a readable HEALPix FITS map"),
