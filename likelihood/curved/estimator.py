@@ -37,7 +37,8 @@ from .quadrature import composite_gl
 
 __all__ = ["EstimatorResolution", "Shell", "Templates", "BasisKernel", "multipole_templates",
            "monopole_profiles", "radial_field_templates", "radial_field_multipoles",
-           "expected_multipoles", "wigner3j_zero_sq", "resolution_grids", "NodeSpectra"]
+           "expected_multipoles", "wigner3j_zero_sq", "resolution_grids", "NodeSpectra",
+           "radial_projection", "bin_average"]
 
 IC_KINDS = ("none", "global", "radial")
 
@@ -74,6 +75,10 @@ class Shell:
         if out.shape != r.shape or not np.all(np.isfinite(out)) or np.any(out < 0):
             raise ConfigError(f"shell {name}(r): expected finite values >= 0 on the shell")
         return out
+
+    def weight_on(self, r):
+        """w(r) on the nodes ``r`` (ConfigError if not finite and >= 0)."""
+        return self._eval("weight", self.weight, np.asarray(r, dtype=float))
 
 
 @dataclass(frozen=True)
@@ -556,6 +561,11 @@ def _z_at(cosmo, r):
     return hi
 
 
+def bin_average(vals, wk, nb):
+    """Bin averages (…, n_k) → (…, nb) with the k nodes' mode weights ``wk``."""
+    return _bin(vals, wk, nb)
+
+
 def _bin(vals, wk, nb):
     v = vals.reshape(vals.shape[:-1] + (nb, -1))
     return np.einsum("...bn,bn->...b", v, wk)
@@ -690,6 +700,20 @@ def expected_multipoles(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
     return t.combine({}, {})
 
 
+def radial_projection(J, ells, c_j, jk, base):
+    """(2J+1) Σ_ij G_ℓJ(k r_i) base_i c_J(r_i, r_j) base_j j_J(k r_j), (…, n_ell, n_k), for
+    ``jk`` = j_L(k r_i) (L ≤ J + 4, n_k, n_r) and the radial measure ``base`` (see
+    :meth:`NodeSpectra.project`)."""
+    coefs = _g_coefficients(J, ells)
+    right = jk[J] * base[None, :]                                        # (k, r)
+    z = c_j @ right.T                                                    # (..., r, k)
+    out = []
+    for l in ells:
+        left = sum(c * jk[L] for L, c in coefs[l].items()) * base[None, :]
+        out.append(np.einsum("kr,...rk->...k", left, z))
+    return (2 * J + 1) * np.stack(out, axis=-2)
+
+
 class NodeSpectra:
     """The angular spectra of a tracer pair on the estimator's radial nodes, for estimators
     that need C_L(r1, r2) itself rather than the full-sky sum (the angular mask of
@@ -779,15 +803,7 @@ class NodeSpectra:
         (2ℓ+1)·4π/I₂. ``c_j``: (n_r, n_r) or a stack (..., n_r, n_r)."""
         if not hasattr(self, "_jk"):
             self._jk = spherical_jn_all(self.j_max + 5, self.k[:, None] * self.r[None, :])
-        jk, base = self._jk, self.base
-        coefs = _g_coefficients(J, ells)
-        right = jk[J] * base[None, :]                                        # (k, r)
-        z = c_j @ right.T                                                    # (..., r, k)
-        out = []
-        for l in ells:
-            left = sum(c * jk[L] for L, c in coefs[l].items()) * base[None, :]
-            out.append(np.einsum("kr,...rk->...k", left, z))
-        return (2 * J + 1) * np.stack(out, axis=-2)
+        return radial_projection(J, ells, c_j, self._jk, self.base)
 
     def bin(self, vals):
         """Bin averages (…, n_k) → (…, n_bins) with the Gauss nodes' mode weights."""

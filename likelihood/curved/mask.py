@@ -33,14 +33,15 @@ import numpy as np
 
 from ..errors import ConfigError, DataError
 from ..numerics.legendre import legendre_all
-from .bessel import bessel_order_max, bessel_x_min
-from .estimator import IC_KINDS, EstimatorResolution, NodeSpectra, Templates
+from .bessel import bessel_order_max, bessel_x_min, spherical_jn_all
+from .estimator import (IC_KINDS, EstimatorResolution, NodeSpectra, Templates, bin_average,
+                        radial_projection, resolution_grids)
 from .lightcone import ResolutionWarning
 
 __all__ = ["Cap", "HealpixMask", "FULL_SKY", "wigner3j_zero_sq_table", "coupling_matrix",
            "band_limit", "constrained_coupling", "coupled_spectra",
            "masked_templates", "read_healpix_map", "separability", "SeparabilityWarning",
-           "masked_multipoles", "MASK_TOLERANCE"]
+           "masked_multipoles", "masked_radial_field_templates", "MASK_TOLERANCE"]
 
 MASK_TOLERANCE = 1e-4     # default: mask power left beyond the band limit, relative to ∫M²dΩ
 
@@ -443,6 +444,39 @@ def masked_multipoles(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "
     t = masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a, tracer_b, terms_b, ells,
                          ic, resolution, tolerance, combine_pieces=True, snapshot_z=snapshot_z)
     return t.combine({}, {})
+
+
+def masked_radial_field_templates(shell, mask, edges, names, profiles, ells=(0, 2, 4), ic="none",
+                                  resolution=EstimatorResolution(k_nodes=16)):
+    """Pair templates of the masked estimator applied to m = Σ_a x_a m_a, deterministic fields
+    isotropic about the observer (the constrained-field mean field), as
+    likelihood.curved.estimator.radial_field_templates, which this equals for FULL_SKY (tests).
+
+    Exact and cheap: such a field has only a_00(r) = √(4π) m(r), i.e. C_L = δ_L0 C_0 with
+    C_0^{ab}(r1, r2) = 4π m_a(r1) m_b(r2), so C̃_J = M_J0 C_0 = W_J C_0/(4π) plus the integral
+    constraint terms (module docstring with L_max = 0; (J 0 K; 0 0 0)² = δ_JK/(2J+1)); only
+    K = J ≤ J_max of the mask's power enters (no band limit). ``profiles`` (n_a, n_r) on the
+    window nodes of ``resolution`` (those of monopole_profiles)."""
+    edges = np.asarray(edges, dtype=float)
+    j_max, _, (r, wr), (k, wk) = resolution_grids(shell, edges, resolution)
+    w = shell.weight_on(r)
+    base = wr * r ** 2 * w
+    v = base / base.sum()
+    i2 = float(np.sum(wr * r ** 2 * w ** 2)) * mask.m2
+    operators = constrained_coupling(mask, mask.power(j_max), j_max, 0, ic)
+    jk = spherical_jn_all(j_max + 5, k[:, None] * r[None, :])
+    lfac = np.array([(2 * l + 1) * 4 * np.pi / i2 for l in ells])[:, None]
+    m = np.atleast_2d(np.asarray(profiles, dtype=float))
+    out = {}
+    for a, na in enumerate(names):
+        for b in range(a, len(names)):
+            c0 = 4.0 * np.pi * np.outer(m[a], m[b])
+            if b != a:
+                c0 = c0 + c0.T
+            cj = coupled_spectra(c0[None], operators, v, ic)
+            t = sum(radial_projection(j, ells, cj[j], jk, base) for j in range(j_max + 1))
+            out[na, names[b]] = bin_average(lfac * t, wk, edges.size - 1)
+    return out
 
 
 class SeparabilityWarning(UserWarning):
