@@ -19,9 +19,10 @@ the curved-sky route (likelihood.curved; docs/curved_sky.md, "Configuration").
       lensing: true, isw: true, time_delay: true   # integrated terms: curved_sky only
                                                    #   (default on there, off in snapshot mode)
 
-Observer term (effects.observer): available with the none and global integral constraints on the
-full sky; with the radial one it vanishes exactly on the full sky and is refused; with an angular
-mask (cap or map) it is not implemented and is refused.
+Observer term (effects.observer): available with the none and global integral constraints, on the
+full sky or with an angular mask (cap or map); with the radial one it vanishes exactly (the
+field is isotropic about the observer, so each distance's mean inside the mask is the field) and
+is refused.
 
 Integral constraint: the plane-parallel route's ``global`` is the approximate form
 P̂_0(0) W̃²_ℓ(k)/W̃²_0(0) (Peacock & Nicholson 1991); the curved-sky route's ``global`` removes
@@ -128,11 +129,8 @@ def check_engine(cfg, src):
                           "curved_sky (the survey's shell is the window it models); set it true")
     if eff["observer"] and eff["integral_constraint"] == "radial":
         raise ConfigError(f"{src}: effects.observer: with integral_constraint: radial the "
-                          "constrained-field observer term vanishes exactly on the full sky "
-                          "(the radial mean removes every isotropic field); set it false")
-    if eff["observer"] and masked:
-        raise ConfigError(f"{src}: effects.observer: the constrained-field observer term is "
-                          "not implemented with an angular mask (cap or map); set it false")
+                          "constrained-field observer term vanishes exactly (the radial mean "
+                          "inside the mask removes every isotropic field); set it false")
     snapshot = eng.get("snapshot", False)
     for key in INTEGRATED_EFFECTS:
         if snapshot and eff.get(key):

@@ -47,7 +47,8 @@ from ..config.engine import INTEGRATED_EFFECTS
 from ..curved import ResolutionWarning, TracerCoefficients
 from ..curved.estimator import (BasisKernel, EstimatorResolution, Shell, Templates,
                                 monopole_profiles, multipole_templates, radial_field_templates)
-from ..curved.mask import MASK_TOLERANCE, Cap, HealpixMask, masked_templates
+from ..curved.mask import (MASK_TOLERANCE, Cap, HealpixMask, masked_radial_field_templates,
+                           masked_templates)
 from ..curved.quadrature import composite_gl
 from ..io import cache_folder, open_atomic
 from ..observation.matrix import KBins
@@ -456,18 +457,25 @@ class CurvedObserver:
         return monopole_profiles(cosmo, m.shell, m.edges, q, meas, tracer, terms,
                                  self.resolution, m.snapshot_z)
 
+    def _estimate(self, names, profiles):
+        """E_ℓ pair templates of the radial fields: full sky or through the run's mask
+        (likelihood.curved.mask.masked_radial_field_templates: exact, only L = 0 couples)."""
+        m = self.model
+        if m.sky is None:
+            return radial_field_templates(m.shell, m.edges, names, profiles, m.ells, m.ic,
+                                          self.resolution)
+        return masked_radial_field_templates(m.shell, m.sky, m.edges, names, profiles, m.ells,
+                                             m.ic, self.resolution)
+
     def templates(self, cosmo, basis, names):
         """{(a, b): (n_ell, n_bins)} observer templates of the basis kernels (a ≤ b)."""
-        m = self.model
         _, got, prof = self._profiles(cosmo, basis, None)
-        return radial_field_templates(m.shell, m.edges, got, prof, m.ells, m.ic, self.resolution)
+        return self._estimate(got, prof)
 
     def correction(self, cosmo, tracer, terms):
         """E_ℓ[m] (n_ell, n_bins) of one tracer (direct path)."""
-        m = self.model
         _, _, prof = self._profiles(cosmo, tracer, terms)
-        return radial_field_templates(m.shell, m.edges, ["m"], prof.sum(0)[None], m.ells, m.ic,
-                                      self.resolution)["m", "m"]
+        return self._estimate(["m"], prof.sum(0)[None])["m", "m"]
 
 
 class CurvedLikelihood(Likelihood):

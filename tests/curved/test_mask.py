@@ -421,7 +421,8 @@ def test_masked_radial_field(cosmo):
     (radial_field_templates: F_ℓ = 4π(−i)^ℓ ∫ r² w m_IC j_ℓ dr, exact) to 1e-10 for each IC;
     with a cap and no IC it equals a direct quadrature of the estimator over the cap
     (F_ℓ(k) = ∫ d³x M m(r) L_ℓ(k̂·x̂) e^{−ik·x}, averaged over k̂ by Gauss–Legendre × uniform φ
-    points, P̂_ℓ = (2ℓ+1)/I₂ ⟨F_ℓ F_0*⟩; an independent route) to 1e-6 of P̂_0."""
+    points, P̂_ℓ = (2ℓ+1)/I₂ ⟨F_ℓ F_0*⟩; an independent route) to 1e-6 of P̂_0; with the radial
+    IC (each distance's mean inside the mask removed) it vanishes exactly (a limit)."""
     from likelihood.curved.estimator import radial_field_templates, resolution_grids
     from likelihood.curved.mask import masked_radial_field_templates
     shell = Shell(1000.0, 2000.0)
@@ -461,3 +462,7 @@ def test_masked_radial_field(cosmo):
     out *= np.array([1.0, 5.0]) / i2 * wkk[0, 0]
     assert np.max(np.abs(got - out)) < 1e-6 * abs(out[0])
     assert abs(out[1]) > 1e-2 * abs(out[0])
+    # the radial IC removes each distance's mean inside the mask: an isotropic field vanishes
+    zero = masked_radial_field_templates(shell, Cap(f_sky), edges, ["a"], prof[:1], (0, 2),
+                                         "radial", res)["a", "a"]
+    assert np.abs(zero).max() < 1e-10 * scale

@@ -115,7 +115,8 @@ def test_plane_parallel_hash_unchanged_by_engine_section(write_config):
                                                                  "radius": 3000.0, "r_min": None,
                                                                  "r_max": None}}},
      "survey.geometry.shape"),
-    ({"engine": {"kind": "curved_sky"}, "effects": {"observer": True},
+    ({"engine": {"kind": "curved_sky"}, "effects": {"observer": True,
+                                                    "integral_constraint": "radial"},
       "survey": {"geometry": {"shape": "cap", "r_min": 1950.0, "r_max": 3140.0, "fsky": 0.5}}},
      "effects.observer"),
     ({"engine": {"kind": "curved_sky", "mask_tolerance": 1e-3}}, "engine.mask_tolerance"),
@@ -227,11 +228,16 @@ CAP = {"survey": {"geometry": {"shape": "cap", "r_min": 1950.0, "r_max": 3140.0,
     {},                                                                        # global IC
     {"effects": {"integral_constraint": "radial"}, **FREE_BE_S},
     {"effects": {"integral_constraint": "none"}, "engine": {"snapshot": True}},
+    {"effects": {"observer": True}, "observer": {"nu_true": 1.5},                 # observer term
+     "parameters": {"b1": {"flat": [0.5, 5.0], "start": 2.0},
+                    "fnl": {"flat": [-50, 50], "start": 1.0},
+                    "nu_obs": {"gauss": [0, 1], "start": 1.0},
+                    "shot_noise": {"flat": [0, 3], "start": 1.0}}},
 ])
 def test_cap_fast_path_equals_direct_engine_run(write_config, extra):
-    """A polar cap (shape: cap, f_sky = 0.25): the masked basis templates reproduce a direct
-    masked run of the engine at the parameter values to 1e-10 (exact algebra, as on the full
-    sky); the mode-count volume is the cap's."""
+    """A polar cap (shape: cap, f_sky = 0.25): the masked basis templates (and the masked
+    observer templates) reproduce a direct masked run of the engine at the parameter values to
+    1e-10 (exact algebra, as on the full sky); the mode-count volume is the cap's."""
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         lik = build(_curved(write_config, CAP, extra))
