@@ -36,9 +36,10 @@ def _one_sample(cfg, command):
 
 
 def cmd_theory(args):
-    from ..report.theory import spectra_theory_report, theory_report
+    from ..report.theory import check_theory, spectra_theory_report, theory_report
     from ..config.schema import load_config
     cfg = _one_sample(load_config(args.config), "theory")
+    check_theory(cfg)
     out = os.path.join(_out_dir(args.out or cfg.output_folder), "theory.txt")
     report = spectra_theory_report if "tracers" in cfg else theory_report
     for line in report(cfg, out, fnl=args.fnl):

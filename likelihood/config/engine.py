@@ -10,13 +10,19 @@ the curved-sky route (likelihood.curved; docs/curved_sky.md, "Configuration").
       tracer_table: FILE                       # or: the redshift dependence of b1, b_e, s from
                                                #   a table (columns z b1 b_e s; model/curved.py)
       resolution: {j_factor, q_range, q_density, r_density, k_nodes}
+      mask_tolerance: 1e-4                     # angular mask power left beyond the band limit
+                                               #   (likelihood.curved.mask.masked_templates)
+    survey.geometry (curved_sky): shape: shell (full sky, or a HEALPix map: mask: FILE, needs
+      the optional extra healpix) or shape: cap (r_min, r_max, fsky: a polar cap)
     effects:
       integral_constraint: none | global | radial  # radial: curved_sky only
       lensing: true, isw: true, time_delay: true   # integrated terms: curved_sky only
                                                    #   (default on there, off in snapshot mode)
 
-Observer term (effects.observer): available with the none and global integral constraints; with
-the radial one it vanishes exactly on the full sky and is refused.
+Observer term (effects.observer): available with the none and global integral constraints, on the
+full sky or with an angular mask (cap or map); with the radial one it vanishes exactly (the
+field is isotropic about the observer, so each distance's mean inside the mask is the field) and
+is refused.
 
 Integral constraint: the plane-parallel route's ``global`` is the approximate form
 P̂_0(0) W̃²_ℓ(k)/W̃²_0(0) (Peacock & Nicholson 1991); the curved-sky route's ``global`` removes
@@ -40,7 +46,9 @@ INTEGRATED_EFFECTS = ("lensing", "isw", "time_delay")
 RESOLUTION = {"j_factor": (1.0, 0.5, 4.0), "q_range": (1.0, 0.5, 4.0),
               "q_density": (1.0, 0.5, 4.0), "r_density": (1.0, 0.5, 4.0),
               "k_nodes": (4, 2, 16)}
-CURVED_KEYS = ("snapshot", "bias_evolution", "resolution", "tracer_table")
+CURVED_KEYS = ("snapshot", "bias_evolution", "resolution", "tracer_table", "mask_tolerance")
+#: curved_sky geometries: a full-sky shell (optionally with a HEALPix mask) or a polar cap
+CURVED_SHAPES = ("shell", "cap")
 
 
 def table_path(val, where):
@@ -95,20 +103,34 @@ def check_engine(cfg, src):
         if eff["integral_constraint"] == "radial":
             raise ConfigError(f"{src}: effects.integral_constraint: radial needs engine.kind: "
                               "curved_sky; the plane-parallel engine has none or global")
+        if "mask" in cfg["survey"]["geometry"]:
+            raise ConfigError(f"{src}: survey.geometry.mask: a HEALPix mask is modelled by "
+                              "engine.kind: curved_sky only; the plane-parallel engine takes a "
+                              "window from randoms (shape: randoms)")
         cfg["engine"] = {}
         return
-    shape = cfg["survey"]["geometry"]["shape"]
-    if shape != "shell":
+    geo = cfg["survey"]["geometry"]
+    shape = geo["shape"]
+    if shape not in CURVED_SHAPES:
         raise ConfigError(f"{src}: survey.geometry.shape: '{shape}' is not available with "
-                          "engine.kind: curved_sky, which models a full-sky radial selection; "
-                          "use shape: shell (angular masks and n(z) tables are not implemented yet)")
+                          "engine.kind: curved_sky, which models a radial selection times an "
+                          "angular mask; use shape: shell (full sky, or mask: a HEALPix map) or "
+                          "shape: cap (n(z) tables and masks from randoms are not implemented yet)")
+    masked = "mask" in geo or (shape == "cap" and geo["fsky"] < 1.0)
+    if "mask" in geo:
+        try:
+            import healpy  # noqa: F401
+        except ImportError:
+            raise ConfigError(f"{src}: survey.geometry.mask: a HEALPix mask needs healpy, the "
+                              "optional extra 'healpix' (pip install \"ergofit[healpix]\")") \
+                from None
     if not eff["window"]:
         raise ConfigError(f"{src}: effects.window: false is not possible with engine.kind: "
                           "curved_sky (the survey's shell is the window it models); set it true")
     if eff["observer"] and eff["integral_constraint"] == "radial":
         raise ConfigError(f"{src}: effects.observer: with integral_constraint: radial the "
-                          "constrained-field observer term vanishes exactly on the full sky "
-                          "(the radial mean removes every isotropic field); set it false")
+                          "constrained-field observer term vanishes exactly (the radial mean "
+                          "inside the mask removes every isotropic field); set it false")
     snapshot = eng.get("snapshot", False)
     for key in INTEGRATED_EFFECTS:
         if snapshot and eff.get(key):
@@ -128,3 +150,8 @@ def check_engine(cfg, src):
                      "resolution": eng.get("resolution", resolution({}, ""))}
     if table:
         cfg["engine"]["tracer_table"] = table
+    if "mask_tolerance" in eng:
+        if not masked:
+            raise ConfigError(f"{src}: engine.mask_tolerance applies to an angular mask "
+                              "(shape: cap, or shape: shell with mask: FILE); remove it")
+        cfg["engine"]["mask_tolerance"] = eng["mask_tolerance"]

@@ -16,7 +16,8 @@ The vocabulary (all sections but ``survey`` optional)::
     cosmology:  {preset, overrides: {h, omega_b, omega_c, n_s, ln_1e10_As | sigma8, w, m_nu},
                  transfer: eh98 | eh98_nowiggle | table, table: FILE, table_kind: power | transfer}
     survey:     {redshift, nbar, geometry: {shape: box | sphere | shell | cap | randoms | window,
-                 volume | radius | r_min, r_max | fsky | randoms: FILE | file: FILE [, volume]}}
+                 volume | radius | r_min, r_max | fsky | randoms: FILE | file: FILE [, volume]
+                 [, mask: FILE (shell, curved_sky: a HEALPix map)]}}
     tracer:     {b1, fnl, p, b_e, s}
     tracers:    [{name, nbar, b1, p, b_e, s}, ...]   several populations (replaces tracer and
     spectra:    [{pair: [X, Y], ells, k_min, k_max, shared_nbar}, ...]   survey.nbar; see
@@ -26,7 +27,7 @@ The vocabulary (all sections but ``survey`` optional)::
     effects:    {rsd, fnl, doppler, potential, window, integral_constraint: none | global | radial,
                  observer, lensing, isw, time_delay}   (radial and the last three: curved_sky)
     engine:     {kind: plane_parallel | curved_sky, snapshot, bias_evolution | tracer_table: FILE,
-                 resolution}
+                 resolution, mask_tolerance}
                 (see likelihood.config.engine)
     observer:   {field: potential | density, smoothing, k_ir, nu_true}
     data:       {file: FILE | mock: {seed, noise, truth: {...}, k_min, k_max, n_bins},
@@ -311,6 +312,7 @@ SCHEMA = {
         "bias_evolution": (_choice(*BIAS_EVOLUTION), None),
         "resolution": (engine_resolution, None),
         "tracer_table": (engine_table, None),
+        "mask_tolerance": (_num(0.0, 0.1, lo_open=True), None),
     },
     "observer": {
         "field": (_choice("potential", "density"), "potential"),
@@ -359,7 +361,8 @@ SCHEMA = {
 GEOMETRY = {
     "box": {"shape": None, "volume": _num(0.0, V_MAX, lo_open=True)},
     "sphere": {"shape": None, "radius": _num(0.0, R_MAX, lo_open=True)},
-    "shell": {"shape": None, "r_min": _num(0.0, R_MAX), "r_max": _num(0.0, R_MAX, lo_open=True)},
+    "shell": {"shape": None, "r_min": _num(0.0, R_MAX), "r_max": _num(0.0, R_MAX, lo_open=True),
+              "mask": _str},     # a HEALPix map of the angular mask (curved_sky only)
     "cap": {"shape": None, "r_min": _num(0.0, R_MAX), "r_max": _num(0.0, R_MAX, lo_open=True),
             "fsky": _num(0.0, 1.0, lo_open=True)},
     "randoms": {"shape": None, "randoms": _str},
@@ -367,9 +370,9 @@ GEOMETRY = {
     "window": {"shape": None, "file": _str, "volume": _num(0.0, V_MAX, lo_open=True)},
 }
 #: geometry keys that are optional (all others are required for their shape)
-GEOMETRY_OPTIONAL = {("window", "volume")}
+GEOMETRY_OPTIONAL = {("window", "volume"), ("shell", "mask")}
 #: geometry keys that name an input file (hashed by contents, copied into the run folder)
-GEOMETRY_FILES = ("randoms", "file")
+GEOMETRY_FILES = ("randoms", "file", "mask")
 
 MOCK = {"seed": (_num(0, integer=True), 1), "noise": (_bool, True), "truth": (_mapping, {}),
         "k_min": (_num(0.0, lo_open=True), 0.002), "k_max": (_num(0.0, lo_open=True), 0.05),

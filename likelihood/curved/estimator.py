@@ -37,7 +37,8 @@ from .quadrature import composite_gl
 
 __all__ = ["EstimatorResolution", "Shell", "Templates", "BasisKernel", "multipole_templates",
            "monopole_profiles", "radial_field_templates", "radial_field_multipoles",
-           "expected_multipoles", "wigner3j_zero_sq", "resolution_grids"]
+           "expected_multipoles", "wigner3j_zero_sq", "resolution_grids", "NodeSpectra",
+           "radial_projection", "bin_average"]
 
 IC_KINDS = ("none", "global", "radial")
 
@@ -74,6 +75,10 @@ class Shell:
         if out.shape != r.shape or not np.all(np.isfinite(out)) or np.any(out < 0):
             raise ConfigError(f"shell {name}(r): expected finite values >= 0 on the shell")
         return out
+
+    def weight_on(self, r):
+        """w(r) on the nodes ``r`` (ConfigError if not finite and >= 0)."""
+        return self._eval("weight", self.weight, np.asarray(r, dtype=float))
 
 
 @dataclass(frozen=True)
@@ -556,6 +561,11 @@ def _z_at(cosmo, r):
     return hi
 
 
+def bin_average(vals, wk, nb):
+    """Bin averages (…, n_k) → (…, nb) with the k nodes' mode weights ``wk``."""
+    return _bin(vals, wk, nb)
+
+
 def _bin(vals, wk, nb):
     v = vals.reshape(vals.shape[:-1] + (nb, -1))
     return np.einsum("...bn,bn->...b", v, wk)
@@ -690,6 +700,20 @@ def expected_multipoles(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
     return t.combine({}, {})
 
 
+def radial_projection(J, ells, c_j, jk, base):
+    """(2J+1) Σ_ij G_ℓJ(k r_i) base_i c_J(r_i, r_j) base_j j_J(k r_j), (…, n_ell, n_k), for
+    ``jk`` = j_L(k r_i) (L ≤ J + 4, n_k, n_r) and the radial measure ``base`` (see
+    :meth:`NodeSpectra.project`)."""
+    coefs = _g_coefficients(J, ells)
+    right = jk[J] * base[None, :]                                        # (k, r)
+    z = c_j @ right.T                                                    # (..., r, k)
+    out = []
+    for l in ells:
+        left = sum(c * jk[L] for L, c in coefs[l].items()) * base[None, :]
+        out.append(np.einsum("kr,...rk->...k", left, z))
+    return (2 * J + 1) * np.stack(out, axis=-2)
+
+
 class NodeSpectra:
     """The angular spectra of a tracer pair on the estimator's radial nodes, for estimators
     that need C_L(r1, r2) itself rather than the full-sky sum (the angular mask of
@@ -699,7 +723,9 @@ class NodeSpectra:
 
     (docs/curved_sky.md §1; Heavens & Taylor 1995), W_L^a the kernel of piece a of tracer A
     (tracer B for b), on the grids of :func:`resolution_grids` (the same J_max, q, r and k nodes
-    as :func:`multipole_templates`). Arguments as :func:`multipole_templates`.
+    as :func:`multipole_templates`). Arguments as :func:`multipole_templates`: tracers given as
+    TracerCoefficients with terms, or as sequences of :class:`BasisKernel` (the pieces are then
+    the basis kernels, named by their names: the templates of the curved forward model).
 
     Attributes: ``j_max``, ``q``/``wq``, ``r``/``wr``, ``k``/``wk`` (grids), ``weight`` w(r_i),
     ``base`` = ωr r² w (the radial measure of the estimator), ``names_a``/``names_b`` (pieces,
@@ -714,35 +740,17 @@ class NodeSpectra:
         if edges.ndim != 1 or edges.size < 2 or edges[0] <= 0 or np.any(np.diff(edges) <= 0):
             raise ConfigError("edges: expected increasing positive k bin edges in h/Mpc")
         self.auto = tracer_b is None
-        terms_a = check_terms(terms_a)
-        terms_b = terms_a if terms_b is None else check_terms(terms_b)
-        tracer_b = tracer_a if self.auto else tracer_b
         self.shell, self.edges, self.resolution = shell, edges, resolution
         self.j_max, (self.q, self.wq), (self.r, self.wr), (self.k, self.wk) = \
             resolution_grids(shell, edges, resolution)
         r, q = self.r, self.q
-        cone = LightCone(cosmo, _z_at(cosmo, shell.r_max) * 1.01 + 0.01)
         self.weight = shell._eval("weight", shell.weight, r)
         self.base = self.wr * r ** 2 * self.weight
         self.meas = (2.0 / np.pi) * self.wq * q * q * np.asarray(cosmo.power(q, 0.0), dtype=float)
-        self.need_int = any(t in INTEGRATED_TERMS for t in terms_a + terms_b)
-        snap_r = None
-        if snapshot_z is not None:
-            try:
-                z_snap = float(snapshot_z)
-            except (TypeError, ValueError):
-                raise ConfigError(f"snapshot_z = {snapshot_z!r}: expected a redshift") from None
-            if not 0.0 < z_snap < 0.99 * cone.z_max:
-                raise ConfigError(f"snapshot_z = {snapshot_z}: expected 0 < z < "
-                                  f"{0.99 * cone.z_max:.3g}")
-            if self.need_int:
-                raise ConfigError("snapshot_z: the snapshot mode has local terms only; drop "
-                                  f"{[t for t in terms_a + terms_b if t in INTEGRATED_TERMS]}")
-            snap_r = float(cosmo.comoving_distance(z_snap))
-        self.los = _LineOfSight(r, shell.r_min, shell.r_max, cone) if self.need_int else None
-        self.sets = [_kernel_set(cone, cosmo, r, q, self.los, tracer_a, terms_a, snap_r)]
-        self.sets.append(self.sets[0] if self.auto else
-                         _kernel_set(cone, cosmo, r, q, self.los, tracer_b, terms_b, snap_r))
+        sides = _kernel_sides(cosmo, shell, r, q, tracer_a, terms_a, tracer_b, terms_b,
+                              snapshot_z)
+        self.sets, self.all_sets, self.los = sides.sets, sides.all_sets, sides.los
+        self.need_int = sides.need_int
         self.combine = bool(combine_pieces)
         self.names_a = ["total"] if self.combine else self.sets[0].names
         self.names_b = ["total"] if self.combine else self.sets[1].names
@@ -771,23 +779,18 @@ class NodeSpectra:
             qb = q[q0:q0 + blk_size]
             n_top = min(l_top, bessel_order_max(float(qb[-1]) * rmax))
             jq = spherical_jn_all(n_top + 1, qb[:, None] * r[None, :])
-            jn, near = None, {}
-            if self.need_int:
-                nodes, weights, bgn = self.los.near_grid(float(qb[-1]))
-                jn = spherical_jn_all(n_top, qb[:, None] * nodes[None, :]) if nodes.size else None
-                for kset in self.sets:
-                    for parts in kset.integ.values():
-                        for part, _ in parts:
-                            near[id(part)] = weights * part.inner(bgn) if nodes.size else weights
+            jn, near = (_near_integrals(self.los, self.all_sets, qb, n_top) if self.need_int
+                        else (None, {}))
             for L in range(n_top + 1):
                 qa = int(np.searchsorted(qb * rmax, bessel_x_min(max(L - 1, 0))))
                 if qa >= qb.size:
                     continue
                 sl = slice(q0 + qa, q0 + qb.size)
                 blk = (qb[qa:], r, jq[:, qa:], None if jn is None else jn[:, qa:], near)
-                WA = _kernels(L, self.sets[0], blk, sl, self.los, None, "none", self.combine)
-                WB = WA if self.auto else _kernels(L, self.sets[1], blk, sl, self.los, None,
-                                                   "none", self.combine)
+                WA = _side_kernels(L, self.sets[0], blk, sl, self.los, None, "none",
+                                   self.combine)
+                WB = WA if self.auto else _side_kernels(L, self.sets[1], blk, sl, self.los, None,
+                                                        "none", self.combine)
                 left = {a: (WA[a] * self.meas[sl][:, None]).T for a in ia_set}   # (r, q)
                 for a, b in pairs:
                     out[a, b][L] += left[a] @ WB[b]
@@ -800,15 +803,7 @@ class NodeSpectra:
         (2ℓ+1)·4π/I₂. ``c_j``: (n_r, n_r) or a stack (..., n_r, n_r)."""
         if not hasattr(self, "_jk"):
             self._jk = spherical_jn_all(self.j_max + 5, self.k[:, None] * self.r[None, :])
-        jk, base = self._jk, self.base
-        coefs = _g_coefficients(J, ells)
-        right = jk[J] * base[None, :]                                        # (k, r)
-        z = c_j @ right.T                                                    # (..., r, k)
-        out = []
-        for l in ells:
-            left = sum(c * jk[L] for L, c in coefs[l].items()) * base[None, :]
-            out.append(np.einsum("kr,...rk->...k", left, z))
-        return (2 * J + 1) * np.stack(out, axis=-2)
+        return radial_projection(J, ells, c_j, self._jk, self.base)
 
     def bin(self, vals):
         """Bin averages (…, n_k) → (…, n_bins) with the Gauss nodes' mode weights."""

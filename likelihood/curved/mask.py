@@ -33,13 +33,15 @@ import numpy as np
 
 from ..errors import ConfigError, DataError
 from ..numerics.legendre import legendre_all
-from .bessel import bessel_order_max, bessel_x_min
-from .estimator import IC_KINDS, EstimatorResolution, NodeSpectra, Templates
+from .bessel import bessel_order_max, bessel_x_min, spherical_jn_all
+from .estimator import (IC_KINDS, EstimatorResolution, NodeSpectra, Templates, bin_average,
+                        radial_projection, resolution_grids)
 from .lightcone import ResolutionWarning
 
 __all__ = ["Cap", "HealpixMask", "FULL_SKY", "wigner3j_zero_sq_table", "coupling_matrix",
            "band_limit", "constrained_coupling", "coupled_spectra",
-           "masked_templates", "separability", "SeparabilityWarning", "masked_multipoles", "MASK_TOLERANCE"]
+           "masked_templates", "read_healpix_map", "separability", "SeparabilityWarning",
+           "masked_multipoles", "masked_radial_field_templates", "MASK_TOLERANCE"]
 
 MASK_TOLERANCE = 1e-4     # default: mask power left beyond the band limit, relative to ∫M²dΩ
 
@@ -178,8 +180,8 @@ class HealpixMask:
         try:
             import healpy
         except ImportError:
-            raise ConfigError(f"{source}: a HEALPix mask needs healpy (pip install healpy)") \
-                from None
+            raise ConfigError(f"{source}: a HEALPix mask needs healpy (pip install "
+                              "\"ergofit[healpix]\")") from None
         self._hp = healpy
         m = np.asarray(values, dtype=float)
         if m.ndim != 1 or not healpy.isnpixok(m.size):
@@ -209,22 +211,13 @@ class HealpixMask:
     def from_file(cls, path, lmax=None):
         """The mask in a HEALPix FITS file (first column; ordering from its header, as
         healpy.read_map reads it); one-line DataError naming the file if it cannot be read."""
-        try:
-            import healpy
-        except ImportError:
-            raise ConfigError(f"{path}: a HEALPix mask needs healpy (pip install healpy)") \
-                from None
-        import os
-        if not os.path.isfile(path):
-            raise DataError(f"{path}: HEALPix mask file not found")
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                values = healpy.read_map(path, field=0, nest=False, dtype=float)
-        except Exception as exc:  # noqa: BLE001 - any reader failure becomes one line
-            raise DataError(f"{path}: not a readable HEALPix FITS map "
-                            f"({type(exc).__name__}: {str(exc).splitlines()[0][:80]})") from None
-        return cls(np.asarray(values, dtype=float), lmax=lmax, source=str(path))
+        return cls(read_healpix_map(path), lmax=lmax, source=str(path))
+
+    def mode_fraction(self):
+        """f = (∫M² dΩ)²/(4π ∫M⁴ dΩ): the sky fraction of the mode count (= f_sky for a binary
+        mask; the weighted-volume rule of Feldman, Kaiser & Peacock 1994 applied to M)."""
+        pix = 4.0 * np.pi / self.map.size
+        return self.m2 ** 2 / (4.0 * np.pi * float(np.sum(self.map ** 4) * pix))
 
     def _pad(self, arr, k_max):
         out = np.zeros(k_max + 1)
@@ -263,6 +256,28 @@ class HealpixMask:
 
     def describe(self):
         return f"HEALPix map {self.source} (nside {self.nside}, f_sky {self.area / 4 / np.pi:.3g})"
+
+
+def read_healpix_map(path):
+    """The values of a HEALPix FITS map (first column, RING order; healpy.read_map converts a
+    NESTED map by its header); one-line errors naming the file (ConfigError naming the
+    ``healpix`` extra when healpy is missing, DataError when unreadable)."""
+    try:
+        import healpy
+    except ImportError:
+        raise ConfigError(f"{path}: a HEALPix mask needs healpy (pip install "
+                          "\"ergofit[healpix]\")") from None
+    import os
+    if not os.path.isfile(path):
+        raise DataError(f"{path}: HEALPix mask file not found")
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            values = healpy.read_map(path, field=0, nest=False, dtype=float)
+    except Exception as exc:  # noqa: BLE001 - any reader failure becomes one line
+        raise DataError(f"{path}: not a readable HEALPix FITS map "
+                        f"({type(exc).__name__}: {str(exc).splitlines()[0][:80]})") from None
+    return np.asarray(values, dtype=float)
 
 
 def constrained_coupling(mask, power, j_max, l_max, ic):
@@ -429,6 +444,39 @@ def masked_multipoles(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "
     t = masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a, tracer_b, terms_b, ells,
                          ic, resolution, tolerance, combine_pieces=True, snapshot_z=snapshot_z)
     return t.combine({}, {})
+
+
+def masked_radial_field_templates(shell, mask, edges, names, profiles, ells=(0, 2, 4), ic="none",
+                                  resolution=EstimatorResolution(k_nodes=16)):
+    """Pair templates of the masked estimator applied to m = Σ_a x_a m_a, deterministic fields
+    isotropic about the observer (the constrained-field mean field), as
+    likelihood.curved.estimator.radial_field_templates, which this equals for FULL_SKY (tests).
+
+    Exact and cheap: such a field has only a_00(r) = √(4π) m(r), i.e. C_L = δ_L0 C_0 with
+    C_0^{ab}(r1, r2) = 4π m_a(r1) m_b(r2), so C̃_J = M_J0 C_0 = W_J C_0/(4π) plus the integral
+    constraint terms (module docstring with L_max = 0; (J 0 K; 0 0 0)² = δ_JK/(2J+1)); only
+    K = J ≤ J_max of the mask's power enters (no band limit). ``profiles`` (n_a, n_r) on the
+    window nodes of ``resolution`` (those of monopole_profiles)."""
+    edges = np.asarray(edges, dtype=float)
+    j_max, _, (r, wr), (k, wk) = resolution_grids(shell, edges, resolution)
+    w = shell.weight_on(r)
+    base = wr * r ** 2 * w
+    v = base / base.sum()
+    i2 = float(np.sum(wr * r ** 2 * w ** 2)) * mask.m2
+    operators = constrained_coupling(mask, mask.power(j_max), j_max, 0, ic)
+    jk = spherical_jn_all(j_max + 5, k[:, None] * r[None, :])
+    lfac = np.array([(2 * l + 1) * 4 * np.pi / i2 for l in ells])[:, None]
+    m = np.atleast_2d(np.asarray(profiles, dtype=float))
+    out = {}
+    for a, na in enumerate(names):
+        for b in range(a, len(names)):
+            c0 = 4.0 * np.pi * np.outer(m[a], m[b])
+            if b != a:
+                c0 = c0 + c0.T
+            cj = coupled_spectra(c0[None], operators, v, ic)
+            t = sum(radial_projection(j, ells, cj[j], jk, base) for j in range(j_max + 1))
+            out[na, names[b]] = bin_average(lfac * t, wk, edges.size - 1)
+    return out
 
 
 class SeparabilityWarning(UserWarning):

@@ -47,6 +47,8 @@ from ..config.engine import INTEGRATED_EFFECTS
 from ..curved import ResolutionWarning, TracerCoefficients
 from ..curved.estimator import (BasisKernel, EstimatorResolution, Shell, Templates,
                                 monopole_profiles, multipole_templates, radial_field_templates)
+from ..curved.mask import (MASK_TOLERANCE, Cap, HealpixMask, masked_radial_field_templates,
+                           masked_templates)
 from ..curved.quadrature import composite_gl
 from ..io import cache_folder, open_atomic
 from ..observation.matrix import KBins
@@ -127,6 +129,28 @@ class TracerTable:
         return lambda z: f(z) - ref
 
 
+def sky_mask(cfg):
+    """The angular mask of a curved-sky run: None (full-sky shell), a :class:`Cap`
+    (shape: cap with fsky < 1) or a :class:`HealpixMask` (shape: shell, mask: FILE)."""
+    geo = cfg["survey"]["geometry"]
+    if geo["shape"] == "cap" and geo["fsky"] < 1.0:
+        return Cap(geo["fsky"])
+    if "mask" in geo:
+        return HealpixMask.from_file(cfg.resolve(geo["mask"]))
+    return None
+
+
+def sky_fingerprint(sky):
+    """What defines the mask in a cache key: None, the cap's f_sky, or the map's content hash
+    (values, and the K up to which its power is used)."""
+    if sky is None:
+        return None
+    if isinstance(sky, Cap):
+        return ["cap", float(sky.f_sky)]
+    return ["healpix", hashlib.sha256(np.ascontiguousarray(sky.map).tobytes()).hexdigest(),
+            int(sky.lmax)]
+
+
 def _z_of(cosmo, r):
     """Redshift of the comoving distance r [Mpc/h] (bisection on the cosmology's χ(z))."""
     from scipy.optimize import brentq
@@ -144,7 +168,8 @@ class CurvedOperator:
 
 
 class CurvedForwardModel:
-    """The model data vector of a full-sky shell from the curved-sky engine (module docstring).
+    """The model data vector of a shell, on the full sky or with an angular mask (a polar cap or
+    a HEALPix map: likelihood.curved.mask), from the curved-sky engine (module docstring).
 
     Same public surface as :class:`~likelihood.model.templates.ForwardModel`: ``templates``,
     ``design``, ``coefficients``, ``full``, ``kernel`` and the attributes the likelihood reads.
@@ -166,6 +191,8 @@ class CurvedForwardModel:
             self.table = TracerTable(cfg.resolve(eng["tracer_table"]), z_lo, z_hi)
         self.resolution = EstimatorResolution(**eng["resolution"])
         self.shell = Shell(geo["r_min"], geo["r_max"], nbar=srv.nbar)
+        self.sky = sky_mask(cfg)
+        self.mask_tolerance = eng.get("mask_tolerance", MASK_TOLERANCE)
         self.edges, self.ells, self.n_bins = dv.edges, tuple(dv.ells), dv.edges.size - 1
         self.operator = CurvedOperator(KBins(dv.edges, dv.k_eff, dv.n_modes), self.ic)
         self.observer = observer
@@ -233,17 +260,28 @@ class CurvedForwardModel:
         return x
 
     # --- templates ------------------------------------------------------------------------------
+    def engine_templates(self, cosmo, tracer, terms, combine=False, snapshot_z=None):
+        """The engine's Templates for this run's window: the full-sky estimator
+        (likelihood.curved.estimator.multipole_templates) or, with an angular mask, the masked
+        one (likelihood.curved.mask.masked_templates, band-limit tolerance
+        ``engine.mask_tolerance``)."""
+        run = dict(ells=self.ells, ic=self.ic, resolution=self.resolution,
+                   combine_pieces=combine, snapshot_z=snapshot_z)
+        if self.sky is None:
+            return multipole_templates(cosmo, self.shell, self.edges, tracer, terms, **run)
+        return masked_templates(cosmo, self.shell, self.sky, self.edges, tracer, terms,
+                                tolerance=self.mask_tolerance, **run)
+
     def _engine(self, cosmo, tracer, combine):
         """One engine run; its ResolutionWarnings are re-issued naming the config key."""
         with warnings.catch_warnings(record=True) as rec:
             warnings.simplefilter("always", ResolutionWarning)
-            t = multipole_templates(cosmo, self.shell, self.edges, tracer, self.terms,
-                                    ells=self.ells, ic=self.ic, resolution=self.resolution,
-                                    combine_pieces=combine, snapshot_z=self.snapshot_z)
+            t = self.engine_templates(cosmo, tracer, self.terms, combine, self.snapshot_z)
         for w in rec:
             msg = str(w.message)
             if issubclass(w.category, ResolutionWarning):
-                msg += " (config: engine.resolution)"
+                msg += (" (config: survey.geometry.mask)" if "raise lmax" in msg
+                        else " (config: engine.resolution)")
             warnings.warn(msg, w.category, stacklevel=3)
         return t
 
@@ -261,7 +299,8 @@ class CurvedForwardModel:
                     held=[self.held["b_e"], self.held["s"]], p=self.p, z=self.z,
                     evolution=self.evolution, snapshot=self.snapshot_z,
                     table=None if self.table is None else self.table.data.tolist(),
-                    resolution=repr(self.resolution))
+                    resolution=repr(self.resolution), sky=sky_fingerprint(self.sky),
+                    mask_tolerance=None if self.sky is None else self.mask_tolerance)
         return hashlib.sha256(json.dumps(spec, sort_keys=True).encode()).hexdigest()
 
     def basis(self, cosmo):
@@ -418,18 +457,25 @@ class CurvedObserver:
         return monopole_profiles(cosmo, m.shell, m.edges, q, meas, tracer, terms,
                                  self.resolution, m.snapshot_z)
 
+    def _estimate(self, names, profiles):
+        """E_ℓ pair templates of the radial fields: full sky or through the run's mask
+        (likelihood.curved.mask.masked_radial_field_templates: exact, only L = 0 couples)."""
+        m = self.model
+        if m.sky is None:
+            return radial_field_templates(m.shell, m.edges, names, profiles, m.ells, m.ic,
+                                          self.resolution)
+        return masked_radial_field_templates(m.shell, m.sky, m.edges, names, profiles, m.ells,
+                                             m.ic, self.resolution)
+
     def templates(self, cosmo, basis, names):
         """{(a, b): (n_ell, n_bins)} observer templates of the basis kernels (a ≤ b)."""
-        m = self.model
         _, got, prof = self._profiles(cosmo, basis, None)
-        return radial_field_templates(m.shell, m.edges, got, prof, m.ells, m.ic, self.resolution)
+        return self._estimate(got, prof)
 
     def correction(self, cosmo, tracer, terms):
         """E_ℓ[m] (n_ell, n_bins) of one tracer (direct path)."""
-        m = self.model
         _, _, prof = self._profiles(cosmo, tracer, terms)
-        return radial_field_templates(m.shell, m.edges, ["m"], prof.sum(0)[None], m.ells, m.ic,
-                                      self.resolution)["m", "m"]
+        return self._estimate(["m"], prof.sum(0)[None])["m", "m"]
 
 
 class CurvedLikelihood(Likelihood):
@@ -447,9 +493,10 @@ class CurvedLikelihood(Likelihood):
     def describe(self):
         f = self.forward
         mode = f"snapshot at z = {f.snapshot_z:g}" if f.snapshot_z is not None else "light cone"
-        return (super().describe() + f"\nengine: curved sky ({mode}), full-sky shell "
-                f"{f.shell.r_min:g}-{f.shell.r_max:g} Mpc/h, terms {', '.join(f.terms)}, exact "
-                f"{f.ic} integral constraint, bias evolution {f.evolution}")
+        sky = "full sky" if f.sky is None else f.sky.describe()
+        return (super().describe() + f"\nengine: curved sky ({mode}), shell "
+                f"{f.shell.r_min:g}-{f.shell.r_max:g} Mpc/h, {sky}, terms {', '.join(f.terms)}, "
+                f"exact {f.ic} integral constraint, bias evolution {f.evolution}")
 
 
 def warn_regime(dv, mask):

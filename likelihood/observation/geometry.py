@@ -67,6 +67,14 @@ def window_and_volume(cfg, cosmo=None):
         return None, geo["volume"]
     if shape == "sphere":
         w = win.SphereWindow(geo["radius"])
+    elif shape == "shell" and "mask" in geo:
+        # a HEALPix mask (curved_sky only): no plane-parallel window; the mode-count volume is
+        # the shell's times the mask's mode fraction (likelihood.curved.mask)
+        from ..curved.mask import HealpixMask, read_healpix_map
+        w = win.ShellWindow(geo["r_min"], geo["r_max"])
+        sky = HealpixMask(read_healpix_map(cfg.resolve(geo["mask"])), lmax=1,
+                          source=geo["mask"])
+        return None, w.volume * sky.mode_fraction()
     elif shape == "shell":
         w = win.ShellWindow(geo["r_min"], geo["r_max"])
     elif shape == "cap":

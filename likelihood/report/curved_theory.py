@@ -21,8 +21,8 @@ import warnings
 
 import numpy as np
 
-from ..curved.estimator import multipole_templates
 from ..curved.lightcone import INTEGRATED_TERMS, LOCAL_TERMS
+from ..errors import ConfigError
 from ..io import open_atomic, save_figure
 from ..model import factories
 from ..model.fiducial import make_tracer
@@ -37,9 +37,19 @@ def _partial(t, names):
     return sum(v for (a, b), v in t.pairs.items() if a in names and b in names).ravel()
 
 
+def check_comparable(cfg):
+    """ConfigError (one line) when the run has no plane-parallel counterpart: a HEALPix mask
+    gives no plane-parallel window."""
+    if "mask" in cfg["survey"]["geometry"]:
+        raise ConfigError(f"{cfg.path}: survey.geometry.mask: the plane-parallel comparison "
+                          "needs a plane-parallel window, which a HEALPix map does not give "
+                          "(use shape: cap, or a window from randoms in a plane-parallel run)")
+
+
 def comparison(cfg, fnl=None):
     """dict with ells, k, sigma, curved (full), plane_parallel (full) and steps: an ordered
     dict name -> shift of each bin (flat, ℓ-major) in (Mpc/h)³ (module docstring)."""
+    check_comparable(cfg)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")      # shown once already by the run's own build
         lik = factories.build(cfg)
@@ -49,9 +59,8 @@ def comparison(cfg, fnl=None):
         values["fnl"] = np.atleast_1d(float(fnl))
     tracer = fw.tracer(cosmo, values)
     local = tuple(t for t in fw.terms if t in LOCAL_TERMS)
-    run = dict(ells=fw.ells, ic=fw.ic, resolution=fw.resolution)
-    light = multipole_templates(cosmo, fw.shell, fw.edges, tracer, fw.terms, **run)
-    snap = multipole_templates(cosmo, fw.shell, fw.edges, tracer, local, snapshot_z=fw.z, **run)
+    light = fw.engine_templates(cosmo, tracer, fw.terms)
+    snap = fw.engine_templates(cosmo, tracer, local, snapshot_z=fw.z)
 
     steps = {}
     on = ["density"]

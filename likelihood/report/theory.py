@@ -121,9 +121,18 @@ def spectra_theory_report(cfg, out_path, k=None, fnl=None):
     return lines
 
 
+def check_theory(cfg):
+    """One-line ConfigError for a config the report cannot describe (before anything is
+    written): a curved-sky run without a plane-parallel counterpart (a HEALPix mask)."""
+    if is_curved(cfg):
+        from .curved_theory import check_comparable
+        check_comparable(cfg)
+
+
 def theory_report(cfg, out_path, k=None, fnl=None):
     """Write the component table to ``out_path`` and a PNG beside it; return lines to print."""
     import warnings
+    check_theory(cfg)
     k = np.geomspace(1e-3, 0.2, 60) if k is None else np.asarray(k, float)
     comps, cosmo, tracer, eff = components(cfg, k, fnl)
     z = cfg["survey"]["redshift"]

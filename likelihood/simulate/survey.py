@@ -53,6 +53,9 @@ def choose_mesh(lik, n_mesh=None):
     """Mesh for the survey of ``lik``: (L, N) as described in the module docstring."""
     dv = lik.data_full
     k_max = float(max(p.edges[-1] for p in dv.parts) if hasattr(dv, "parts") else dv.edges[-1])
+    if "mask" in lik.config["survey"]["geometry"]:
+        raise ErgofitError("simulate: survey.geometry.mask: a HEALPix mask cannot be meshed yet; "
+                           "use shape: cap for mocks")
     if lik.window is None:
         box = lik.volume ** (1.0 / 3.0)
     else:
