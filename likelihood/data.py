@@ -39,14 +39,16 @@ DATA_HEADER = "# ergofit data vector"
 COV_HEADER = "# ergofit covariance"
 
 
-def _read_header(path):
+def read_header(path):
+    """(first line, header dict) of a text file; DataError naming the file if unreadable."""
     try:
         return read_comment_header(path)
     except (OSError, UnicodeDecodeError) as exc:
         raise DataError(f"{path}: cannot read file ({exc.__class__.__name__}: {exc})") from None
 
 
-def _load_table(path):
+def load_table(path):
+    """The numeric rows of a text file (comments skipped); DataError naming the file."""
     try:
         arr = np.loadtxt(path, comments="#", ndmin=2)
     except (OSError, ValueError) as exc:
@@ -178,11 +180,11 @@ class DataVector:
                 raise DataError(f"{path}: not a valid ergofit .npz data vector "
                                 f"(needs ells, edges, k_eff, n_modes, values): {exc}") from None
             return cls(tuple(ells), edges, k_eff, n_modes, values, meta, source=path)
-        first, header = _read_header(path)
+        first, header = read_header(path)
         if first != DATA_HEADER:
             raise DataError(f"{path}: first line must be '{DATA_HEADER}'")
         ells = _parse_ells(path, header)
-        table = _load_table(path)
+        table = load_table(path)
         if table.shape[1] != 4 + len(ells):
             raise DataError(f"{path}: {table.shape[1]} columns, expected {4 + len(ells)} "
                             f"(k_lo k_hi k_eff n_modes + one per multipole {list(ells)})")
@@ -252,11 +254,11 @@ def load_covariance(path):
         except (OSError, ValueError, KeyError) as exc:
             raise DataError(f"{path}: not a valid .npz covariance (needs 'covariance'): {exc}") from None
     else:
-        first, header = _read_header(path)
+        first, header = read_header(path)
         if first != COV_HEADER:
             raise DataError(f"{path}: first line must be '{COV_HEADER}'")
         ells = _parse_ells(path, header)
-        cov = _load_table(path)
+        cov = load_table(path)
     check_covariance(cov, source=path)
     return cov, ells
 

@@ -36,7 +36,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .data import COV_HEADER, DATA_HEADER, DataVector, MockCovariance, check_covariance, mock_data_files
+from .data import (COV_HEADER, DATA_HEADER, DataVector, MockCovariance, check_covariance,
+                   load_table, mock_data_files, read_header)
 from .errors import DataError
 from .io import input_file, open_atomic, read_comment_header
 
@@ -68,13 +69,6 @@ def _parse_spectrum_line(path, text):
     if not sep or len(names) != 2 or key.strip() != "ells" or not ells:
         raise DataError(f"{path}: '# spectrum: {text}': expected '# spectrum: X Y | ells: 0 2'")
     return (names[0], names[1]), ells
-
-
-def _header(path):
-    try:
-        return read_comment_header(path)
-    except (OSError, UnicodeDecodeError) as exc:
-        raise DataError(f"{path}: cannot read file ({exc.__class__.__name__}: {exc})") from None
 
 
 def _check_odd(src, pair, ells):
@@ -174,7 +168,7 @@ class SpectraVector:
         path = input_file(path, "data vector")
         if path.endswith(".npz"):
             return cls._load_npz(path)
-        first, header = _header(path)
+        first, header = read_header(path)
         if first != SPECTRA_HEADER:
             raise DataError(f"{path}: first line must be '{SPECTRA_HEADER}' (a multi-tracer data vector)")
         if "tracers" not in header or "spectrum" not in header:
@@ -306,14 +300,11 @@ def load_spectra_covariance(path, sv):
         except (OSError, ValueError, KeyError) as exc:
             raise DataError(f"{path}: not a valid .npz covariance (needs 'covariance'): {exc}") from None
     else:
-        first, header = _header(path)
+        first, header = read_header(path)
         if first != COV_HEADER:
             raise DataError(f"{path}: first line must be '{COV_HEADER}'")
         specs = [_parse_spectrum_line(path, s) for s in header.get("spectrum", [])] or None
-        try:
-            cov = np.loadtxt(path, comments="#", ndmin=2)
-        except (OSError, ValueError) as exc:
-            raise DataError(f"{path}: cannot parse numeric table ({exc})") from None
+        cov = load_table(path)
     mine = [(tuple(p), tuple(d.ells)) for p, d in zip(sv.pairs, sv.parts)]
     if specs is not None and specs != mine:
         raise DataError(f"{path}: covariance spectra {[(pair_label(p), list(e)) for p, e in specs]} "
