@@ -13,7 +13,10 @@ the curved-sky route (likelihood.curved; docs/curved_sky.md, "Configuration").
       mask_tolerance: 1e-4                     # angular mask power left beyond the band limit
                                                #   (likelihood.curved.mask.masked_templates)
     survey.geometry (curved_sky): shape: shell (full sky, or a HEALPix map: mask: FILE, needs
-      the optional extra healpix) or shape: cap (r_min, r_max, fsky: a polar cap)
+      the optional extra healpix) or shape: cap (r_min, r_max, fsky: a polar cap), each with an
+      optional radial selection (selection: an n(z) table or randoms file; fkp_p0), or
+      shape: randoms (randoms: FILE, nside: the selection and mask of a random catalogue);
+      likelihood/model/curved_window.py
     effects:
       integral_constraint: none | global | radial  # radial: curved_sky only
       lensing: true, isw: true, time_delay: true   # integrated terms: curved_sky only
@@ -47,8 +50,11 @@ RESOLUTION = {"j_factor": (1.0, 0.5, 4.0), "q_range": (1.0, 0.5, 4.0),
               "q_density": (1.0, 0.5, 4.0), "r_density": (1.0, 0.5, 4.0),
               "k_nodes": (4, 2, 16)}
 CURVED_KEYS = ("snapshot", "bias_evolution", "resolution", "tracer_table", "mask_tolerance")
-#: curved_sky geometries: a full-sky shell (optionally with a HEALPix mask) or a polar cap
-CURVED_SHAPES = ("shell", "cap")
+#: curved_sky geometries: a full-sky shell (optionally with a HEALPix mask), a polar cap, or
+#: the radial selection and angular mask of a random catalogue (model/curved_window.py)
+CURVED_SHAPES = ("shell", "cap", "randoms")
+#: survey.geometry keys of the curved-sky window only (model/curved_window.py)
+CURVED_GEOMETRY_KEYS = ("selection", "fkp_p0", "nside")
 
 
 def table_path(val, where):
@@ -107,6 +113,10 @@ def check_engine(cfg, src):
             raise ConfigError(f"{src}: survey.geometry.mask: a HEALPix mask is modelled by "
                               "engine.kind: curved_sky only; the plane-parallel engine takes a "
                               "window from randoms (shape: randoms)")
+        for key in CURVED_GEOMETRY_KEYS:
+            if key in cfg["survey"]["geometry"]:
+                raise ConfigError(f"{src}: survey.geometry.{key} applies to engine.kind: "
+                                  "curved_sky only; remove it or choose the curved-sky engine")
         cfg["engine"] = {}
         return
     geo = cfg["survey"]["geometry"]
@@ -114,14 +124,15 @@ def check_engine(cfg, src):
     if shape not in CURVED_SHAPES:
         raise ConfigError(f"{src}: survey.geometry.shape: '{shape}' is not available with "
                           "engine.kind: curved_sky, which models a radial selection times an "
-                          "angular mask; use shape: shell (full sky, or mask: a HEALPix map) or "
-                          "shape: cap (n(z) tables and masks from randoms are not implemented yet)")
-    masked = "mask" in geo or (shape == "cap" and geo["fsky"] < 1.0)
-    if "mask" in geo:
+                          "angular mask; use shape: shell (full sky, or mask: a HEALPix map), "
+                          "shape: cap, or shape: randoms (both from a random catalogue)")
+    masked = "mask" in geo or shape == "randoms" or (shape == "cap" and geo["fsky"] < 1.0)
+    if "mask" in geo or shape == "randoms":
         try:
             import healpy  # noqa: F401
         except ImportError:
-            raise ConfigError(f"{src}: survey.geometry.mask: a HEALPix mask needs healpy, the "
+            key = "mask" if "mask" in geo else "randoms"
+            raise ConfigError(f"{src}: survey.geometry.{key}: a HEALPix mask needs healpy, the "
                               "optional extra 'healpix' (pip install \"ergofit[healpix]\")") \
                 from None
     if not eff["window"]:
@@ -153,5 +164,6 @@ def check_engine(cfg, src):
     if "mask_tolerance" in eng:
         if not masked:
             raise ConfigError(f"{src}: engine.mask_tolerance applies to an angular mask "
-                              "(shape: cap, or shape: shell with mask: FILE); remove it")
+                              "(shape: cap, shape: randoms, or shape: shell with mask: FILE); "
+                              "remove it")
         cfg["engine"]["mask_tolerance"] = eng["mask_tolerance"]

@@ -358,21 +358,30 @@ SCHEMA = {
     },
 }
 
+#: curved_sky radial selection (likelihood/model/curved_window.py): an n(z) table or randoms
+#: file, and the P0 [(Mpc/h)^3] of FKP weights 1/(1 + nbar P0)
+CURVED_RADIAL = {"selection": _str, "fkp_p0": _num(0.0, 1.0e7)}
+
 GEOMETRY = {
     "box": {"shape": None, "volume": _num(0.0, V_MAX, lo_open=True)},
     "sphere": {"shape": None, "radius": _num(0.0, R_MAX, lo_open=True)},
     "shell": {"shape": None, "r_min": _num(0.0, R_MAX), "r_max": _num(0.0, R_MAX, lo_open=True),
-              "mask": _str},     # a HEALPix map of the angular mask (curved_sky only)
+              "mask": _str,      # a HEALPix map of the angular mask (curved_sky only)
+              **CURVED_RADIAL},
     "cap": {"shape": None, "r_min": _num(0.0, R_MAX), "r_max": _num(0.0, R_MAX, lo_open=True),
-            "fsky": _num(0.0, 1.0, lo_open=True)},
-    "randoms": {"shape": None, "randoms": _str},
+            "fsky": _num(0.0, 1.0, lo_open=True), **CURVED_RADIAL},
+    "randoms": {"shape": None, "randoms": _str,
+                # curved_sky: HEALPix resolution of the randoms' angular mask; FKP weights
+                "nside": _num(1, 8192, integer=True), "fkp_p0": CURVED_RADIAL["fkp_p0"]},
     # a precomputed Q_ℓ(s) table (written by `ergofit window`); volume from its header or given
     "window": {"shape": None, "file": _str, "volume": _num(0.0, V_MAX, lo_open=True)},
 }
 #: geometry keys that are optional (all others are required for their shape)
-GEOMETRY_OPTIONAL = {("window", "volume"), ("shell", "mask")}
+GEOMETRY_OPTIONAL = {("window", "volume"), ("shell", "mask"), ("randoms", "nside"),
+                     ("randoms", "fkp_p0")} | {(shape, key) for shape in ("shell", "cap")
+                                              for key in ("selection", "fkp_p0")}
 #: geometry keys that name an input file (hashed by contents, copied into the run folder)
-GEOMETRY_FILES = ("randoms", "file", "mask")
+GEOMETRY_FILES = ("randoms", "file", "mask", "selection")
 
 MOCK = {"seed": (_num(0, integer=True), 1), "noise": (_bool, True), "truth": (_mapping, {}),
         "k_min": (_num(0.0, lo_open=True), 0.002), "k_max": (_num(0.0, lo_open=True), 0.05),

@@ -45,16 +45,18 @@ import numpy as np
 
 from ..config.engine import INTEGRATED_EFFECTS
 from ..curved import ResolutionWarning, TracerCoefficients
-from ..curved.estimator import (BasisKernel, EstimatorResolution, Shell, Templates,
+from ..curved.estimator import (BasisKernel, EstimatorResolution, Templates,
                                 monopole_profiles, multipole_templates, radial_field_templates)
-from ..curved.mask import (MASK_TOLERANCE, Cap, HealpixMask, masked_radial_field_templates,
+from ..curved.mask import (MASK_TOLERANCE, Cap, masked_radial_field_templates,
                            masked_templates)
 from ..curved.quadrature import composite_gl
+from ..curved.selection import noise_level
 from ..io import cache_folder, open_atomic
 from ..observation.matrix import KBins
 from ..theory import tracer as tr
 from . import factories
 from .fiducial import COSMO_PARAMS, fiducial_values, held_values, make_tracer
+from .curved_window import curved_window, z_of_distance
 from .likelihood import Likelihood
 
 #: bump when the engine's numbers change, so old cache entries are not reused
@@ -129,34 +131,17 @@ class TracerTable:
         return lambda z: f(z) - ref
 
 
-def sky_mask(cfg):
-    """The angular mask of a curved-sky run: None (full-sky shell), a :class:`Cap`
-    (shape: cap with fsky < 1) or a :class:`HealpixMask` (shape: shell, mask: FILE)."""
-    geo = cfg["survey"]["geometry"]
-    if geo["shape"] == "cap" and geo["fsky"] < 1.0:
-        return Cap(geo["fsky"])
-    if "mask" in geo:
-        return HealpixMask.from_file(cfg.resolve(geo["mask"]))
-    return None
-
-
 def sky_fingerprint(sky):
     """What defines the mask in a cache key: None, the cap's f_sky, or the map's content hash
     (values, and the K up to which its power is used)."""
     if sky is None:
         return None
+    if hasattr(sky, "fingerprint"):
+        return sky.fingerprint()
     if isinstance(sky, Cap):
         return ["cap", float(sky.f_sky)]
     return ["healpix", hashlib.sha256(np.ascontiguousarray(sky.map).tobytes()).hexdigest(),
             int(sky.lmax)]
-
-
-def _z_of(cosmo, r):
-    """Redshift of the comoving distance r [Mpc/h] (bisection on the cosmology's χ(z))."""
-    from scipy.optimize import brentq
-    if r <= 0:
-        return 0.0
-    return brentq(lambda z: float(cosmo.comoving_distance(z)) - r, 0.0, 1100.0, xtol=1e-10)
 
 
 class CurvedOperator:
@@ -186,12 +171,14 @@ class CurvedForwardModel:
         self.snapshot_z = srv.z if eng["snapshot"] else None
         self.evolution = eng["bias_evolution"]
         self.table = None
+        cosmo0 = cosmology({})
+        self.shell, self.sky, self.selection = curved_window(cfg, cosmo0)
+        self.fkp_p0 = geo.get("fkp_p0")
         if "tracer_table" in eng:
-            z_lo, z_hi = (float(_z_of(cosmology({}), r)) for r in (geo["r_min"], geo["r_max"]))
+            z_lo, z_hi = (z_of_distance(cosmo0, r, "survey.geometry.r_max")
+                          for r in (self.shell.r_min, self.shell.r_max))
             self.table = TracerTable(cfg.resolve(eng["tracer_table"]), z_lo, z_hi)
         self.resolution = EstimatorResolution(**eng["resolution"])
-        self.shell = Shell(geo["r_min"], geo["r_max"], nbar=srv.nbar)
-        self.sky = sky_mask(cfg)
         self.mask_tolerance = eng.get("mask_tolerance", MASK_TOLERANCE)
         self.edges, self.ells, self.n_bins = dv.edges, tuple(dv.ells), dv.edges.size - 1
         self.operator = CurvedOperator(KBins(dv.edges, dv.k_eff, dv.n_modes), self.ic)
@@ -206,6 +193,10 @@ class CurvedForwardModel:
         self.cache_dir = cache_dir
         self.sn_sub = 1.0 if shot_noise_subtracted else 0.0
         self.monopole = np.repeat(np.array([l == 0 for l in self.ells], float), self.n_bins)
+        if self.selection is not None:
+            # in units of 1/n̄ (survey.nbar): the flat level the estimator subtracts is its
+            # shot noise without IC, ∫r²w²/n̄ dr/∫r²w² dr (likelihood.curved.selection)
+            self.monopole = self.monopole * self.nbar * noise_level(self.shell)
         self.names = [name for name, _ in self._basis_spec(None)]
 
     # --- basis ----------------------------------------------------------------------------------
@@ -294,6 +285,8 @@ class CurvedForwardModel:
                         cosmo.comoving_distance(zp), cosmo.growth_factor(zp, norm="today"),
                         cosmo.growth_rate(zp), cosmo.power(qp, 0.0)])],
                     shell=[self.shell.r_min, self.shell.r_max, self.nbar],
+                    selection=None if self.selection is None else
+                    [self.selection.fingerprint(), self.fkp_p0],
                     edges=[float(e) for e in self.edges], ells=self.ells, ic=self.ic,
                     terms=self.terms, names=self.names, lin_free=self.lin_free,
                     held=[self.held["b_e"], self.held["s"]], p=self.p, z=self.z,
