@@ -56,7 +56,7 @@ class RandomsMask:
         x = np.asarray(positions, dtype=float)
         if x.ndim != 2 or x.shape[1] != 3 or not np.all(np.isfinite(x)):
             raise DataError(f"{source}: expected finite (N, 3) random positions")
-        if isinstance(nside, bool) or not healpy.isnsideok(nside):
+        if isinstance(nside, bool) or not healpy.isnsideok(nside, nest=True):
             raise ConfigError(f"{source}: nside = {nside!r}: expected a power of 2 (e.g. 64)")
         r = np.sqrt(np.sum(x * x, axis=1))
         if np.any(r <= 0):
