@@ -50,13 +50,14 @@ from ..curved.estimator import (BasisKernel, EstimatorResolution, Templates,
 from ..curved.mask import (MASK_TOLERANCE, Cap, masked_radial_field_templates,
                            masked_templates)
 from ..curved.quadrature import composite_gl
+from ..curved.randoms_mask import RandomsMask
 from ..curved.selection import noise_level
 from ..io import cache_folder, open_atomic
 from ..observation.matrix import KBins
 from ..theory import tracer as tr
 from . import factories
 from .fiducial import COSMO_PARAMS, fiducial_values, held_values, make_tracer
-from .curved_window import curved_window, z_of_distance
+from .curved_window import check_resolvable, curved_window, z_of_distance
 from .likelihood import Likelihood
 
 #: bump when the engine's numbers change, so old cache entries are not reused
@@ -179,6 +180,8 @@ class CurvedForwardModel:
                           for r in (self.shell.r_min, self.shell.r_max))
             self.table = TracerTable(cfg.resolve(eng["tracer_table"]), z_lo, z_hi)
         self.resolution = EstimatorResolution(**eng["resolution"])
+        check_resolvable(self.shell, dv.edges, self.resolution, self.sky is not None,
+                         f"{cfg.path}: data")
         self.mask_tolerance = eng.get("mask_tolerance", MASK_TOLERANCE)
         self.edges, self.ells, self.n_bins = dv.edges, tuple(dv.ells), dv.edges.size - 1
         self.operator = CurvedOperator(KBins(dv.edges, dv.k_eff, dv.n_modes), self.ic)
@@ -271,7 +274,10 @@ class CurvedForwardModel:
         for w in rec:
             msg = str(w.message)
             if issubclass(w.category, ResolutionWarning):
-                msg += (" (config: survey.geometry.mask)" if "raise lmax" in msg
+                where = ("survey.geometry.nside or engine.mask_tolerance"
+                         if isinstance(self.sky, RandomsMask)
+                         else "survey.geometry.mask")
+                msg += (f" (config: {where})" if "raise lmax" in msg
                         else " (config: engine.resolution)")
             warnings.warn(msg, w.category, stacklevel=3)
         return t
@@ -487,6 +493,9 @@ class CurvedLikelihood(Likelihood):
         f = self.forward
         mode = f"snapshot at z = {f.snapshot_z:g}" if f.snapshot_z is not None else "light cone"
         sky = "full sky" if f.sky is None else f.sky.describe()
+        if f.selection is not None:
+            sky += f", radial selection from {f.selection.source}" + (
+                "" if f.fkp_p0 is None else f" with FKP weights (P0 = {f.fkp_p0:g} (Mpc/h)^3)")
         return (super().describe() + f"\nengine: curved sky ({mode}), shell "
                 f"{f.shell.r_min:g}-{f.shell.r_max:g} Mpc/h, {sky}, terms {', '.join(f.terms)}, "
                 f"exact {f.ic} integral constraint, bias evolution {f.evolution}")

@@ -141,3 +141,35 @@ def curved_window(cfg, cosmo):
     if sel is None:
         return Shell(r_min, r_max, nbar=nbar), sky, None
     return sel.shell(r_min, r_max, geo.get("fkp_p0")), sky, sel
+
+
+#: largest k_max r_max the engine is asked to resolve: J_max ≈ 1100 orders (a few minutes per
+#: template set on the full sky); beyond, kχ ≫ 100 and the plane-parallel engine is accurate
+#: (docs/curved_sky.md, plane-parallel limit check)
+KR_MAX = 1000.0
+#: largest C_L(r1, r2) array of one pair of kernel pieces on the masked route [bytes]
+MASKED_PAIR_BYTES = 4.0e9
+
+
+def check_resolvable(shell, edges, resolution, masked, where="data"):
+    """ConfigError (one line naming ``where``) when the k range needs more than the engine
+    resolves: k_max r_max > KR_MAX, or, with an angular mask, the C_L(r1, r2) of one pair of
+    pieces beyond MASKED_PAIR_BYTES (8 (L_top + 1) n_r² bytes, L_top the highest order the q
+    grid reaches: likelihood.curved.mask.masked_templates)."""
+    from ..curved.bessel import bessel_order_max
+    from ..curved.estimator import resolution_grids
+    k_max = float(edges[-1])
+    kr = k_max * shell.r_max
+    if kr > KR_MAX:
+        raise ConfigError(f"{where}: k_max = {k_max:g} h/Mpc with r_max = {shell.r_max:g} Mpc/h "
+                          f"(k_max r_max = {kr:.0f}) is beyond what the curved-sky engine "
+                          f"resolves (k_max r_max <= {KR_MAX:g}); lower k_max or use "
+                          "engine.kind: plane_parallel, accurate at such k")
+    if masked:
+        _, (q, _), (r, _), _ = resolution_grids(shell, np.asarray(edges, float), resolution)
+        size = 8.0 * (bessel_order_max(float(q[-1]) * shell.r_max) + 1) * r.size ** 2
+        if size > MASKED_PAIR_BYTES:
+            raise ConfigError(f"{where}: k_max = {k_max:g} h/Mpc needs {size / 1e9:.1f} GB per "
+                              "pair of kernel pieces on the masked curved-sky route (limit "
+                              f"{MASKED_PAIR_BYTES / 1e9:g} GB); lower k_max (or "
+                              "engine.resolution) or use the full sky")
