@@ -157,3 +157,27 @@ def test_bad_window_exit_2(write_config, tmp_path, capsys, over, words):
     err = [line for line in capsys.readouterr().err.splitlines() if ": error: " in line]
     assert len(err) == 1 and words in err[0], err      # warnings may precede the error line
     assert not (tmp_path / "run").exists()
+
+
+def test_non_separable_randoms_warn(write_config, tmp_path, capsys):
+    """Randoms whose depth differs across the sky (φ < π: shell 1950–3140 Mpc/h; φ > π: only
+    its near half) are not w(r) M(n̂): `ergofit check` uses the separable approximation with
+    a SeparabilityWarning giving the measured size (Pearson's χ² test of independence, Pearson
+    1900; rms contingency, Pearson 1904)."""
+    pytest.importorskip("healpy")
+    rng = np.random.default_rng(8)
+    n = 6000
+    r = np.cbrt(rng.uniform(1950.0 ** 3, 3140.0 ** 3, n))
+    mu = rng.uniform(0.5, 1.0, n)
+    ph = rng.uniform(0, 2 * np.pi, n)
+    keep = (ph < np.pi) | (r < 2600.0)
+    s = np.sqrt(1 - mu ** 2)
+    pos = (r[:, None] * np.column_stack([s * np.cos(ph), s * np.sin(ph), mu]))[keep]
+    np.savez(tmp_path / "randoms.npz", positions=pos)
+    geo = {"shape": "randoms", "randoms": "randoms.npz", "nside": 8, "r_min": None,
+           "r_max": None}
+    path = write_config(dict(CURVED, survey={"geometry": geo},
+                             engine=dict(CURVED["engine"], mask_tolerance=0.05)))
+    assert main(["check", path]) == 0
+    err = capsys.readouterr().err
+    assert "SeparabilityWarning" in err and "rms departure" in err
