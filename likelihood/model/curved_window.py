@@ -20,6 +20,7 @@ measured size when it is not). ``fkp_p0`` weights by 1/(1 + n̄ P0) (Feldman, Ka
 from __future__ import annotations
 
 import os
+import warnings
 
 import numpy as np
 
@@ -63,7 +64,6 @@ def _is_table(path):
 def read_selection_table(path, cosmo):
     """:class:`RadialSelection` of an n(z) table (module docstring); one-line DataError naming
     the file if it is unreadable, empty, non-finite, negative or not increasing in z."""
-    import warnings
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)      # empty file: reported below
@@ -95,7 +95,8 @@ def _selection(cfg, cosmo, r_min, r_max):
     """The RadialSelection of survey.geometry.selection, checked to cover [r_min, r_max]."""
     geo = cfg["survey"]["geometry"]
     path = cfg.resolve(geo["selection"])
-    if _is_table(path):
+    table = _is_table(path)
+    if table:
         sel = read_selection_table(path, cosmo)
         if not sel.covers(r_min, r_max):
             z_lo, z_hi = (z_of_distance(cosmo, r, "survey.geometry.r_max")
@@ -108,8 +109,17 @@ def _selection(cfg, cosmo, r_min, r_max):
         _, r = _randoms(path, cosmo)
         sel = RadialSelection.from_distances(r, r_min, r_max, cfg["survey"]["nbar"],
                                              source=path)
-    if not np.any(sel(np.linspace(r_min, r_max, 1001)) > 0):
+    grid = np.linspace(r_min, r_max, 2001)
+    values = sel(grid)
+    if not np.any(values > 0):
         raise DataError(f"{path}: nbar is zero on the whole shell {r_min:g}..{r_max:g} Mpc/h")
+    mean = float(np.sum(grid ** 2 * values) / np.sum(grid ** 2))
+    nbar = cfg["survey"]["nbar"]
+    if table and abs(mean / nbar - 1.0) > 0.1:
+        warnings.warn(f"{path}: the table's mean density over the shell is {mean:.3g} (h/Mpc)^3 "
+                      f"but survey.nbar = {nbar:.3g}: the table sets the curved-sky window and "
+                      "shot noise, survey.nbar (the mean density) the Gaussian covariance; make "
+                      "them agree", UserWarning, stacklevel=2)
     return sel
 
 
