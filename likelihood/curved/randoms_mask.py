@@ -79,22 +79,16 @@ class RandomsMask:
         self.omega = 1.0 / m2                              # Ω_eff
         self.area = self.m2 = self.omega
         self.noise = 1.0 / (4.0 * np.pi * n)               # white power of the raw map (m units)
-        raw = self._raw.power(self.lmax)
-        self._w = (raw - self.noise) / (1.0 - 1.0 / n)
 
     def raw_power(self, k_max):
         """Ŵ_K of the count map before the noise is removed, in the units of :meth:`power`."""
-        return self.omega ** 2 * self._pad(self._raw.power(self.lmax), k_max)
-
-    def _pad(self, arr, k_max):
-        out = np.zeros(k_max + 1)
-        n = min(k_max, self.lmax) + 1
-        out[:n] = arr[:n]
-        return out
+        return self.omega ** 2 * self._raw.power(k_max)
 
     def power(self, k_max):
         """W_K, K = 0..k_max, the randoms' noise removed (zero beyond lmax)."""
-        return self.omega ** 2 * self._pad(self._w, k_max)
+        known = np.arange(k_max + 1) <= self.lmax
+        clean = (self._raw.power(k_max) - self.noise) / (1.0 - 1.0 / self.n)
+        return self.omega ** 2 * np.where(known, clean, 0.0)
 
     square_power = power          # constant completeness: M² = M in the mean
 
@@ -110,13 +104,12 @@ class RandomsMask:
         docstring), (j_max + 1, l_max + 1); zero beyond lmax."""
         n = float(self.n)
         top = max(j_max, l_max)
-        w_raw = self._pad(self._raw.power(self.lmax), top)
+        w_raw = self._raw.power(top)
         a = (2 * np.arange(top + 1) + 1) / (4.0 * np.pi)
         s = (2 * np.arange(top + 1) + 1) * w_raw            # S_L / N²
         aj, al = a[:j_max + 1, None], a[None, :l_max + 1]
         sj, sl = s[:j_max + 1, None], s[None, :l_max + 1]
-        w = self._pad(self._w, j_max + l_max)
-        m_jl = coupling_matrix(w, j_max, l_max)
+        m_jl = coupling_matrix(self.power(j_max + l_max) / self.omega ** 2, j_max, l_max)
         x_hat = self._raw.triple(j_max, l_max)
         # N³ X̂ minus the coincident triples, over N(N−1)(N−2), everything divided by N³
         x = (x_hat - (aj * (sl - al / n) + al * (sj - aj / n)) / n

@@ -11,16 +11,9 @@ import yaml
 from likelihood.cli import main
 from likelihood.config import load_config
 
-CURVED = {
-    "engine": {"kind": "curved_sky", "resolution": {"k_nodes": 2, "q_range": 1.5}},
-    "effects": {"integral_constraint": "radial", "lensing": False, "isw": False,
-                "time_delay": False},
-    "data": {"mock": {"noise": False, "truth": {"fnl": 10.0}, "k_min": 0.004, "k_max": 0.02,
-                      "n_bins": 4}},
-    "parameters": {"b1": {"flat": [0.5, 5.0], "start": 2.0, "scale": 0.01},
-                   "fnl": {"flat": [-200.0, 200.0], "start": 8.0, "scale": 1.0}},
-    "sampling": {"walkers": 16, "max_steps": 600, "check_every": 100, "seed": 4,
-                 "progress": False}}
+from test_run_curved import CURVED_SMALL  # noqa: E402  (the curved run of the next file)
+
+CURVED = dict(CURVED_SMALL, sampling=dict(CURVED_SMALL["sampling"], max_steps=600))
 
 
 def combine(base, over):
@@ -36,6 +29,16 @@ def combine(base, over):
 @pytest.fixture(autouse=True)
 def _cache_in_tmp(tmp_path, monkeypatch):
     monkeypatch.setenv("XDG_CACHE_HOME", os.fspath(tmp_path / "cache"))
+
+
+def assert_refused(path, tmp_path, capsys, *words):
+    """`ergofit run` exits with code 2 and one line holding ``words`` (besides warnings, e.g.
+    the linear-theory one above k = 0.1 h/Mpc); no output folder."""
+    assert main(["run", path, "--out", str(tmp_path / "run")]) == 2
+    err = [line for line in capsys.readouterr().err.strip().splitlines()
+           if "Warning: " not in line]
+    assert len(err) == 1 and ": error: " in err[0] and all(w in err[0] for w in words), err
+    assert not (tmp_path / "run").exists()
 
 
 def write_table(path, rows, header="# columns: z nbar"):
@@ -71,19 +74,24 @@ def test_run_with_nz_table(write_config, tmp_path):
     assert load_config(path).hash != before
 
 
+def cap_shell_randoms(seed, n):
+    """(positions, r, φ) of n randoms uniform in volume in the cap Dec > 30 deg (cos θ > 0.5)
+    of the shell 1950–3140 Mpc/h."""
+    rng = np.random.default_rng(seed)
+    r = np.cbrt(rng.uniform(1950.0 ** 3, 3140.0 ** 3, n))
+    mu = rng.uniform(0.5, 1.0, n)
+    ph = rng.uniform(0, 2 * np.pi, n)
+    s = np.sqrt(1 - mu ** 2)
+    return r[:, None] * np.column_stack([s * np.cos(ph), s * np.sin(ph), mu]), r, ph
+
+
 def test_run_with_randoms_window(write_config, tmp_path):
     """shape: randoms with the curved engine: 4000 randoms uniform in volume in the cap
     Dec > 30 deg of the shell 1950–3140 Mpc/h give the radial selection and the angular mask
     (nside 8); `ergofit check` describes both and `ergofit run` recovers f_NL = 10 from a
     noiseless mock within 0.3 σ."""
     pytest.importorskip("healpy")
-    rng = np.random.default_rng(3)
-    n = 4000
-    r = np.cbrt(rng.uniform(1950.0 ** 3, 3140.0 ** 3, n))
-    mu = rng.uniform(0.5, 1.0, n)
-    ph = rng.uniform(0, 2 * np.pi, n)
-    s = np.sqrt(1 - mu ** 2)
-    pos = r[:, None] * np.column_stack([s * np.cos(ph), s * np.sin(ph), mu])
+    pos, _, _ = cap_shell_randoms(3, 4000)
     np.savez(tmp_path / "randoms.npz", positions=pos)
     geo = {"shape": "randoms", "randoms": "randoms.npz", "nside": 8,
            "r_min": None, "r_max": None}
@@ -113,10 +121,7 @@ def test_bad_nz_table_exit_2(write_config, tmp_path, capsys, rows, words):
     one line naming the file, no output folder."""
     write_table(tmp_path / "nz.txt", rows)
     path = write_config(dict(CURVED, survey={"geometry": {"selection": "nz.txt"}}))
-    assert main(["run", path, "--out", str(tmp_path / "run")]) == 2
-    err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and "nz.txt" in err[0] and words in err[0], err
-    assert not (tmp_path / "run").exists()
+    assert_refused(path, tmp_path, capsys, "nz.txt", words)
 
 
 @pytest.mark.parametrize("values, words", [
@@ -130,10 +135,7 @@ def test_bad_mask_values_exit_2(write_config, tmp_path, capsys, values, words):
     m[5] = values
     hp.write_map(str(tmp_path / "m.fits"), m, dtype=np.float64)
     path = write_config(dict(CURVED, survey={"geometry": {"mask": "m.fits"}}))
-    assert main(["run", path, "--out", str(tmp_path / "run")]) == 2
-    err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and "m.fits" in err[0] and words in err[0], err
-    assert not (tmp_path / "run").exists()
+    assert_refused(path, tmp_path, capsys, "m.fits", words)
 
 
 @pytest.mark.parametrize("over, words", [
@@ -152,11 +154,7 @@ def test_bad_window_exit_2(write_config, tmp_path, capsys, over, words):
     pytest.importorskip("healpy")
     (tmp_path / "empty.txt").write_text("# columns: x y z\n")
     cfg = combine(CURVED, over)
-    path = write_config(cfg)
-    assert main(["run", path, "--out", str(tmp_path / "run")]) == 2
-    err = [line for line in capsys.readouterr().err.splitlines() if ": error: " in line]
-    assert len(err) == 1 and words in err[0], err      # warnings may precede the error line
-    assert not (tmp_path / "run").exists()
+    assert_refused(write_config(cfg), tmp_path, capsys, words)
 
 
 def test_non_separable_randoms_warn(write_config, tmp_path, capsys):
@@ -165,15 +163,8 @@ def test_non_separable_randoms_warn(write_config, tmp_path, capsys):
     a SeparabilityWarning giving the measured size (Pearson's χ² test of independence, Pearson
     1900; rms contingency, Pearson 1904)."""
     pytest.importorskip("healpy")
-    rng = np.random.default_rng(8)
-    n = 6000
-    r = np.cbrt(rng.uniform(1950.0 ** 3, 3140.0 ** 3, n))
-    mu = rng.uniform(0.5, 1.0, n)
-    ph = rng.uniform(0, 2 * np.pi, n)
-    keep = (ph < np.pi) | (r < 2600.0)
-    s = np.sqrt(1 - mu ** 2)
-    pos = (r[:, None] * np.column_stack([s * np.cos(ph), s * np.sin(ph), mu]))[keep]
-    np.savez(tmp_path / "randoms.npz", positions=pos)
+    pos, r, ph = cap_shell_randoms(8, 6000)
+    np.savez(tmp_path / "randoms.npz", positions=pos[(ph < np.pi) | (r < 2600.0)])
     geo = {"shape": "randoms", "randoms": "randoms.npz", "nside": 8, "r_min": None,
            "r_max": None}
     path = write_config(dict(CURVED, survey={"geometry": geo},
