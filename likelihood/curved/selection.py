@@ -120,12 +120,13 @@ class RadialSelection:
         return [self.r.tolist(), self.nbar.tolist()]
 
 
-def noise_level(shell, n_nodes=2048):
+def noise_level(shell):
     """∫ r² w²/n̄ dr / ∫ r² w² dr of a Shell [(Mpc/h)³]: the shot noise of the estimator without
-    integral constraint (module docstring; 1/n̄ for a constant density), by Gauss–Legendre
-    on ``n_nodes`` nodes in 64 panels (a piecewise-linear n̄ is integrated to ~1e-10)."""
+    integral constraint (module docstring; 1/n̄ for a constant density), by Gauss–Legendre on
+    64 panels of 8 nodes (measured against Simpson on 6001 nodes for a 61-row n(z) table:
+    2e-7, 3e-6 with FKP weights; tests/curved/test_selection.py)."""
     from .quadrature import composite_gl
     r, wr = composite_gl(shell.r_min, shell.r_max, (shell.r_max - shell.r_min) / 64.0)
     w = shell.weight_on(r)
-    n = shell._eval("nbar", shell.nbar, r)
+    n = np.asarray(shell.nbar(r) if callable(shell.nbar) else np.full(r.shape, float(shell.nbar)))
     return float(np.sum(wr * r ** 2 * w ** 2 / n) / np.sum(wr * r ** 2 * w ** 2))

@@ -291,8 +291,6 @@ class CurvedForwardModel:
                         cosmo.comoving_distance(zp), cosmo.growth_factor(zp, norm="today"),
                         cosmo.growth_rate(zp), cosmo.power(qp, 0.0)])],
                     shell=[self.shell.r_min, self.shell.r_max, self.nbar],
-                    selection=None if self.selection is None else
-                    [self.selection.fingerprint(), self.fkp_p0],
                     edges=[float(e) for e in self.edges], ells=self.ells, ic=self.ic,
                     terms=self.terms, names=self.names, lin_free=self.lin_free,
                     held=[self.held["b_e"], self.held["s"]], p=self.p, z=self.z,
@@ -300,6 +298,8 @@ class CurvedForwardModel:
                     table=None if self.table is None else self.table.data.tolist(),
                     resolution=repr(self.resolution), sky=sky_fingerprint(self.sky),
                     mask_tolerance=None if self.sky is None else self.mask_tolerance)
+        if self.selection is not None:          # (absent: the keys of uniform shells stay)
+            spec["selection"] = [self.selection.fingerprint(), self.fkp_p0]
         return hashlib.sha256(json.dumps(spec, sort_keys=True).encode()).hexdigest()
 
     def basis(self, cosmo):

@@ -58,7 +58,7 @@ def test_run_with_nz_table(write_config, tmp_path):
     """`ergofit run` with an n(z) table and FKP weights: a noiseless mock of that model with
     f_NL = 10 is recovered (posterior mean within 0.3 σ: a noiseless data vector peaks at the
     truth; common practice), the table is copied into inputs/ and the copied config keeps the
-    config hash; editing the table changes the hash."""
+    config hash; editing the table changes the hash and the template cache key."""
     write_table(tmp_path / "nz.txt", nz_rows())
     path = write_config(dict(CURVED, survey={"geometry": {"selection": "nz.txt",
                                                           "fkp_p0": 1.0e4}}))
@@ -70,8 +70,11 @@ def test_run_with_nz_table(write_config, tmp_path):
     assert copied["survey"]["geometry"]["selection"] == os.path.join("inputs", "nz.txt")
     assert load_config(str(out / "config.yaml")).hash == load_config(path).hash
     before = load_config(path).hash
+    cached = sorted((tmp_path / "cache").rglob("curved-templates-*.npz"))
     write_table(tmp_path / "nz.txt", nz_rows()[:-1] + [[1.65, 1e-5]])
     assert load_config(path).hash != before
+    assert main(["check", path]) == 0          # new templates, not the cached ones
+    assert len(sorted((tmp_path / "cache").rglob("curved-templates-*.npz"))) == len(cached) + 1
 
 
 def cap_shell_randoms(seed, n):
