@@ -82,6 +82,14 @@ def _neglect_curved(cfg, raw, name):
         raise ConfigError(f"{cfg.path}: forecast.neglect: '{name}' is an approximation of the "
                           "curved-sky model; the truth model needs engine.kind: curved_sky")
     if name == "plane_parallel":
+        geo = raw["survey"]["geometry"]
+        for key in ("selection", "fkp_p0"):
+            if key in geo:
+                raise ConfigError(f"{cfg.path}: forecast.neglect: 'plane_parallel' with "
+                                  f"survey.geometry.{key}: the plane-parallel engine has no "
+                                  "radial selection other than a window from randoms (shape: "
+                                  "randoms); the comparison would change the window too")
+        geo.pop("nside", None)          # the curved engine's mask resolution
         raw.pop("engine", None)
         for t in INTEGRATED_EFFECTS:
             e.pop(t, None)

@@ -39,11 +39,16 @@ def _partial(t, names):
 
 def check_comparable(cfg):
     """ConfigError (one line) when the run has no plane-parallel counterpart: a HEALPix mask
-    gives no plane-parallel window."""
+    gives no plane-parallel window, nor does a radial selection from a table or FKP weights."""
     if "mask" in cfg["survey"]["geometry"]:
         raise ConfigError(f"{cfg.path}: survey.geometry.mask: the plane-parallel comparison "
                           "needs a plane-parallel window, which a HEALPix map does not give "
                           "(use shape: cap, or a window from randoms in a plane-parallel run)")
+    for key in ("selection", "fkp_p0"):
+        if key in cfg["survey"]["geometry"]:
+            raise ConfigError(f"{cfg.path}: survey.geometry.{key}: the plane-parallel "
+                              "comparison has no radial selection other than a window from "
+                              "randoms (shape: randoms); it would change the window too")
 
 
 def comparison(cfg, fnl=None):

@@ -175,3 +175,20 @@ def test_non_separable_randoms_warn(write_config, tmp_path, capsys):
     assert main(["check", path]) == 0
     err = capsys.readouterr().err
     assert "SeparabilityWarning" in err and "rms departure" in err
+
+
+@pytest.mark.parametrize("command", ["theory", "forecast"])
+def test_plane_parallel_comparison_refused_with_selection(write_config, tmp_path, capsys,
+                                                          command):
+    """`ergofit theory` and the forecast's neglected plane-parallel approximation compare with
+    a plane-parallel model, which has no n(z) window: refused in one line (exit 2), no file
+    written, rather than a comparison that silently changes the window too. (`ergofit
+    forecast` creates its output folder before it builds the models: an empty folder.)"""
+    write_table(tmp_path / "nz.txt", nz_rows())
+    path = write_config(dict(CURVED, survey={"geometry": {"selection": "nz.txt"}},
+                             forecast={"neglect": ["plane_parallel"]}))
+    assert main([command, path, "--out", str(tmp_path / "out")]) == 2
+    err = [line for line in capsys.readouterr().err.strip().splitlines()
+           if "Warning: " not in line]
+    assert len(err) == 1 and "survey.geometry.selection" in err[0], err
+    assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())
