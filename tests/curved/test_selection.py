@@ -125,6 +125,27 @@ def test_randoms_distances_recover_selection():
     assert sel.r.size == 64
 
 
+def test_uniform_randoms_selection_near_shell(cosmo):
+    """40000 distances uniform in volume on the shell 1000–2000 Mpc/h: the selection from their
+    histogram (20 bins, 2000 each: 2.2 % scatter) gives P̂_0, P̂_2 (density + RSD, global IC,
+    k ≤ 0.02 h/Mpc) within 3e-3 of max P̂_0 of the uniform shell, the exact answer for an
+    infinite catalogue (measured 9.1e-4; 0.9–1.8e-3 for three catalogues on the demo shell to
+    k = 0.05 with the local projection terms; common practice: a histogram's Poisson scatter
+    carried into the window)."""
+    rng = np.random.default_rng(2)
+    r = np.cbrt(rng.uniform(1000.0 ** 3, 2000.0 ** 3, 40_000))
+    sel = RadialSelection.from_distances(r, 1000.0, 2000.0, mean_nbar=3e-4)
+    edges = np.linspace(0.004, 0.02, 5)
+    run = dict(ells=(0, 2), ic="global", resolution=EstimatorResolution(k_nodes=2))
+    tc = TracerCoefficients(1.5)
+    ref = multipole_templates(cosmo, Shell(1000.0, 2000.0, nbar=3e-4), edges, tc,
+                              ("density", "rsd"), **run).combine({}, {})
+    got = multipole_templates(cosmo, sel.shell(1000.0, 2000.0), edges, tc, ("density", "rsd"),
+                              **run).combine({}, {})
+    diff = np.abs(got - ref).max() / np.abs(ref[0]).max()
+    assert 1e-6 < diff < 3e-3
+
+
 @pytest.mark.parametrize("z, nbar, words", [
     ([0.5, 1.0], [3e-4, -1e-5], "negative nbar"),
     ([0.5, 1.0], [3e-4, np.nan], "NaN or inf"),
