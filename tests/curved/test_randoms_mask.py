@@ -63,8 +63,9 @@ def test_randoms_mask_against_cap(ic):
     40000 randoms drawn in a cap of f_sky = 0.25, four catalogues: each within 3e-3 of the
     maximum of P̂_0 of the pixelised cap (measured ≤ 1.3e-3), their mean within four standard
     errors of it (the randoms' noise), and within 6e-3 of the analytic cap (measured 4.8e-3;
-    the pixelisation at nside 32 alone: 3.5e-3). Without the noise removal the counts map is off by 2–4 %: the test can
-    tell (Hivon et al. 2002 for the coupling; the noise bias derived in docs/curved_mask.md)."""
+    the pixelisation at nside 32 alone: 3.5e-3). Without the noise removal the counts map is
+    off by 2–4 %: the test can tell (Hivon et al. 2002 for the coupling; the noise bias derived
+    in docs/curved_mask.md §11)."""
     cosmo = Cosmology.from_preset("planck2018")
     nside = 32
     shell = Shell(1000.0, 2000.0, nbar=3e-4)

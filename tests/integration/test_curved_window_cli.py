@@ -192,3 +192,14 @@ def test_plane_parallel_comparison_refused_with_selection(write_config, tmp_path
            if "Warning: " not in line]
     assert len(err) == 1 and "survey.geometry.selection" in err[0], err
     assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())
+
+
+@pytest.mark.parametrize("name", ["demo_curved_nz.yaml", "demo_curved_randoms.yaml"])
+def test_demo_configs_validate(name):
+    """The demos of the radial selection and of the randoms' window validate and name input
+    files that exist (their full runs: README, measured figures)."""
+    root = os.path.join(os.path.dirname(__file__), os.pardir, os.pardir, "configs")
+    cfg = load_config(os.path.join(root, name))
+    assert cfg["engine"]["kind"] == "curved_sky"
+    geo = cfg["survey"]["geometry"]
+    assert os.path.isfile(cfg.resolve(geo.get("selection", geo.get("randoms", ""))))
