@@ -25,7 +25,7 @@ import warnings
 import numpy as np
 
 from ..curved.estimator import Shell
-from ..curved.mask import Cap, HealpixMask
+from ..curved.mask import Cap, HealpixMask, separability
 from ..curved.selection import RadialSelection
 from ..errors import ConfigError, DataError
 from ..io import read_comment_header
@@ -106,7 +106,8 @@ def _selection(cfg, cosmo, r_min, r_max):
                             f"the survey (r = {r_min:g}..{r_max:g} Mpc/h) needs "
                             f"z = {z_lo:.4g}..{z_hi:.4g}")
     else:
-        _, r = _randoms(path, cosmo)
+        pos, r = _randoms(path, cosmo)
+        separability(pos, source=path)          # warns with the measured departure
         sel = RadialSelection.from_distances(r, r_min, r_max, cfg["survey"]["nbar"],
                                              source=path)
     grid = np.linspace(r_min, r_max, 2001)
@@ -125,7 +126,6 @@ def _selection(cfg, cosmo, r_min, r_max):
 
 def curved_window(cfg, cosmo):
     """(Shell, sky mask or None, RadialSelection or None) of a curved-sky config."""
-    from ..curved.mask import separability
     from ..curved.randoms_mask import RandomsMask
     geo = cfg["survey"]["geometry"]
     nbar = cfg["survey"]["nbar"]
