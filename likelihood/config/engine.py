@@ -126,6 +126,9 @@ def check_engine(cfg, src):
                           "engine.kind: curved_sky, which models a radial selection times an "
                           "angular mask; use shape: shell (full sky, or mask: a HEALPix map), "
                           "shape: cap, or shape: randoms (both from a random catalogue)")
+    if "fkp_p0" in geo and shape != "randoms" and "selection" not in geo:
+        raise ConfigError(f"{src}: survey.geometry.fkp_p0: FKP weights need a radial selection "
+                          "(selection: FILE); with a constant density they are a constant")
     masked = "mask" in geo or shape == "randoms" or (shape == "cap" and geo["fsky"] < 1.0)
     if "mask" in geo or shape == "randoms":
         try:

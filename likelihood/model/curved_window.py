@@ -15,7 +15,7 @@ selection (distances, r_min and r_max the randoms' extremes) and the angular mas
 directions on a HEALPix map of ``nside``, their noise removed: likelihood.curved.randoms_mask)
 from one catalogue, after measuring how far it is from separable (SeparabilityWarning with the
 measured size when it is not). ``fkp_p0`` weights by 1/(1 + n̄ P0) (Feldman, Kaiser & Peacock
-1994).
+1994); it needs a radial selection (config/engine.py refuses it on a uniform shell).
 """
 from __future__ import annotations
 

@@ -148,6 +148,7 @@ def test_bad_mask_values_exit_2(write_config, tmp_path, capsys, values, words):
      "GB per pair"),
     ({"engine": None, "effects": {"integral_constraint": "global"},
       "survey": {"geometry": {"fkp_p0": 1e4}}}, "curved_sky only"),
+    ({"survey": {"geometry": {"fkp_p0": 1e4}}}, "need a radial selection"),
     ({"survey": {"geometry": {"shape": "randoms", "randoms": "empty.txt", "r_min": None,
                               "r_max": None}}}, "empty")])
 def test_bad_window_exit_2(write_config, tmp_path, capsys, over, words):
