@@ -33,6 +33,7 @@ from ..errors import ConfigError
 from .bessel import bessel_derivatives, bessel_order_max, bessel_x_min, spherical_jn_all
 from .lightcone import (INTEGRATED_TERMS, LOCAL_TERMS, LightCone, ResolutionWarning,
                         TracerCoefficients, check_terms, integrated_pieces, local_pieces)
+from .observer_terms import ObserverPiece, observer_pieces
 from .quadrature import composite_gl
 
 __all__ = ["EstimatorResolution", "Shell", "Templates", "BasisKernel", "multipole_templates",
@@ -161,6 +162,7 @@ def _kernel_set(cone, cosmo, r, q, los, tracer, terms, snapshot_r=None, weight=1
     bg = cone.background(r if snapshot_r is None else np.full(r.shape, snapshot_r))
     tc = tracer.at(bg["z"])
     loc = local_pieces(bg, tc, [t for t in terms if t in LOCAL_TERMS])
+    loc += observer_pieces(cone, bg, tc, terms)     # single-order pieces (J = 0 or 1)
     integ = integrated_pieces(bg, tc, [t for t in terms if t in INTEGRATED_TERMS])
     if weight != 1.0:
         loc = [replace(p, radial=weight * p.radial) for p in loc]
@@ -287,7 +289,7 @@ def _kernels(J, kset, blk, sl, los, v, ic, combine):
     j = jq[J]
     d1, d2 = bessel_derivatives(J, jq[1] if J == 0 else jq[J - 1], j, x)
     kinds = (j, d1, d2)
-    out = [qfac[sl][:, None] * p.radial[None, :] * kinds[p.order]
+    out = [qfac[sl][:, None] * p.radial[None, :] * _radial_part(p, J, kinds)
            for p, qfac in zip(kset.loc, kset.qf)]
     for t, parts in kset.integ.items():
         accum = 0.0
@@ -303,6 +305,14 @@ def _kernels(J, kset, blk, sl, los, v, ic, combine):
     if J == 0:
         out = [ic_monopole(W, v, ic) for W in out]
     return np.stack(out)
+
+
+def _radial_part(piece, J, kinds):
+    """j_J, j_J' or j_J'' of a local piece; for an observer piece (order fixed: J = 0 or 1,
+    likelihood.curved.observer_terms) 1 at its own order and 0 at every other."""
+    if isinstance(piece, ObserverPiece):
+        return np.full(kinds[0].shape, 1.0 if J == piece.order else 0.0)
+    return kinds[piece.order]
 
 
 def ic_monopole(profile, v, ic):
@@ -353,9 +363,10 @@ def _kernel_sides(cosmo, shell, r, q, tracer_a, terms_a, tracer_b, terms_b, snap
             raise ConfigError(f"snapshot_z = {snapshot_z!r}: expected a redshift") from None
         if not 0.0 < snapshot_z < 0.99 * cone.z_max:
             raise ConfigError(f"snapshot_z = {snapshot_z}: expected 0 < z < {0.99 * cone.z_max:.3g}")
-        if need_int:
+        nonlocal_ = [t for t in terms_a + terms_b if t not in LOCAL_TERMS]
+        if nonlocal_:
             raise ConfigError("snapshot_z: the snapshot mode has local terms only; drop "
-                              f"{[t for t in terms_a + terms_b if t in INTEGRATED_TERMS]}")
+                              f"{nonlocal_}")
         snap_r = float(cosmo.comoving_distance(snapshot_z))
     los = _LineOfSight(r, shell.r_min, shell.r_max, cone) if need_int else None
 
@@ -662,14 +673,16 @@ def radial_field_templates(shell, edges, names, profiles, ells=(0, 2, 4), ic="no
 
 
 def monopole_profiles(cosmo, shell, edges, q, measure, tracer, terms=("density", "rsd"),
-                      resolution=EstimatorResolution(k_nodes=16), snapshot_z=None):
+                      resolution=EstimatorResolution(k_nodes=16), snapshot_z=None, order=0):
     """Σ_i measure_i W_0(q_i, r): the angular monopole of the kernel (every piece on the light
     cone, integrated ones included; no integral constraint) weighted on a caller's q grid, on
     the window nodes r of ``resolution``. With measure = dq q² P(q) C(q)/(2π²) (C: a constraint
     field at the observer, c(q) = C δ_m0(q)) this is the cross-correlation ξ_gc(r) of the
     number counts with the field at the observer: only J = 0 survives the average over
     directions (Rayleigh expansion). ``tracer``: TracerCoefficients (with ``terms``) or a
-    sequence of BasisKernel. Returns (r, names, profiles (n_names, n_r))."""
+    sequence of BasisKernel. Returns (r, names, profiles (n_names, n_r)).
+    ``order`` = 1 gives Σ_i measure_i W_1(q_i, r) instead: the profile of the J = 1 part, which
+    alone correlates with a vector at the observer (its velocity; likelihood.curved.observer_terms)."""
     q = np.asarray(q, dtype=float)
     measure = np.asarray(measure, dtype=float)
     if q.ndim != 1 or q.shape != measure.shape or q.size == 0 or q.min() <= 0:
@@ -681,11 +694,11 @@ def monopole_profiles(cosmo, shell, edges, q, measure, tracer, terms=("density",
     out = np.zeros((len(names), r.size))
     for q0 in range(0, q.size, resolution.q_block):
         qb = q[q0:q0 + resolution.q_block]
-        jq = spherical_jn_all(1, qb[:, None] * r[None, :])
-        jn, near = (_near_integrals(sides.los, sides.all_sets, qb, 0) if sides.need_int
+        jq = spherical_jn_all(order + 1, qb[:, None] * r[None, :])
+        jn, near = (_near_integrals(sides.los, sides.all_sets, qb, order) if sides.need_int
                     else (None, {}))
         sl = slice(q0, q0 + qb.size)
-        W = _side_kernels(0, side, (qb, r, jq, jn, near), sl, sides.los, None, "none", False)
+        W = _side_kernels(order, side, (qb, r, jq, jn, near), sl, sides.los, None, "none", False)
         out += np.einsum("q,aqr->ar", measure[sl], W)
     return r, names, out
 
