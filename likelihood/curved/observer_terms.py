@@ -118,3 +118,80 @@ def velocity_dispersion(cosmo, q, wq):
     s2 = (f0 * h0) ** 2 * float(np.sum(wq * np.asarray(cosmo.power(q, 0.0), dtype=float))) \
         / (6.0 * np.pi ** 2)
     return float(np.sqrt(s2)), float(np.sqrt(3.0 * s2))
+
+
+def motion_profiles(cosmo, shell, edges, tracer, terms=None, resolution=None):
+    """The dipole of the counts expected given the observer's velocity, per unit of it:
+    (r, names, h (n_names, n_r), σ_3D), with
+
+        ⟨a_1m(r) | v_o⟩ = Σ_a x_a h_a(r) V_m/σ_V,   h_a = X_a/σ_V,
+        X_a(r) = ⟨a_1m(r) V*_m⟩ = (2/π) ∫ q² dq P W_1^a(q, r) f_0ℋ_0/(3q),
+        σ_V² = ⟨|V_m|²⟩ = (2/π) ∫ q² dq P (f_0ℋ_0/(3q))² = (4π/9) σ_3D²,
+
+    V_m = ∫dΩ Y*_1m (v_o·n̂) the harmonic coefficients of the observer's motion (Hoffman &
+    Ribak 1991 regression; only J = 1 correlates with a vector at the origin). W_1^a includes
+    observer_motion (the kinematic dipole, X = its coefficient × σ_V²) and every source piece
+    correlated with v_o. ``tracer``: TracerCoefficients with ``terms``, or a list of
+    BasisKernel (the curved forward model's basis); q, r on the grids of ``resolution``."""
+    from .estimator import EstimatorResolution, monopole_profiles, resolution_grids
+    resolution = resolution or EstimatorResolution(k_nodes=16)
+    _, (q, wq), _, _ = resolution_grids(shell, np.asarray(edges, dtype=float), resolution)
+    _, s3 = velocity_dispersion(cosmo, q, wq)
+    fh = float(cosmo.growth_rate(0.0)) * float(cosmo.conformal_hubble(0.0))
+    pq = np.asarray(cosmo.power(q, 0.0), dtype=float)
+    sig_v = np.sqrt((2.0 / np.pi) * np.sum(wq * pq) * (fh / 3.0) ** 2)
+    meas = (2.0 / np.pi) * wq * q * q * pq * fh / (3.0 * q) / sig_v
+    r, names, h = monopole_profiles(cosmo, shell, edges, q, meas, tracer, terms, resolution,
+                                    None, order=1)
+    return r, names, h, s3
+
+
+def dipole_field_templates(shell, edges, names, profiles, ells=(0, 2, 4), resolution=None):
+    """The full-sky estimator applied to dipole fields about the observer: pair templates
+    {(a, b): (n_ell, n_bins)} (a ≤ b, both orderings in T_ab) of the expected P̂_ℓ of the field
+    with the rank-one J = 1 spectrum C_1(r1, r2) = Σ_ab x_a x_b h_a(r1) h_b(r2), ``profiles``
+    h_a (n_a, n_r) on the window nodes of ``resolution``. A deterministic field
+    m(r n̂) = g(r) (û·n̂), |û| = 1, has a_1M = (4π/3) g Y*_1M(û) and (1/3) Σ_M a_1M a*_1M =
+    (4π/9) g(r1) g(r2): the same expectation for h = g √(4π)/3. With the estimator of
+    likelihood.curved.estimator (module docstring there):
+    P̂_ℓ = (2ℓ+1)(4π/I₂) · 3 Σ_ij G_ℓ1(k r_i) base_i C_1(r_i, r_j) base_j j_1(k r_j)."""
+    from .bessel import spherical_jn_all
+    from .estimator import EstimatorResolution, bin_average, radial_projection, resolution_grids
+    resolution = resolution or EstimatorResolution(k_nodes=16)
+    edges = np.asarray(edges, dtype=float)
+    _, _, (r, wr), (k, wk) = resolution_grids(shell, edges, resolution)
+    profiles = np.atleast_2d(np.asarray(profiles, dtype=float))
+    if profiles.shape != (len(names), r.size):
+        raise ConfigError(f"dipole profiles: expected shape ({len(names)}, {r.size}) on the "
+                          f"window nodes, got {profiles.shape}")
+    w = shell.weight_on(r)
+    base = wr * r ** 2 * w
+    i2 = 4.0 * np.pi * np.sum(wr * r ** 2 * w ** 2)
+    jk = spherical_jn_all(max(ells) + 2, k[:, None] * r[None, :])
+    fac = np.array([(2 * l + 1) * 4.0 * np.pi / i2 for l in ells])[:, None]
+    out = {}
+    for a, na in enumerate(names):
+        for b in range(a, len(names)):
+            c = np.outer(profiles[a], profiles[b])
+            if b != a:
+                c = c + c.T
+            out[na, names[b]] = bin_average(fac * radial_projection(1, ells, c, jk, base), wk,
+                                            edges.size - 1)
+    return out
+
+
+def motion_templates(cosmo, shell, edges, tracer, terms=None, ells=(0, 2, 4),
+                     resolution=None):
+    """Pair templates of the conditioning on the observer's velocity, full sky:
+
+        ⟨P̂_ℓ | v_o⟩ = ⟨P̂_ℓ⟩ + (ν_v² − 1) Σ_{a≤b} x_a x_b D_ab,   ν_v = |v_o|/σ_3D,
+
+    D_ab = :func:`dipole_field_templates` of the profiles h_a of :func:`motion_profiles`: the
+    mean dipole field (∝ ν_v²) minus the covariance it removes (the ν_v = 1 value;
+    docs/observer_terms.md, section 4). No integral constraint changes it (they act on J = 0
+    on the full sky); on a masked sky it would depend on the direction of v_o relative to the
+    mask (not modelled). Returns ({(a, b): (n_ell, n_bins)}, σ_3D [units of c])."""
+    from .estimator import EstimatorResolution
+    resolution = resolution or EstimatorResolution(k_nodes=16)
+    _, names, h, s3 = motion_profiles(cosmo, shell, edges, tracer, terms, resolution)
+    return dipole_field_templates(shell, edges, names, h, ells, resolution), s3
