@@ -41,7 +41,8 @@ from .lightcone import OBSERVER_TERMS, doppler_factor
 
 __all__ = ["OBSERVER_TERMS", "CMB_DIPOLE_SPEED", "CMB_DIPOLE_SPEED_ERROR", "CMB_DIPOLE_GALACTIC",
            "SPEED_OF_LIGHT", "ObserverPiece", "observer_time", "observer_pieces",
-           "kinematic_dipole", "velocity_dispersion"]
+           "kinematic_dipole", "velocity_dispersion", "motion_q_grid", "motion_profiles",
+           "dipole_field_templates", "motion_templates"]
 
 SPEED_OF_LIGHT = 299792.458                 # km/s (exact)
 #: the Sun's speed with respect to the CMB [km/s], its error, and its direction (galactic
@@ -120,6 +121,27 @@ def velocity_dispersion(cosmo, q, wq):
     return float(np.sqrt(s2)), float(np.sqrt(3.0 * s2))
 
 
+def motion_q_grid(r_max, q_ir, q_top=20.0):
+    """(q, ωq) for the velocity at the observer: 32 Gauss–Legendre nodes in ln q from q_ir to
+    6/r_max, panels of 4/r_max (8 nodes) up to 0.5 h/Mpc (the oscillation of j_1(q r) on the
+    shell), 32 nodes in ln q up to ``q_top``. The whole ∫P dq of the velocity variance is
+    needed (the kinematic dipole is given exactly by v_o); measured for the Planck 2018
+    preset: σ_3D = 544.20 km/s, 544.25 with q_top = 200 (linear theory; the part above
+    ~1 h/Mpc is not linear anyway: docs/observer_terms.md)."""
+    from .quadrature import composite_gl
+    t, u = np.polynomial.legendre.leggauss(32)
+
+    def log_gl(a, b):
+        span = np.log(b) - np.log(a)
+        x = np.exp(np.log(a) + span * 0.5 * (t + 1.0))
+        return x, x * 0.5 * span * u
+    q_lo = max(6.0 / float(r_max), 2.0 * float(q_ir))
+    q1, w1 = log_gl(float(q_ir), q_lo)
+    q2, w2 = composite_gl(q_lo, 0.5, 4.0 / float(r_max))
+    q3, w3 = log_gl(0.5, float(q_top))
+    return np.concatenate([q1, q2, q3]), np.concatenate([w1, w2, w3])
+
+
 def motion_profiles(cosmo, shell, edges, tracer, terms=None, resolution=None):
     """The dipole of the counts expected given the observer's velocity, per unit of it:
     (r, names, h (n_names, n_r), σ_3D), with
@@ -132,10 +154,11 @@ def motion_profiles(cosmo, shell, edges, tracer, terms=None, resolution=None):
     Ribak 1991 regression; only J = 1 correlates with a vector at the origin). W_1^a includes
     observer_motion (the kinematic dipole, X = its coefficient × σ_V²) and every source piece
     correlated with v_o. ``tracer``: TracerCoefficients with ``terms``, or a list of
-    BasisKernel (the curved forward model's basis); q, r on the grids of ``resolution``."""
-    from .estimator import EstimatorResolution, monopole_profiles, resolution_grids
+    BasisKernel (the curved forward model's basis); q on :func:`motion_q_grid`, r on the window
+    nodes of ``resolution``."""
+    from .estimator import EstimatorResolution, monopole_profiles
     resolution = resolution or EstimatorResolution(k_nodes=16)
-    _, (q, wq), _, _ = resolution_grids(shell, np.asarray(edges, dtype=float), resolution)
+    q, wq = motion_q_grid(shell.r_max, resolution.q_ir)
     _, s3 = velocity_dispersion(cosmo, q, wq)
     fh = float(cosmo.growth_rate(0.0)) * float(cosmo.conformal_hubble(0.0))
     pq = np.asarray(cosmo.power(q, 0.0), dtype=float)
