@@ -25,11 +25,12 @@ The vocabulary (all sections but ``survey`` optional)::
     samples:    [{name, survey, tracers, spectra, data, covariance}, ...]   independent samples
                 (see likelihood.config.samples)
     effects:    {rsd, fnl, doppler, potential, window, integral_constraint: none | global | radial,
-                 observer, lensing, isw, time_delay}   (radial and the last three: curved_sky)
+                 observer, lensing, isw, time_delay, observer_motion, observer_potential}
+                (radial and the last five: curved_sky)
     engine:     {kind: plane_parallel | curved_sky, snapshot, bias_evolution | tracer_table: FILE,
                  resolution, mask_tolerance}
                 (see likelihood.config.engine)
-    observer:   {field: potential | density, smoothing, k_ir, nu_true}
+    observer:   {field: potential | density, smoothing, k_ir, nu_true, speed}
     data:       {file: FILE | mock: {seed, noise, truth: {...}, k_min, k_max, n_bins},
                  ells, k_min, k_max, shot_noise_subtracted}
     covariance: {kind: gaussian | file | mocks, file: FILE, mocks: GLOB, method: hartlap | t}
@@ -54,6 +55,7 @@ import yaml
 
 from ..errors import ConfigError
 from .engine import BIAS_EVOLUTION, ENGINES, check_engine, is_curved
+from .engine import motion_mode as engine_motion
 from .engine import resolution as engine_resolution
 from .engine import table_path as engine_table
 from .multitracer import check_analytic, check_covariance_kind, parameter_table, validate_tracers
@@ -304,6 +306,9 @@ SCHEMA = {
         "lensing": (_bool, None),
         "isw": (_bool, None),
         "time_delay": (_bool, None),
+        # observer terms: curved-sky engine only (config/engine.py)
+        "observer_motion": (engine_motion, None),
+        "observer_potential": (_bool, None),
     },
     # the theory engine (config/engine.py); a plane-parallel config stores nothing here
     "engine": {
@@ -319,6 +324,7 @@ SCHEMA = {
         "smoothing": (_num(0.0, lo_open=True), None),
         "k_ir": (_num(0.0, lo_open=True), None),
         "nu_true": (_num(), 1.0),
+        "speed": (_num(0.0), None),     # km/s, effects.observer_motion: conditioned
     },
     "data": {
         "file": (_str, None),

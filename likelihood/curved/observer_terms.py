@@ -42,7 +42,7 @@ from .lightcone import OBSERVER_TERMS, doppler_factor
 __all__ = ["OBSERVER_TERMS", "CMB_DIPOLE_SPEED", "CMB_DIPOLE_SPEED_ERROR", "CMB_DIPOLE_GALACTIC",
            "SPEED_OF_LIGHT", "ObserverPiece", "observer_time", "observer_pieces",
            "kinematic_dipole", "velocity_dispersion", "motion_q_grid", "motion_profiles",
-           "dipole_field_templates", "motion_templates"]
+           "dipole_field_templates", "motion_templates", "MotionConditioning"]
 
 SPEED_OF_LIGHT = 299792.458                 # km/s (exact)
 #: the Sun's speed with respect to the CMB [km/s], its error, and its direction (galactic
@@ -218,3 +218,26 @@ def motion_templates(cosmo, shell, edges, tracer, terms=None, ells=(0, 2, 4),
     resolution = resolution or EstimatorResolution(k_nodes=16)
     _, names, h, s3 = motion_profiles(cosmo, shell, edges, tracer, terms, resolution)
     return dipole_field_templates(shell, edges, names, h, ells, resolution), s3
+
+
+@dataclass(frozen=True)
+class MotionConditioning:
+    """The counts conditioned on the observer's measured speed |v_o| [km/s] (default: the CMB
+    dipole, CMB_DIPOLE_SPEED): ν_v = |v_o|/σ_3D with σ_3D the linear-theory rms at the cosmology
+    (:func:`velocity_dispersion`), and the templates (ν_v² − 1) D_ab of :func:`motion_templates`
+    to add to the averaged model (full sky). The Sun's velocity includes non-linear motions
+    (its orbit in the Galaxy, the Local Group's infall) that linear theory does not correlate
+    with the distant field; the kinematic dipole itself is exact (docs/observer_terms.md)."""
+    speed: float = CMB_DIPOLE_SPEED
+
+    def __post_init__(self):
+        v = self.speed
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not np.isfinite(v) or v < 0:
+            raise ConfigError(f"observer speed = {v!r}: expected a number >= 0 in km/s")
+
+    def templates(self, cosmo, shell, edges, tracer, terms=None, ells=(0, 2, 4),
+                  resolution=None):
+        """({(a, b): (ν_v² − 1) D_ab}, ν_v)."""
+        pairs, s3 = motion_templates(cosmo, shell, edges, tracer, terms, ells, resolution)
+        nu = self.speed / SPEED_OF_LIGHT / s3
+        return {k: (nu * nu - 1.0) * v for k, v in pairs.items()}, nu

@@ -45,6 +45,13 @@ def _curved(write_config, *extra):
                     "fnl": {"flat": [-50, 50], "start": 1.0},
                     "nu_obs": {"gauss": [0, 1], "start": 1.0},
                     "shot_noise": {"flat": [0, 3], "start": 1.0}}},
+    {"effects": {"observer_motion": "conditioned", "observer_potential": True,   # observer terms
+                 "integral_constraint": "none"}, **FREE_BE_S},
+    {"effects": {"observer_motion": True, "observer_potential": True, "observer": True},
+     "observer": {"nu_true": 1.5},
+     "parameters": {"b1": {"flat": [0.5, 5.0], "start": 2.0},
+                    "nu_obs": {"gauss": [0, 1], "start": 1.0},
+                    "shot_noise": {"flat": [0, 3], "start": 1.0}}},
 ])
 def test_fast_path_equals_direct_engine_run(write_config, extra):
     """Templates of the basis kernels (a quadratic form in the amplitudes) reproduce a direct run
@@ -135,6 +142,17 @@ def test_plane_parallel_hash_unchanged_by_engine_section(write_config):
     ({"engine": {"kind": "curved_sky", "resolution": {"q_rang": 2}}}, "q_rang"),
     ({"engine": {"kind": "curved_sky", "resolution": {"k_nodes": 2.5}}}, "k_nodes"),
     ({"engine": {"kind": "curved"}}, "engine.kind"),
+    ({"effects": {"observer_motion": "averaged"}}, "effects.observer_motion"),
+    ({"effects": {"observer_potential": True}}, "effects.observer_potential"),
+    ({"observer": {"speed": 369.82}}, "observer.speed"),
+    ({"engine": {"kind": "curved_sky"}, "effects": {"observer_motion": "conditioned"},
+      "survey": {"geometry": {"shape": "cap", "r_min": 1950.0, "r_max": 3140.0, "fsky": 0.5}}},
+     "effects.observer_motion"),
+    ({"engine": {"kind": "curved_sky"}, "effects": {"observer_motion": "partly"}},
+     "effects.observer_motion"),
+    ({"engine": {"kind": "curved_sky", "snapshot": True},
+      "effects": {"observer_potential": True}}, "effects.observer_potential"),
+    ({"engine": {"kind": "curved_sky"}, "observer": {"speed": 369.82}}, "observer.speed"),
 ])
 def test_bad_engine_settings_one_line(write_config, over, words):
     with pytest.raises(ConfigError) as exc:
