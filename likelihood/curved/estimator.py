@@ -518,7 +518,7 @@ def _check_resolution(shell, k, q, wq, j_max, ells, ic, acc, probe, q_ir, wk, nb
     * infrared: the change of P̂ when the cut-off q_IR is lowered tenfold, from the integrand
       per unit ln q at the first two q nodes extrapolated as a power law q^α below them:
       d₀ (q_IR/q₀)^α (1 − 10^{−α})/α (d₀ ln 10 for α → 0), on the bin averages. Sizeable only for ic = "none" with
-      the potential or f_NL pieces (the observer terms that cancel it are not included). The
+      the potential or f_NL pieces (unless the observer terms, which cancel it, are on). The
       power law matters: taking the integrand as flat in ln q at one k node overestimated the
       demo shell's sensitivity (global IC, f_NL = 10, all terms) as 8e-3 of P̂_0 where lowering
       q_IR to 1e-5 h/Mpc moves the first quadrupole bin by 1.38e-4 of P̂_0 (this rule: 1.37e-4).
@@ -553,7 +553,7 @@ def _check_resolution(shell, k, q, wq, j_max, ells, ic, acc, probe, q_ir, wk, nb
     if ir > TAIL_TOLERANCE:
         warnings.warn(f"curved-sky estimator: with ic = {ic!r} the result depends on the infrared "
                       f"cut-off q_IR = {q[0]:.2g} h/Mpc ({ir:.2g} of P̂_0 per factor 10; the "
-                      "observer terms that cancel it are not included)"
+                      "observer terms observer_motion and observer_potential cancel it)"
                       + ("" if ic == "radial" else ": the radial integral constraint removes it"),
                       ResolutionWarning, stacklevel=3)
     return dict(q_tail=float(tail), ir_per_decade=float(ir))
