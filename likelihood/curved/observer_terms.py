@@ -41,7 +41,7 @@ from .lightcone import OBSERVER_TERMS, doppler_factor
 
 __all__ = ["OBSERVER_TERMS", "CMB_DIPOLE_SPEED", "CMB_DIPOLE_SPEED_ERROR", "CMB_DIPOLE_GALACTIC",
            "SPEED_OF_LIGHT", "ObserverPiece", "observer_time", "observer_pieces",
-           "kinematic_dipole", "velocity_dispersion", "motion_q_grid", "motion_profiles",
+           "kinematic_dipole", "velocity_dispersion", "observer_q_grid", "motion_profiles",
            "dipole_field_templates", "motion_templates", "MotionConditioning"]
 
 SPEED_OF_LIGHT = 299792.458                 # km/s (exact)
@@ -121,10 +121,11 @@ def velocity_dispersion(cosmo, q, wq):
     return float(np.sqrt(s2)), float(np.sqrt(3.0 * s2))
 
 
-def motion_q_grid(r_max, q_ir, q_top=20.0):
-    """(q, ωq) for the velocity at the observer: 32 Gauss–Legendre nodes in ln q from q_ir to
-    6/r_max, panels of 4/r_max (8 nodes) up to 0.5 h/Mpc (the oscillation of j_1(q r) on the
-    shell), 32 nodes in ln q up to ``q_top``. The whole ∫P dq of the velocity variance is
+def observer_q_grid(r_max, q_ir, q_top=20.0):
+    """(q, ωq) for correlations with a field at the observer: 32 Gauss–Legendre nodes in ln q
+    from q_ir to max(6/r_max, 2 q_ir), panels of 4/r_max (8 nodes) up to 0.5 h/Mpc (the
+    oscillation of j_J(q r) on the shell), then 32 nodes in ln q up to ``q_top`` (None: stop at
+    0.5, as the constrained potential of model/curved.py). The whole ∫P dq of the velocity variance is
     needed (the kinematic dipole is given exactly by v_o); measured for the Planck 2018
     preset: σ_3D = 544.20 km/s, 544.25 with q_top = 200 (linear theory; the part above
     ~1 h/Mpc is not linear anyway: docs/observer_terms.md)."""
@@ -138,6 +139,8 @@ def motion_q_grid(r_max, q_ir, q_top=20.0):
     q_lo = max(6.0 / float(r_max), 2.0 * float(q_ir))
     q1, w1 = log_gl(float(q_ir), q_lo)
     q2, w2 = composite_gl(q_lo, 0.5, 4.0 / float(r_max))
+    if q_top is None:
+        return np.concatenate([q1, q2]), np.concatenate([w1, w2])
     q3, w3 = log_gl(0.5, float(q_top))
     return np.concatenate([q1, q2, q3]), np.concatenate([w1, w2, w3])
 
@@ -154,11 +157,11 @@ def motion_profiles(cosmo, shell, edges, tracer, terms=None, resolution=None):
     Ribak 1991 regression; only J = 1 correlates with a vector at the origin). W_1^a includes
     observer_motion (the kinematic dipole, X = its coefficient × σ_V²) and every source piece
     correlated with v_o. ``tracer``: TracerCoefficients with ``terms``, or a list of
-    BasisKernel (the curved forward model's basis); q on :func:`motion_q_grid`, r on the window
+    BasisKernel (the curved forward model's basis); q on :func:`observer_q_grid`, r on the window
     nodes of ``resolution``."""
     from .estimator import EstimatorResolution, monopole_profiles
     resolution = resolution or EstimatorResolution(k_nodes=16)
-    q, wq = motion_q_grid(shell.r_max, resolution.q_ir)
+    q, wq = observer_q_grid(shell.r_max, resolution.q_ir)
     _, s3 = velocity_dispersion(cosmo, q, wq)
     fh = float(cosmo.growth_rate(0.0)) * float(cosmo.conformal_hubble(0.0))
     pq = np.asarray(cosmo.power(q, 0.0), dtype=float)

@@ -49,8 +49,7 @@ from ..curved.estimator import (BasisKernel, EstimatorResolution, Shell, Templat
                                 monopole_profiles, multipole_templates, radial_field_templates)
 from ..curved.mask import (MASK_TOLERANCE, Cap, HealpixMask, masked_radial_field_templates,
                            masked_templates)
-from ..curved.observer_terms import CMB_DIPOLE_SPEED, MotionConditioning
-from ..curved.quadrature import composite_gl
+from ..curved.observer_terms import CMB_DIPOLE_SPEED, MotionConditioning, observer_q_grid
 from ..io import cache_folder, open_atomic
 from ..observation.matrix import KBins
 from ..theory import tracer as tr
@@ -455,14 +454,7 @@ class CurvedObserver:
 
     def _measure(self, cosmo):
         from ..observation.observer import constraint_kernel, sigma_c
-        r_max = self.model.shell.r_max
-        q_lo = max(6.0 / r_max, 2.0 * self.k_ir)
-        t, u = np.polynomial.legendre.leggauss(32)
-        span = np.log(q_lo) - np.log(self.k_ir)
-        q1 = np.exp(np.log(self.k_ir) + span * 0.5 * (t + 1.0))
-        q2, w2 = composite_gl(q_lo, 0.5, 4.0 / r_max)
-        q = np.concatenate([q1, q2])
-        wq = np.concatenate([q1 * 0.5 * span * u, w2])
+        q, wq = observer_q_grid(self.model.shell.r_max, self.k_ir, None)
         c = constraint_kernel(cosmo, 0.0, q, self.field, self.smoothing)
         sig = sigma_c(cosmo, 0.0, self.field, self.smoothing, k_ir=self.k_ir)
         return q, wq * q * q * np.asarray(cosmo.power(q, 0.0)) * c / (2.0 * np.pi ** 2) / sig

@@ -11,7 +11,7 @@ from likelihood.curved.estimator import (EstimatorResolution, Shell, monopole_pr
                                          multipole_templates, resolution_grids)
 from likelihood.curved.lightcone import LightCone
 from likelihood.curved.observer_terms import (SPEED_OF_LIGHT, dipole_field_templates,
-                                              kinematic_dipole, motion_profiles, motion_q_grid,
+                                              kinematic_dipole, motion_profiles, observer_q_grid,
                                               motion_templates, observer_time,
                                               velocity_dispersion)
 from likelihood.theory.cosmology import Cosmology
@@ -157,12 +157,12 @@ def test_kinematic_dipole_against_boosted_counts(cosmo):
 
 def test_velocity_dispersion(cosmo):
     """σ_∥² = (f_0ℋ_0)² ∫ P dq/(6π²) per component, σ_3D² = 3σ_∥² (linear continuity,
-    v = i q̂ fℋδ/q; common practice, e.g. Peebles 1993) on motion_q_grid against scipy quad
+    v = i q̂ fℋδ/q; common practice, e.g. Peebles 1993) on observer_q_grid against scipy quad
     of the same integral (1e-5); measured 314.19 and 544.20 km/s for Planck 2018. And the
     harmonic normalisation of the J = 1 kernel: the conditioned dipole of the observer_motion
     piece alone, h = X/σ_V, is its coefficient × σ_V with σ_V² = (4π/9) σ_3D² (⟨(v·n̂)²⟩ =
     Σ_J (2J+1) C_J/4π = 3 σ_V²/4π = σ_∥²)."""
-    q, wq = motion_q_grid(3200.0, 1e-4)
+    q, wq = observer_q_grid(3200.0, 1e-4)
     s1, s3 = velocity_dispersion(cosmo, q, wq)
     fh = float(cosmo.growth_rate(0.0)) * float(cosmo.conformal_hubble(0.0))
     integral = quad(lambda lq: np.exp(lq) * float(cosmo.power(np.exp(lq), 0.0)),

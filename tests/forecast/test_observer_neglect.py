@@ -1,30 +1,20 @@
 """Forecast bias from neglecting the observer terms of a curved-sky truth model
 (forecast.neglect: observer_motion, observer_potential)."""
-import os
 import warnings
 
 import numpy as np
-import pytest
 from scipy.optimize import minimize
 
 from likelihood.config import load_config
 from likelihood.config.variants import analysis_config
 from likelihood.forecast.bias import bias_forecast
+from tests.conftest import merge
+from tests.forecast.test_curved_neglect import CURVED, _cache_in_tmp  # noqa: F401 (fixture)
 
-TRUTH = {"engine": {"kind": "curved_sky", "resolution": {"k_nodes": 2, "q_range": 1.5}},
-         "effects": {"integral_constraint": "global", "observer_motion": "conditioned",
-                     "observer_potential": True},
-         "observer": {"speed": 369.82},
-         "tracer": {"b_e": 1.5, "s": 0.25},
-         "data": {"mock": {"noise": False, "k_min": 0.002, "k_max": 0.02, "n_bins": 6}},
-         "parameters": {"b1": {"flat": [0.5, 5.0], "start": 2.0, "scale": 0.01},
-                        "fnl": {"flat": [-200.0, 200.0], "start": 0.0, "scale": 1.0},
-                        "shot_noise": {"fixed": 1.0}}}
-
-
-@pytest.fixture(autouse=True)
-def _cache_in_tmp(tmp_path, monkeypatch):
-    monkeypatch.setenv("XDG_CACHE_HOME", os.fspath(tmp_path / "cache"))
+TRUTH = merge(CURVED, {"effects": {"integral_constraint": "global",
+                                   "observer_motion": "conditioned", "observer_potential": True},
+                       "observer": {"speed": 369.82},
+                       "data": {"mock": {"k_min": 0.002, "n_bins": 6}}})
 
 
 def test_neglected_observer_terms(write_config):
