@@ -33,7 +33,7 @@ from ..errors import ConfigError
 from .bessel import bessel_derivatives, bessel_order_max, bessel_x_min, spherical_jn_all
 from .lightcone import (INTEGRATED_TERMS, LOCAL_TERMS, LightCone, ResolutionWarning,
                         TracerCoefficients, check_terms, integrated_pieces, local_pieces)
-from .observer_terms import ObserverPiece, observer_pieces
+from .observer_terms import ObserverPiece, motion_tail, observer_pieces
 from .quadrature import composite_gl
 
 __all__ = ["EstimatorResolution", "Shell", "Templates", "BasisKernel", "multipole_templates",
@@ -315,6 +315,43 @@ def _radial_part(piece, J, kinds):
     return kinds[piece.order]
 
 
+def _motion_radials(side, combine):
+    """Per kernel name of one side (a _KernelSet or a _BasisSet), the radial factor c(r) of its
+    observer_motion piece(s) (None where there is none), summed as the kernels are."""
+    def one(kset):
+        c = [p.radial for p in kset.loc if isinstance(p, ObserverPiece) and p.order == 1]
+        return sum(c) if c else None
+    if isinstance(side, _KernelSet):
+        per = [one(side) if p.name == "observer_motion" else None for p in side.loc] \
+            + [None] * len(side.integ)
+    else:
+        per = []
+        for el in side.elements:
+            got = [v for v in map(one, el) if v is not None]
+            per.append(sum(got) if got else None)
+    if combine:
+        got = [v for v in per if v is not None]
+        per = [sum(got) if got else None]
+    return per
+
+
+def _motion_tail_spectra(cosmo, q, wq, sets, auto, combine):
+    """({(ia, ib): ρ_a(r1) ρ_b(r2) × motion_tail}, the same with the last q panel's share)
+    for the observer_motion parts of the two sides (likelihood.curved.observer_terms.
+    motion_tail), J = 1 only; ({}, {}) if there are none. The second is what the q-tail probe
+    of _check_resolution saw of this part, now integrated exactly."""
+    ka = _motion_radials(sets[0], combine)
+    kb = ka if auto else _motion_radials(sets[1], combine)
+    pairs = [(ia, ib) for ia, a in enumerate(ka) for ib, b in enumerate(kb)
+             if a is not None and b is not None]
+    if not pairs:
+        return {}, {}
+    tail = motion_tail(cosmo, q, wq)
+    last = float((2.0 / np.pi) * np.sum((wq * np.asarray(cosmo.power(q, 0.0), dtype=float))[-8:]))
+    outer = {(ia, ib): np.outer(ka[ia], kb[ib]) for ia, ib in pairs}
+    return ({p: tail * o for p, o in outer.items()}, {p: last * o for p, o in outer.items()})
+
+
 def ic_monopole(profile, v, ic):
     """The integral constraint acting on the angular monopole a_00(r) (… , n_r) of the field on
     the full sky (the only harmonic an IC changes there): "none" leaves it; "global" removes
@@ -482,6 +519,11 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
                 acc[:, :, i, ka:] += fac * prod.transpose(1, 2, 0)
                 for name, mp in probes:
                     probe[name][i, ka:] += fac * np.einsum("kaq,q,kbq->k", ua, mp, VB)
+    tails, lasts = _motion_tail_spectra(cosmo, q, wq, sets, auto, combine_pieces)
+    fac = np.array([(2 * l + 1) * 4 * np.pi / i2 for l in ells])[:, None]
+    for key, c1 in tails.items():
+        acc[key] += fac * radial_projection(1, ells, c1, jk, base)
+        probe["tail"] -= fac * radial_projection(1, ells, lasts[key], jk, base)
     checks = _check_resolution(shell, k, q, wq, j_max, ells, ic, acc, probe, resolution.q_ir,
                                wk, edges.size - 1)
     vals = acc
@@ -759,6 +801,7 @@ class NodeSpectra:
         r, q = self.r, self.q
         self.weight = shell._eval("weight", shell.weight, r)
         self.base = self.wr * r ** 2 * self.weight
+        self.cosmo = cosmo
         self.meas = (2.0 / np.pi) * self.wq * q * q * np.asarray(cosmo.power(q, 0.0), dtype=float)
         sides = _kernel_sides(cosmo, shell, r, q, tracer_a, terms_a, tracer_b, terms_b,
                               snapshot_z)
@@ -807,6 +850,12 @@ class NodeSpectra:
                 left = {a: (WA[a] * self.meas[sl][:, None]).T for a in ia_set}   # (r, q)
                 for a, b in pairs:
                     out[a, b][L] += left[a] @ WB[b]
+        if l_top >= 1:
+            tails, _ = _motion_tail_spectra(self.cosmo, q, self.wq, self.sets, self.auto,
+                                            self.combine)
+            for p in pairs:
+                if p in tails:
+                    out[p][1] += tails[p]
         return out
 
     def project(self, J, ells, c_j):

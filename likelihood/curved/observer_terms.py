@@ -41,7 +41,7 @@ from .lightcone import OBSERVER_TERMS, doppler_factor
 
 __all__ = ["OBSERVER_TERMS", "CMB_DIPOLE_SPEED", "CMB_DIPOLE_SPEED_ERROR", "CMB_DIPOLE_GALACTIC",
            "SPEED_OF_LIGHT", "ObserverPiece", "observer_time", "observer_pieces",
-           "kinematic_dipole", "velocity_dispersion", "observer_q_grid", "motion_profiles",
+           "kinematic_dipole", "velocity_dispersion", "motion_tail", "observer_q_grid", "motion_profiles",
            "dipole_field_templates", "motion_templates", "MotionConditioning"]
 
 SPEED_OF_LIGHT = 299792.458                 # km/s (exact)
@@ -106,6 +106,29 @@ def observer_pieces(cone, bg, tc, terms):
     return out
 
 
+def motion_tail(cosmo, q, wq):
+    """(2/π) [∫ P dq − Σ ωq P(q)]: what the caller's q quadrature (q, ωq) misses of the J = 1
+    spectrum ρ(r1) ρ(r2) (2/π) ∫ P dq of observer_motion pieces W_1 = ρ(r)/q (ρ the piece's
+    radial factor, f_0ℋ_0/3 included). That kernel does not decay with q (no j_J(qr)), so its
+    own variance needs the whole ∫P dq, while the engine's q grid stops where the source
+    kernels have decayed (q_max ≈ 0.1 h/Mpc, where 10–40 % of ∫P dq lies beyond; its 16-node
+    infrared segment is also good to 3e-4 only). The engine adds this as a rank-one J = 1
+    spectrum, so the motion's own variance is that of :func:`observer_q_grid` (5e-7 of scipy
+    quad), exact since every other piece is negligible beyond q_max by the q_max rule."""
+    q, wq = np.asarray(q, dtype=float), np.asarray(wq, dtype=float)
+    qf, wf = observer_q_grid(1000.0, float(q[0]) * 0.5)
+    full = np.sum(wf * np.asarray(cosmo.power(qf, 0.0), dtype=float))
+    return float((2.0 / np.pi) * (full - np.sum(wq * np.asarray(cosmo.power(q, 0.0), dtype=float))))
+
+
+def _log_gl(a, b, n=32):
+    """n-point Gauss–Legendre in ln q on [a, b]: (q, ωq)."""
+    t, u = np.polynomial.legendre.leggauss(n)
+    span = np.log(b) - np.log(a)
+    x = np.exp(np.log(a) + span * 0.5 * (t + 1.0))
+    return x, x * 0.5 * span * u
+
+
 def velocity_dispersion(cosmo, q, wq):
     """(σ_∥, σ_3D): the rms of one component (e.g. the line of sight) and of the modulus of the
     linear matter velocity at the observer today, in units of c, on the caller's q quadrature:
@@ -130,18 +153,12 @@ def observer_q_grid(r_max, q_ir, q_top=20.0):
     preset: σ_3D = 544.20 km/s, 544.25 with q_top = 200 (linear theory; the part above
     ~1 h/Mpc is not linear anyway: docs/observer_terms.md)."""
     from .quadrature import composite_gl
-    t, u = np.polynomial.legendre.leggauss(32)
-
-    def log_gl(a, b):
-        span = np.log(b) - np.log(a)
-        x = np.exp(np.log(a) + span * 0.5 * (t + 1.0))
-        return x, x * 0.5 * span * u
     q_lo = max(6.0 / float(r_max), 2.0 * float(q_ir))
-    q1, w1 = log_gl(float(q_ir), q_lo)
+    q1, w1 = _log_gl(float(q_ir), q_lo)
     q2, w2 = composite_gl(q_lo, 0.5, 4.0 / float(r_max))
     if q_top is None:
         return np.concatenate([q1, q2]), np.concatenate([w1, w2])
-    q3, w3 = log_gl(0.5, float(q_top))
+    q3, w3 = _log_gl(0.5, float(q_top))
     return np.concatenate([q1, q2, q3]), np.concatenate([w1, w2, w3])
 
 

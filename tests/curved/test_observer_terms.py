@@ -237,3 +237,29 @@ def test_motion_templates(cosmo):
     comb = sum(x[a] * x[b] * t for (a, b), t in pairs.items())
     np.testing.assert_allclose(comb, sum(direct.values()), rtol=1e-10, atol=1e-12)
     assert s3 == s3d
+
+
+def test_averaged_motion_is_the_dipole_field_of_its_variance(cosmo):
+    """Two routes to the same number: the averaged observer_motion piece alone in the engine's
+    multipole expectation (the J sum of likelihood.curved.estimator, kernel c(r) f_0ℋ_0/(3q) at
+    J = 1, q integral on the engine's grid plus motion_tail beyond it) equals
+    dipole_field_templates of the rank-one spectrum c(r1) c(r2) σ_V², σ_V² = (4π/9) σ_3D² from
+    velocity_dispersion on observer_q_grid (docs/observer_terms.md, sections 3 and 5), for
+    ℓ = 0–4 (odd ones included). Agreement 1e-4 (the two q quadratures; measured below)."""
+    shell = Shell(1000.0, 1800.0)
+    edges = np.linspace(0.004, 0.02, 4)
+    ells = (0, 1, 2, 3, 4)
+    res = EstimatorResolution(k_nodes=16)
+    tracer = TracerCoefficients(b=1.0, b_e=0.7, s=0.1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")     # no false q-tail warning: the tail is integrated
+        t = multipole_templates(cosmo, shell, edges, tracer, ("observer_motion",), ells=ells,
+                                resolution=res, combine_pieces=True).combine({}, {})
+    r = resolution_grids(shell, edges, res)[2][0]
+    _, s3 = velocity_dispersion(cosmo, *observer_q_grid(shell.r_max, res.q_ir))
+    bg = LightCone(cosmo, 1.0).background(r)
+    c = kinematic_dipole(bg, tracer.at(bg["z"])) * s3 * np.sqrt(4 * np.pi / 9) \
+        * float(cosmo.growth_rate(0.0)) ** 0          # h = c σ_V
+    want = dipole_field_templates(shell, edges, ["a"], c[None], ells, res)["a", "a"]
+    assert np.abs(want).max() > 0
+    np.testing.assert_allclose(t, want, rtol=1e-4, atol=1e-4 * np.abs(want).max())

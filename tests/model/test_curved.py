@@ -251,6 +251,8 @@ CAP = {"survey": {"geometry": {"shape": "cap", "r_min": 1950.0, "r_max": 3140.0,
                     "fnl": {"flat": [-50, 50], "start": 1.0},
                     "nu_obs": {"gauss": [0, 1], "start": 1.0},
                     "shot_noise": {"flat": [0, 3], "start": 1.0}}},
+    {"effects": {"observer_motion": "averaged", "observer_potential": True,       # observer terms
+                 "integral_constraint": "none"}, **FREE_BE_S},
 ])
 def test_cap_fast_path_equals_direct_engine_run(write_config, extra):
     """A polar cap (shape: cap, f_sky = 0.25): the masked basis templates (and the masked
