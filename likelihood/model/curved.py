@@ -20,7 +20,12 @@ exact. The expected estimator is then Σ_{a≤b} x_a x_b T_ab + A_sn N − s_sub
 engine's pair templates of the basis, N its shot-noise template (same window and integral
 constraint) and the flat 1/n̄ monopole subtraction as in the plane-parallel model; with
 ``effects.observer`` the constrained-field term adds (ν² − 1) Σ_{a≤b} x_a x_b O_ab, the mean
-field being linear in the basis kernels too (:class:`CurvedObserver`). The direct
+field being linear in the basis kernels too (:class:`CurvedObserver`); with
+``effects.observer_motion: conditioned`` the pair templates gain (ν_v² − 1) D_ab, the
+conditioning on our measured speed (ν_v = observer.speed/σ_3D fixed by the config and the
+cosmology; likelihood.curved.observer_terms.MotionConditioning, docs/observer_terms.md). The
+observer pieces themselves (observer_motion, observer_potential) are affine in b_e and s and sit
+in W_1, W_be and W_s like the other projection pieces. The direct
 path (:meth:`CurvedForwardModel.full`) recomputes the engine with the tracer at the parameter
 values; they agree to 1e-10 (tests/model/test_curved.py).
 
