@@ -6,7 +6,9 @@
     (-P: bench/likelihood.py shadows the package)
 
 ``--observer``: the observer terms too (observer_motion, observer_potential;
-docs/observer_terms.md). ``--mask F_SKY``: the masked case (likelihood.curved.mask) instead: the demo shell 1937–3144
+docs/observer_terms.md).
+
+``--mask F_SKY``: the masked case (likelihood.curved.mask) instead: the demo shell 1937–3144
 Mpc/h cut to a polar cap of sky fraction F_SKY (0.25 in docs/curved_mask.md), same bins, ℓ ≤ 4,
 radial IC; the direct path (every tracer piece summed into one kernel), or with
 ``--templates`` the pair templates of the pieces.

@@ -724,7 +724,8 @@ def monopole_profiles(cosmo, shell, edges, q, measure, tracer, terms=("density",
     directions (Rayleigh expansion). ``tracer``: TracerCoefficients (with ``terms``) or a
     sequence of BasisKernel. Returns (r, names, profiles (n_names, n_r)).
     ``order`` = 1 gives Σ_i measure_i W_1(q_i, r) instead: the profile of the J = 1 part, which
-    alone correlates with a vector at the observer (its velocity; likelihood.curved.observer_terms)."""
+    alone correlates with a vector at the observer (its velocity;
+    likelihood.curved.observer_terms)."""
     q = np.asarray(q, dtype=float)
     measure = np.asarray(measure, dtype=float)
     if q.ndim != 1 or q.shape != measure.shape or q.size == 0 or q.min() <= 0:

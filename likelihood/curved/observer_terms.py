@@ -41,8 +41,8 @@ from .lightcone import OBSERVER_TERMS, doppler_factor
 
 __all__ = ["OBSERVER_TERMS", "CMB_DIPOLE_SPEED", "CMB_DIPOLE_SPEED_ERROR", "CMB_DIPOLE_GALACTIC",
            "SPEED_OF_LIGHT", "ObserverPiece", "observer_time", "observer_pieces",
-           "kinematic_dipole", "velocity_dispersion", "motion_tail", "observer_q_grid", "motion_profiles",
-           "dipole_field_templates", "motion_templates", "MotionConditioning"]
+           "kinematic_dipole", "velocity_dispersion", "motion_tail", "observer_q_grid",
+           "motion_profiles", "dipole_field_templates", "motion_templates", "MotionConditioning"]
 
 SPEED_OF_LIGHT = 299792.458                 # km/s (exact)
 #: the Sun's speed with respect to the CMB [km/s], its error, and its direction (galactic
@@ -148,8 +148,8 @@ def observer_q_grid(r_max, q_ir, q_top=20.0):
     """(q, ωq) for correlations with a field at the observer: 32 Gauss–Legendre nodes in ln q
     from q_ir to max(6/r_max, 2 q_ir), panels of 4/r_max (8 nodes) up to 0.5 h/Mpc (the
     oscillation of j_J(q r) on the shell), then 32 nodes in ln q up to ``q_top`` (None: stop at
-    0.5, as the constrained potential of model/curved.py). The whole ∫P dq of the velocity variance is
-    needed (the kinematic dipole is given exactly by v_o); measured for the Planck 2018
+    0.5, as the constrained potential of model/curved.py). The whole ∫P dq of the velocity
+    variance is needed (the kinematic dipole is given exactly by v_o); measured for the Planck 2018
     preset: σ_3D = 544.20 km/s, 544.25 with q_top = 200 (linear theory; the part above
     ~1 h/Mpc is not linear anyway: docs/observer_terms.md)."""
     from .quadrature import composite_gl
