@@ -169,12 +169,13 @@ def check_engine(cfg, src):
         if snapshot and eff.get(key):
             raise ConfigError(f"{src}: effects.{key}: engine.snapshot has local terms only; set "
                               f"effects.{key}: false or snapshot: false")
-        eff[key] = eff.get(key) or False
-    if eff["observer_motion"] == "conditioned" and masked:
+        if not eff.get(key):
+            eff.pop(key, None)        # stored only when on: the hash of earlier curved configs
+    if eff.get("observer_motion") == "conditioned" and masked:
         raise ConfigError(f"{src}: effects.observer_motion: conditioned is modelled on the full "
                           "sky only (with a mask it depends on the direction of our motion); use "
                           "averaged or a full-sky shell")
-    if "speed" in cfg["observer"] and eff["observer_motion"] != "conditioned":
+    if "speed" in cfg["observer"] and eff.get("observer_motion") != "conditioned":
         raise ConfigError(f"{src}: observer.speed applies to effects.observer_motion: "
                           "conditioned; remove it or set that mode")
     table = eng.get("tracer_table")

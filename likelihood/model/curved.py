@@ -532,7 +532,7 @@ def forward_model(cfg, srv, params, dv, mask, fiducial):
         cosmo_free=cosmo_free, shot_noise_subtracted=cfg["data"]["shot_noise_subtracted"])
     if srv.observer_on:
         model.observer = CurvedObserver(cfg, model)
-    if cfg["effects"]["observer_motion"] == "conditioned":
+    if cfg["effects"].get("observer_motion") == "conditioned":
         model.motion = MotionConditioning(cfg["observer"].get("speed", CMB_DIPOLE_SPEED))
     return model
 

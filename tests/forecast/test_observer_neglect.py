@@ -25,7 +25,7 @@ def test_neglected_observer_terms(write_config):
     is a valid config."""
     cfg = load_config(write_config(TRUTH))
     ana_cfg = analysis_config(cfg, ["observer_motion", "observer_potential"])
-    assert not ana_cfg["effects"]["observer_motion"]
+    assert not ana_cfg["effects"].get("observer_motion")
     assert "speed" not in ana_cfg["observer"]
     pp = analysis_config(cfg, ["plane_parallel"])
     assert "engine" not in pp.raw and "observer_motion" not in pp["effects"]

@@ -108,6 +108,17 @@ def test_templates_cached_on_disk(write_config, tmp_path):
                 if f.startswith("curved-templates-")]) == 2
 
 
+def test_curved_hash_unchanged_by_observer_terms_off(write_config):
+    """Writing the observer terms off explicitly keeps a curved-sky config's hash (and so the
+    run folders and chains of curved configs made before these terms existed)."""
+    plain = load_config(write_config(CURVED, name="a.yaml"))
+    explicit = load_config(write_config(dict(CURVED, effects={"observer_motion": False,
+                                                              "observer_potential": False}),
+                                        name="b.yaml"))
+    assert plain.hash == explicit.hash
+    assert "observer_motion" not in plain["effects"]
+
+
 def test_plane_parallel_hash_unchanged_by_engine_section(write_config):
     """Writing the default engine explicitly keeps the plane-parallel config hash."""
     plain = load_config(write_config({}, name="a.yaml"))
