@@ -1,9 +1,12 @@
 """Benchmark: all curved-sky templates of a full-sky shell (1950–3200 Mpc/h), k ≤ 0.06 h/Mpc,
 ℓ ≤ 4. Prints wall time, peak memory (ru_maxrss) and the resolution used.
 
-    PYTHONPATH=. python3 -P bench/curved_sky.py [--local-only] [--blas-threads N]
+    PYTHONPATH=. python3 -P bench/curved_sky.py [--local-only] [--observer] [--blas-threads N]
         [--mask F_SKY [--templates]]
     (-P: bench/likelihood.py shadows the package)
+
+``--observer``: the observer terms too (observer_motion, observer_potential;
+docs/observer_terms.md).
 
 ``--mask F_SKY``: the masked case (likelihood.curved.mask) instead: the demo shell 1937–3144
 Mpc/h cut to a polar cap of sky fraction F_SKY (0.25 in docs/curved_mask.md), same bins, ℓ ≤ 4,
@@ -34,6 +37,8 @@ from likelihood.curved.mask import Cap, masked_templates  # noqa: E402
 terms = ("density", "rsd", "doppler", "potential", "fnl")
 if "--local-only" not in sys.argv:
     terms = terms + ("lensing", "isw", "time_delay")
+if "--observer" in sys.argv:
+    terms = terms + ("observer_motion", "observer_potential")
 cosmo = Cosmology.from_preset("planck2018")
 tr = TracerCoefficients(b=lambda z: 1.0 + 0.6 * z, b_e=0.5, s=0.25, fnl=1.0)
 edges = np.arange(0.002, 0.0601, 0.004)

@@ -21,6 +21,14 @@ the curved-sky route (likelihood.curved; docs/curved_sky.md, "Configuration").
       integral_constraint: none | global | radial  # radial: curved_sky only
       lensing: true, isw: true, time_delay: true   # integrated terms: curved_sky only
                                                    #   (default on there, off in snapshot mode)
+      observer_motion: false | averaged | conditioned   # the observer's velocity (J = 1);
+                                                   #   true = averaged; conditioned on
+                                                   #   observer.speed (km/s; default the CMB
+                                                   #   dipole), full sky only
+      observer_potential: false | true             # the observer's potential (J = 0),
+                                                   #   averaged; conditioned: effects.observer
+                                                   #   with observer.field: potential
+    (observer terms: curved_sky only, not in snapshot mode; likelihood.curved.observer_terms)
 
 Observer term (effects.observer): available with the none and global integral constraints, on the
 full sky or with an angular mask (cap or map); with the radial one it vanishes exactly (the
@@ -44,6 +52,8 @@ from .parameters import suggest
 ENGINES = ("plane_parallel", "curved_sky")
 BIAS_EVOLUTION = ("constant", "inverse_growth")
 INTEGRATED_EFFECTS = ("lensing", "isw", "time_delay")
+OBSERVER_EFFECTS = ("observer_motion", "observer_potential")
+MOTION_MODES = ("averaged", "conditioned")
 #: resolution key -> (default, lowest, highest): factors on the rules of
 #: likelihood.curved.estimator.EstimatorResolution (1 = the default rule), k_nodes per bin
 RESOLUTION = {"j_factor": (1.0, 0.5, 4.0), "q_range": (1.0, 0.5, 4.0),
@@ -84,6 +94,15 @@ def resolution(val, where):
     return out
 
 
+def motion_mode(val, where):
+    """effects.observer_motion: false, true (= averaged), averaged or conditioned."""
+    if val is False or val is True:
+        return "averaged" if val else False
+    if val not in MOTION_MODES:
+        raise ConfigError(f"{where}: expected false, averaged or conditioned, got {val!r}")
+    return val
+
+
 def is_curved(cfg):
     """True when the run uses the curved-sky engine."""
     return cfg.get("engine", {}).get("kind") == "curved_sky"
@@ -106,6 +125,15 @@ def check_engine(cfg, src):
                 raise ConfigError(f"{src}: effects.{key}: the integrated terms are modelled by "
                                   "engine.kind: curved_sky only; set it false or choose that engine")
             eff.pop(key, None)
+        for key in OBSERVER_EFFECTS:
+            if eff.get(key):
+                raise ConfigError(f"{src}: effects.{key}: the observer terms of the number counts "
+                                  "are modelled by engine.kind: curved_sky only; set it false or "
+                                  "choose that engine")
+            eff.pop(key, None)
+        if "speed" in cfg["observer"]:
+            raise ConfigError(f"{src}: observer.speed applies to effects.observer_motion: "
+                              "conditioned (engine.kind: curved_sky); remove it")
         if eff["integral_constraint"] == "radial":
             raise ConfigError(f"{src}: effects.integral_constraint: radial needs engine.kind: "
                               "curved_sky; the plane-parallel engine has none or global")
@@ -151,6 +179,19 @@ def check_engine(cfg, src):
             raise ConfigError(f"{src}: effects.{key}: engine.snapshot has local terms only; set "
                               f"effects.{key}: false or snapshot: false")
         eff[key] = eff.get(key, not snapshot)
+    for key in OBSERVER_EFFECTS:
+        if snapshot and eff.get(key):
+            raise ConfigError(f"{src}: effects.{key}: engine.snapshot has local terms only; set "
+                              f"effects.{key}: false or snapshot: false")
+        if not eff.get(key):
+            eff.pop(key, None)        # stored only when on: the hash of earlier curved configs
+    if eff.get("observer_motion") == "conditioned" and masked:
+        raise ConfigError(f"{src}: effects.observer_motion: conditioned is modelled on the full "
+                          "sky only (with a mask it depends on the direction of our motion); use "
+                          "averaged or a full-sky shell")
+    if "speed" in cfg["observer"] and eff.get("observer_motion") != "conditioned":
+        raise ConfigError(f"{src}: observer.speed applies to effects.observer_motion: "
+                          "conditioned; remove it or set that mode")
     table = eng.get("tracer_table")
     if table is not None:
         if "bias_evolution" in eng:

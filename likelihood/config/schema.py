@@ -25,11 +25,12 @@ The vocabulary (all sections but ``survey`` optional)::
     samples:    [{name, survey, tracers, spectra, data, covariance}, ...]   independent samples
                 (see likelihood.config.samples)
     effects:    {rsd, fnl, doppler, potential, window, integral_constraint: none | global | radial,
-                 observer, lensing, isw, time_delay}   (radial and the last three: curved_sky)
+                 observer, lensing, isw, time_delay, observer_motion, observer_potential}
+                (radial and the last five: curved_sky)
     engine:     {kind: plane_parallel | curved_sky, snapshot, bias_evolution | tracer_table: FILE,
                  resolution, mask_tolerance}
                 (see likelihood.config.engine)
-    observer:   {field: potential | density, smoothing, k_ir, nu_true}
+    observer:   {field: potential | density, smoothing, k_ir, nu_true, speed}
     data:       {file: FILE | mock: {seed, noise, truth: {...}, k_min, k_max, n_bins},
                  ells, k_min, k_max, shot_noise_subtracted}
     covariance: {kind: gaussian | file | mocks, file: FILE, mocks: GLOB, method: hartlap | t}
@@ -54,6 +55,7 @@ import yaml
 
 from ..errors import ConfigError
 from .engine import BIAS_EVOLUTION, ENGINES, check_engine, is_curved
+from .engine import motion_mode as engine_motion
 from .engine import resolution as engine_resolution
 from .engine import table_path as engine_table
 from .multitracer import check_analytic, check_covariance_kind, parameter_table, validate_tracers
@@ -171,7 +173,8 @@ def _mapping(val, where):
 
 # --- forecast section (Fisher forecasts and f_NL bias studies, read by likelihood.forecast) ---
 # forecast: {neglect: [doppler, potential, fnl, rsd, integral_constraint, window, observer,
-#                      plane_parallel, radial_integral_constraint, lensing, isw, time_delay],
+#                      plane_parallel, radial_integral_constraint, lensing, isw, time_delay,
+#                      observer_motion, observer_potential],
 #            parameters: [NAME, ...], priors: {NAME: sigma}, threshold: x, step_rtol: x,
 #            scan: {quantity: redshift | volume | fsky | thickness | b1 | nbar | b_e | s | k_min
 #                             | bias_split (several tracers; with nbar: [total n̄, ...]),
@@ -181,7 +184,8 @@ def _mapping(val, where):
 # Defaults are applied by likelihood.forecast (none are stored here).
 FORECAST_NEGLECT = ("doppler", "potential", "fnl", "rsd", "integral_constraint", "window", "observer",
                     # curved-sky truth models only (config/variants.py)
-                    "plane_parallel", "radial_integral_constraint", "lensing", "isw", "time_delay")
+                    "plane_parallel", "radial_integral_constraint", "lensing", "isw", "time_delay",
+                    "observer_motion", "observer_potential")
 FORECAST_SCAN = ("redshift", "volume", "fsky", "thickness", "b1", "nbar", "b_e", "s", "k_min",
                  "bias_split")
 _SCAN_POSITIVE = ("redshift", "volume", "fsky", "thickness", "nbar", "k_min")
@@ -304,6 +308,9 @@ SCHEMA = {
         "lensing": (_bool, None),
         "isw": (_bool, None),
         "time_delay": (_bool, None),
+        # observer terms: curved-sky engine only (config/engine.py)
+        "observer_motion": (engine_motion, None),
+        "observer_potential": (_bool, None),
     },
     # the theory engine (config/engine.py); a plane-parallel config stores nothing here
     "engine": {
@@ -319,6 +326,7 @@ SCHEMA = {
         "smoothing": (_num(0.0, lo_open=True), None),
         "k_ir": (_num(0.0, lo_open=True), None),
         "nu_true": (_num(), 1.0),
+        "speed": (_num(0.0), None),     # km/s, effects.observer_motion: conditioned
     },
     "data": {
         "file": (_str, None),

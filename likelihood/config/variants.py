@@ -6,7 +6,7 @@ import copy
 
 import numpy as np
 
-from .engine import INTEGRATED_EFFECTS, is_curved
+from .engine import INTEGRATED_EFFECTS, OBSERVER_EFFECTS, is_curved
 from .schema import FORECAST_NEGLECT, SCHEMA, Config, validate
 from ..errors import ConfigError, ErgofitError
 
@@ -67,7 +67,8 @@ def analysis_config(cfg, neglect):
 
 
 #: neglected "effects" that are approximations of a curved-sky truth model
-CURVED_NEGLECT = ("plane_parallel", "radial_integral_constraint") + INTEGRATED_EFFECTS
+CURVED_NEGLECT = ("plane_parallel", "radial_integral_constraint") + INTEGRATED_EFFECTS \
+    + OBSERVER_EFFECTS
 
 
 def _neglect_curved(cfg, raw, name):
@@ -76,7 +77,9 @@ def _neglect_curved(cfg, raw, name):
     plane_parallel: the plane-parallel engine (kernel at z_eff, window convolution, the
     approximate global integral constraint — for a radial one too —, no integrated terms);
     radial_integral_constraint: the exact global integral constraint instead of the radial one;
-    lensing, isw, time_delay: that integrated term switched off."""
+    lensing, isw, time_delay: that integrated term switched off;
+    observer_motion, observer_potential: that observer term switched off (with the motion its
+    conditioning on observer.speed goes too)."""
     e = raw["effects"]
     if not is_curved(cfg):
         raise ConfigError(f"{cfg.path}: forecast.neglect: '{name}' is an approximation of the "
@@ -91,8 +94,9 @@ def _neglect_curved(cfg, raw, name):
                                   "randoms); the comparison would change the window too")
         geo.pop("nside", None)          # the curved engine's mask resolution
         raw.pop("engine", None)
-        for t in INTEGRATED_EFFECTS:
+        for t in INTEGRATED_EFFECTS + OBSERVER_EFFECTS:
             e.pop(t, None)
+        raw.get("observer", {}).pop("speed", None)
         if e["integral_constraint"] == "radial":
             e["integral_constraint"] = "global"
     elif name == "radial_integral_constraint":
@@ -104,6 +108,8 @@ def _neglect_curved(cfg, raw, name):
         return                  # the integrated terms went with plane_parallel already
     else:
         e[name] = False
+        if name == "observer_motion":
+            raw.get("observer", {}).pop("speed", None)
 
 
 def _fiducial_value(cfg, name):

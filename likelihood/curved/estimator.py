@@ -33,6 +33,7 @@ from ..errors import ConfigError
 from .bessel import bessel_derivatives, bessel_order_max, bessel_x_min, spherical_jn_all
 from .lightcone import (INTEGRATED_TERMS, LOCAL_TERMS, LightCone, ResolutionWarning,
                         TracerCoefficients, check_terms, integrated_pieces, local_pieces)
+from .observer_terms import ObserverPiece, motion_tail, observer_pieces
 from .quadrature import composite_gl
 
 __all__ = ["EstimatorResolution", "Shell", "Templates", "BasisKernel", "multipole_templates",
@@ -161,6 +162,7 @@ def _kernel_set(cone, cosmo, r, q, los, tracer, terms, snapshot_r=None, weight=1
     bg = cone.background(r if snapshot_r is None else np.full(r.shape, snapshot_r))
     tc = tracer.at(bg["z"])
     loc = local_pieces(bg, tc, [t for t in terms if t in LOCAL_TERMS])
+    loc += observer_pieces(cone, bg, tc, terms)     # single-order pieces (J = 0 or 1)
     integ = integrated_pieces(bg, tc, [t for t in terms if t in INTEGRATED_TERMS])
     if weight != 1.0:
         loc = [replace(p, radial=weight * p.radial) for p in loc]
@@ -287,7 +289,7 @@ def _kernels(J, kset, blk, sl, los, v, ic, combine):
     j = jq[J]
     d1, d2 = bessel_derivatives(J, jq[1] if J == 0 else jq[J - 1], j, x)
     kinds = (j, d1, d2)
-    out = [qfac[sl][:, None] * p.radial[None, :] * kinds[p.order]
+    out = [qfac[sl][:, None] * p.radial[None, :] * _radial_part(p, J, kinds)
            for p, qfac in zip(kset.loc, kset.qf)]
     for t, parts in kset.integ.items():
         accum = 0.0
@@ -303,6 +305,51 @@ def _kernels(J, kset, blk, sl, los, v, ic, combine):
     if J == 0:
         out = [ic_monopole(W, v, ic) for W in out]
     return np.stack(out)
+
+
+def _radial_part(piece, J, kinds):
+    """j_J, j_J' or j_J'' of a local piece; for an observer piece (order fixed: J = 0 or 1,
+    likelihood.curved.observer_terms) 1 at its own order and 0 at every other."""
+    if isinstance(piece, ObserverPiece):
+        return np.full(kinds[0].shape, 1.0 if J == piece.order else 0.0)
+    return kinds[piece.order]
+
+
+def _motion_radials(side, combine):
+    """Per kernel name of one side (a _KernelSet or a _BasisSet), the radial factor c(r) of its
+    observer_motion piece(s) (None where there is none), summed as the kernels are."""
+    def one(kset):
+        c = [p.radial for p in kset.loc if isinstance(p, ObserverPiece) and p.order == 1]
+        return sum(c) if c else None
+    if isinstance(side, _KernelSet):
+        per = [one(side) if p.name == "observer_motion" else None for p in side.loc] \
+            + [None] * len(side.integ)
+    else:
+        per = []
+        for el in side.elements:
+            got = [v for v in map(one, el) if v is not None]
+            per.append(sum(got) if got else None)
+    if combine:
+        got = [v for v in per if v is not None]
+        per = [sum(got) if got else None]
+    return per
+
+
+def _motion_tail_spectra(cosmo, q, wq, sets, auto, combine):
+    """({(ia, ib): ρ_a(r1) ρ_b(r2) × motion_tail}, the same with the last q panel's share)
+    for the observer_motion parts of the two sides (likelihood.curved.observer_terms.
+    motion_tail), J = 1 only; ({}, {}) if there are none. The second is what the q-tail probe
+    of _check_resolution saw of this part, now integrated exactly."""
+    ka = _motion_radials(sets[0], combine)
+    kb = ka if auto else _motion_radials(sets[1], combine)
+    pairs = [(ia, ib) for ia, a in enumerate(ka) for ib, b in enumerate(kb)
+             if a is not None and b is not None]
+    if not pairs:
+        return {}, {}
+    tail = motion_tail(cosmo, q, wq)
+    last = float((2.0 / np.pi) * np.sum((wq * np.asarray(cosmo.power(q, 0.0), dtype=float))[-8:]))
+    outer = {(ia, ib): np.outer(ka[ia], kb[ib]) for ia, ib in pairs}
+    return ({p: tail * o for p, o in outer.items()}, {p: last * o for p, o in outer.items()})
 
 
 def ic_monopole(profile, v, ic):
@@ -353,9 +400,10 @@ def _kernel_sides(cosmo, shell, r, q, tracer_a, terms_a, tracer_b, terms_b, snap
             raise ConfigError(f"snapshot_z = {snapshot_z!r}: expected a redshift") from None
         if not 0.0 < snapshot_z < 0.99 * cone.z_max:
             raise ConfigError(f"snapshot_z = {snapshot_z}: expected 0 < z < {0.99 * cone.z_max:.3g}")
-        if need_int:
+        nonlocal_ = [t for t in terms_a + terms_b if t not in LOCAL_TERMS]
+        if nonlocal_:
             raise ConfigError("snapshot_z: the snapshot mode has local terms only; drop "
-                              f"{[t for t in terms_a + terms_b if t in INTEGRATED_TERMS]}")
+                              f"{nonlocal_}")
         snap_r = float(cosmo.comoving_distance(snapshot_z))
     los = _LineOfSight(r, shell.r_min, shell.r_max, cone) if need_int else None
 
@@ -471,6 +519,11 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
                 acc[:, :, i, ka:] += fac * prod.transpose(1, 2, 0)
                 for name, mp in probes:
                     probe[name][i, ka:] += fac * np.einsum("kaq,q,kbq->k", ua, mp, VB)
+    tails, lasts = _motion_tail_spectra(cosmo, q, wq, sets, auto, combine_pieces)
+    fac = np.array([(2 * l + 1) * 4 * np.pi / i2 for l in ells])[:, None]
+    for key, c1 in tails.items():
+        acc[key] += fac * radial_projection(1, ells, c1, jk, base)
+        probe["tail"] -= fac * radial_projection(1, ells, lasts[key], jk, base)
     checks = _check_resolution(shell, k, q, wq, j_max, ells, ic, acc, probe, resolution.q_ir,
                                wk, edges.size - 1)
     vals = acc
@@ -507,7 +560,7 @@ def _check_resolution(shell, k, q, wq, j_max, ells, ic, acc, probe, q_ir, wk, nb
     * infrared: the change of P̂ when the cut-off q_IR is lowered tenfold, from the integrand
       per unit ln q at the first two q nodes extrapolated as a power law q^α below them:
       d₀ (q_IR/q₀)^α (1 − 10^{−α})/α (d₀ ln 10 for α → 0), on the bin averages. Sizeable only for ic = "none" with
-      the potential or f_NL pieces (the observer terms that cancel it are not included). The
+      the potential or f_NL pieces (unless the observer terms, which cancel it, are on). The
       power law matters: taking the integrand as flat in ln q at one k node overestimated the
       demo shell's sensitivity (global IC, f_NL = 10, all terms) as 8e-3 of P̂_0 where lowering
       q_IR to 1e-5 h/Mpc moves the first quadrupole bin by 1.38e-4 of P̂_0 (this rule: 1.37e-4).
@@ -542,7 +595,7 @@ def _check_resolution(shell, k, q, wq, j_max, ells, ic, acc, probe, q_ir, wk, nb
     if ir > TAIL_TOLERANCE:
         warnings.warn(f"curved-sky estimator: with ic = {ic!r} the result depends on the infrared "
                       f"cut-off q_IR = {q[0]:.2g} h/Mpc ({ir:.2g} of P̂_0 per factor 10; the "
-                      "observer terms that cancel it are not included)"
+                      "observer terms observer_motion and observer_potential cancel it)"
                       + ("" if ic == "radial" else ": the radial integral constraint removes it"),
                       ResolutionWarning, stacklevel=3)
     return dict(q_tail=float(tail), ir_per_decade=float(ir))
@@ -662,14 +715,17 @@ def radial_field_templates(shell, edges, names, profiles, ells=(0, 2, 4), ic="no
 
 
 def monopole_profiles(cosmo, shell, edges, q, measure, tracer, terms=("density", "rsd"),
-                      resolution=EstimatorResolution(k_nodes=16), snapshot_z=None):
+                      resolution=EstimatorResolution(k_nodes=16), snapshot_z=None, order=0):
     """Σ_i measure_i W_0(q_i, r): the angular monopole of the kernel (every piece on the light
     cone, integrated ones included; no integral constraint) weighted on a caller's q grid, on
     the window nodes r of ``resolution``. With measure = dq q² P(q) C(q)/(2π²) (C: a constraint
     field at the observer, c(q) = C δ_m0(q)) this is the cross-correlation ξ_gc(r) of the
     number counts with the field at the observer: only J = 0 survives the average over
     directions (Rayleigh expansion). ``tracer``: TracerCoefficients (with ``terms``) or a
-    sequence of BasisKernel. Returns (r, names, profiles (n_names, n_r))."""
+    sequence of BasisKernel. Returns (r, names, profiles (n_names, n_r)).
+    ``order`` = 1 gives Σ_i measure_i W_1(q_i, r) instead: the profile of the J = 1 part, which
+    alone correlates with a vector at the observer (its velocity;
+    likelihood.curved.observer_terms)."""
     q = np.asarray(q, dtype=float)
     measure = np.asarray(measure, dtype=float)
     if q.ndim != 1 or q.shape != measure.shape or q.size == 0 or q.min() <= 0:
@@ -681,11 +737,11 @@ def monopole_profiles(cosmo, shell, edges, q, measure, tracer, terms=("density",
     out = np.zeros((len(names), r.size))
     for q0 in range(0, q.size, resolution.q_block):
         qb = q[q0:q0 + resolution.q_block]
-        jq = spherical_jn_all(1, qb[:, None] * r[None, :])
-        jn, near = (_near_integrals(sides.los, sides.all_sets, qb, 0) if sides.need_int
+        jq = spherical_jn_all(order + 1, qb[:, None] * r[None, :])
+        jn, near = (_near_integrals(sides.los, sides.all_sets, qb, order) if sides.need_int
                     else (None, {}))
         sl = slice(q0, q0 + qb.size)
-        W = _side_kernels(0, side, (qb, r, jq, jn, near), sl, sides.los, None, "none", False)
+        W = _side_kernels(order, side, (qb, r, jq, jn, near), sl, sides.los, None, "none", False)
         out += np.einsum("q,aqr->ar", measure[sl], W)
     return r, names, out
 
@@ -746,6 +802,7 @@ class NodeSpectra:
         r, q = self.r, self.q
         self.weight = shell._eval("weight", shell.weight, r)
         self.base = self.wr * r ** 2 * self.weight
+        self.cosmo = cosmo
         self.meas = (2.0 / np.pi) * self.wq * q * q * np.asarray(cosmo.power(q, 0.0), dtype=float)
         sides = _kernel_sides(cosmo, shell, r, q, tracer_a, terms_a, tracer_b, terms_b,
                               snapshot_z)
@@ -794,6 +851,12 @@ class NodeSpectra:
                 left = {a: (WA[a] * self.meas[sl][:, None]).T for a in ia_set}   # (r, q)
                 for a, b in pairs:
                     out[a, b][L] += left[a] @ WB[b]
+        if l_top >= 1:
+            tails, _ = _motion_tail_spectra(self.cosmo, q, self.wq, self.sets, self.auto,
+                                            self.combine)
+            for p in pairs:
+                if p in tails:
+                    out[p][1] += tails[p]
         return out
 
     def project(self, J, ells, c_j):

@@ -24,7 +24,8 @@ and the kernel is a sum of pieces (each switchable):
       isw         C(r) · I,  I = −∫_0^r (Φ' + Ψ') dr' = −2 ∫_0^r ℋ (f − 1) φ̃ j_J(qr') dr' / q²
 
 with C = b_e − 2𝒬 − ℋ'/ℋ² − 2(1 − 𝒬)/(χℋ) the Doppler factor (docs/projection.md eq. 6.2).
-The observer terms (potential and velocity at the observer) are not included.
+The observer terms (observer_motion, J = 1; observer_potential, J = 0) are in
+likelihood.curved.observer_terms (docs/observer_terms.md).
 """
 from __future__ import annotations
 
@@ -36,7 +37,8 @@ from scipy.interpolate import CubicSpline
 
 from ..errors import ConfigError, ErgofitError
 
-__all__ = ["HUBBLE_DISTANCE", "DELTA_C", "LOCAL_TERMS", "INTEGRATED_TERMS", "TERMS",
+__all__ = ["HUBBLE_DISTANCE", "DELTA_C", "LOCAL_TERMS", "INTEGRATED_TERMS", "OBSERVER_TERMS",
+           "TERMS",
            "LightCone", "TracerCoefficients", "local_pieces", "integrated_pieces",
            "ResolutionWarning"]
 
@@ -44,7 +46,8 @@ HUBBLE_DISTANCE = 299792.458 / 100.0   # c/H0 in Mpc/h (c exact, H0 = 100 h km/s
 DELTA_C = 1.686                         # spherical-collapse threshold (Dalal et al. 2008)
 LOCAL_TERMS = ("density", "rsd", "doppler", "potential", "fnl")
 INTEGRATED_TERMS = ("lensing", "isw", "time_delay")
-TERMS = LOCAL_TERMS + INTEGRATED_TERMS
+OBSERVER_TERMS = ("observer_motion", "observer_potential")   # likelihood.curved.observer_terms
+TERMS = LOCAL_TERMS + INTEGRATED_TERMS + OBSERVER_TERMS
 
 
 class ResolutionWarning(UserWarning):

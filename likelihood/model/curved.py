@@ -20,7 +20,12 @@ exact. The expected estimator is then Σ_{a≤b} x_a x_b T_ab + A_sn N − s_sub
 engine's pair templates of the basis, N its shot-noise template (same window and integral
 constraint) and the flat 1/n̄ monopole subtraction as in the plane-parallel model; with
 ``effects.observer`` the constrained-field term adds (ν² − 1) Σ_{a≤b} x_a x_b O_ab, the mean
-field being linear in the basis kernels too (:class:`CurvedObserver`). The direct
+field being linear in the basis kernels too (:class:`CurvedObserver`); with
+``effects.observer_motion: conditioned`` the pair templates gain (ν_v² − 1) D_ab, the
+conditioning on our measured speed (ν_v = observer.speed/σ_3D fixed by the config and the
+cosmology; likelihood.curved.observer_terms.MotionConditioning, docs/observer_terms.md). The
+observer pieces themselves (observer_motion, observer_potential) are affine in b_e and s and sit
+in W_1, W_be and W_s like the other projection pieces. The direct
 path (:meth:`CurvedForwardModel.full`) recomputes the engine with the tracer at the parameter
 values; they agree to 1e-10 (tests/model/test_curved.py).
 
@@ -43,12 +48,13 @@ from dataclasses import replace
 
 import numpy as np
 
-from ..config.engine import INTEGRATED_EFFECTS
+from ..config.engine import INTEGRATED_EFFECTS, OBSERVER_EFFECTS
 from ..curved import ResolutionWarning, TracerCoefficients
 from ..curved.estimator import (BasisKernel, EstimatorResolution, Templates,
                                 monopole_profiles, multipole_templates, radial_field_templates)
 from ..curved.mask import (MASK_TOLERANCE, Cap, masked_radial_field_templates,
                            masked_templates)
+from ..curved.observer_terms import CMB_DIPOLE_SPEED, MotionConditioning, observer_q_grid
 from ..curved.quadrature import composite_gl
 from ..curved.randoms_mask import RandomsMask
 from ..curved.selection import noise_level
@@ -63,15 +69,15 @@ from .likelihood import Likelihood
 #: bump when the engine's numbers change, so old cache entries are not reused
 CACHE_VERSION = "curved-templates-1"
 #: pieces of the engine that depend on b_e, on s (through 𝒬), in engine order
-_BE_TERMS = ("doppler", "potential", "isw")
-_S_TERMS = ("doppler", "potential", "isw", "lensing", "time_delay")
+_BE_TERMS = ("doppler", "potential", "isw") + OBSERVER_EFFECTS
+_S_TERMS = ("doppler", "potential", "isw", "lensing", "time_delay") + OBSERVER_EFFECTS
 
 
 def engine_terms(cfg):
     """The engine's kernel pieces switched on by the ``effects`` section."""
     e = cfg["effects"]
     local = ["density"] + [t for t in ("rsd", "doppler", "potential", "fnl") if e[t]]
-    return tuple(local + [t for t in INTEGRATED_EFFECTS if e.get(t)])
+    return tuple(local + [t for t in INTEGRATED_EFFECTS + OBSERVER_EFFECTS if e.get(t)])
 
 
 def bias_shape(evolution, cosmo, z_eff, table=None):
@@ -186,6 +192,7 @@ class CurvedForwardModel:
         self.edges, self.ells, self.n_bins = dv.edges, tuple(dv.ells), dv.edges.size - 1
         self.operator = CurvedOperator(KBins(dv.edges, dv.k_eff, dv.n_modes), self.ic)
         self.observer = observer
+        self.motion = None          # MotionConditioning (effects.observer_motion: conditioned)
         self.k_theory, self.ells_theory = dv.k_eff, self.ells
         self.mask = mask
         self.held = held
@@ -334,7 +341,9 @@ class CurvedForwardModel:
         t = self.pair_templates(cosmo)
         n = len(self.names)
         pairs = [(a, b) for a in range(n) for b in range(a, n)]
-        rows = [t.pairs[self.names[a], self.names[b]].ravel()[self.mask] for a, b in pairs]
+        motion = self.motion_part(cosmo, self.basis(cosmo)) if self.motion else {}
+        rows = [(t.pairs[self.names[a], self.names[b]] + motion.get((self.names[a],
+                 self.names[b]), 0.0)).ravel()[self.mask] for a, b in pairs]
         if self.observer is not None:
             obs = self.observer.templates(cosmo, self.basis(cosmo), self.names)
             rows += [obs[self.names[a], self.names[b]].ravel()[self.mask] for a, b in pairs]
@@ -375,11 +384,23 @@ class CurvedForwardModel:
             t = self._engine(cosmo, tracer, combine=True)
             amp = at(values["shot_noise"], i)
             model = t.combine({}, {}, noise=amp).ravel()
+            if self.motion is not None:
+                model = model + sum(self.motion_part(cosmo, tracer).values()).ravel()
             if self.observer is not None:
                 model = model + (at(values["nu_obs"], i) ** 2 - 1.0) * \
                     self.observer.correction(cosmo, tracer, self.terms).ravel()
             out.append(model - self.sn_sub * self.monopole / self.nbar)
         return np.array(out)
+
+    def motion_part(self, cosmo, tracer):
+        """(ν_v² − 1) × the pair templates of the conditioning on the observer's speed
+        (likelihood.curved.observer_terms.MotionConditioning; full sky): keyed by the basis
+        names for a basis, by the engine's pieces for a TracerCoefficients."""
+        res = replace(self.resolution, k_nodes=max(16, self.resolution.k_nodes))
+        terms = None if isinstance(tracer, list) else self.terms
+        out, _ = self.motion.templates(cosmo, self.shell, self.edges, tracer, terms, self.ells,
+                                       res)
+        return out
 
     def kernel(self, cosmo, values, k, i=0):
         """The plane-parallel kernel at the effective redshift (used only by the Gaussian
@@ -438,14 +459,7 @@ class CurvedObserver:
 
     def _measure(self, cosmo):
         from ..observation.observer import constraint_kernel, sigma_c
-        r_max = self.model.shell.r_max
-        q_lo = max(6.0 / r_max, 2.0 * self.k_ir)
-        t, u = np.polynomial.legendre.leggauss(32)
-        span = np.log(q_lo) - np.log(self.k_ir)
-        q1 = np.exp(np.log(self.k_ir) + span * 0.5 * (t + 1.0))
-        q2, w2 = composite_gl(q_lo, 0.5, 4.0 / r_max)
-        q = np.concatenate([q1, q2])
-        wq = np.concatenate([q1 * 0.5 * span * u, w2])
+        q, wq = observer_q_grid(self.model.shell.r_max, self.k_ir, None)
         c = constraint_kernel(cosmo, 0.0, q, self.field, self.smoothing)
         sig = sigma_c(cosmo, 0.0, self.field, self.smoothing, k_ir=self.k_ir)
         return q, wq * q * q * np.asarray(cosmo.power(q, 0.0)) * c / (2.0 * np.pi ** 2) / sig
@@ -521,6 +535,8 @@ def forward_model(cfg, srv, params, dv, mask, fiducial):
         cosmo_free=cosmo_free, shot_noise_subtracted=cfg["data"]["shot_noise_subtracted"])
     if srv.observer_on:
         model.observer = CurvedObserver(cfg, model)
+    if cfg["effects"].get("observer_motion") == "conditioned":
+        model.motion = MotionConditioning(cfg["observer"].get("speed", CMB_DIPOLE_SPEED))
     return model
 
 

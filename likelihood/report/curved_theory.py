@@ -5,13 +5,16 @@ moves, in σ of the data (the square root of the covariance's diagonal).
 Steps (each the difference of two models at the fiducial tracer, signal only, no shot noise):
 
 * curved terms: each piece of the engine added in turn (rsd, doppler, potential, f_NL,
-  lensing, ISW, time delay) on the light cone with the run's exact integral constraint;
+  lensing, ISW, time delay, the observer's motion and potential) on the light cone with the
+  run's exact integral constraint; ``curved_motion_conditioned``: the conditioning on the
+  observer's measured speed (effects.observer_motion: conditioned);
 * plane-parallel terms: the same local terms added in turn in the plane-parallel model
   (kernel at z_eff, window convolution, the approximate global integral constraint);
 * approximations: ``snapshot`` (coefficients at z_eff instead of along the light cone, local
   terms: curved snapshot − curved light cone), ``plane_parallel`` (the plane-parallel
   geometry and integral-constraint form against the exact curved-sky estimator, both at
-  z_eff: plane-parallel − curved snapshot), ``no_integrated`` (the integrated terms dropped);
+  z_eff: plane-parallel − curved snapshot), ``no_integrated`` (the integrated terms dropped),
+  ``no_observer`` (the observer terms dropped);
   ``total`` = plane-parallel − curved (what the plane-parallel model misses in all).
 """
 from __future__ import annotations
@@ -21,7 +24,7 @@ import warnings
 
 import numpy as np
 
-from ..curved.lightcone import INTEGRATED_TERMS, LOCAL_TERMS
+from ..curved.lightcone import INTEGRATED_TERMS, LOCAL_TERMS, OBSERVER_TERMS
 from ..errors import ConfigError
 from ..io import open_atomic, save_figure
 from ..model import factories
@@ -72,6 +75,10 @@ def comparison(cfg, fnl=None):
     for t in fw.terms[1:]:
         steps[f"curved_{t}"] = _partial(light, on + [t]) - _partial(light, on)
         on.append(t)
+    motion = 0.0
+    if getattr(fw, "motion", None) is not None:
+        motion = sum(fw.motion_part(cosmo, tracer).values()).ravel()
+        steps["curved_motion_conditioned"] = motion
     # plane-parallel: kernel at z_eff, window matrix with the approximate global IC
     pp_ic = "global" if fw.ic == "radial" else fw.ic
     kt = theory_k_grid()
@@ -88,17 +95,21 @@ def comparison(cfg, fnl=None):
             if prev is not None:
                 steps[f"plane_parallel_{t}"] = cur - prev
             prev = cur
-    curved = _partial(light, fw.terms)
+    curved = _partial(light, fw.terms) + motion
     local_light = _partial(light, local)
     steps["approx_snapshot"] = _partial(snap, local) - local_light
     steps["approx_plane_parallel"] = prev - _partial(snap, local)
-    if any(t in INTEGRATED_TERMS for t in fw.terms):
-        steps["approx_no_integrated"] = local_light - curved
+    for name, group in (("integrated", INTEGRATED_TERMS), ("observer", OBSERVER_TERMS)):
+        if any(t in group for t in fw.terms):
+            kept = [t for t in fw.terms if t not in group]
+            steps[f"approx_no_{name}"] = _partial(light, kept) + \
+                (motion if name == "integrated" else 0.0) - curved
     steps["total"] = prev - curved
     return dict(ells=fw.ells, k=np.tile(lik.data_full.k_eff, len(fw.ells)),
                 ell=np.repeat(fw.ells, fw.n_bins), sigma=np.sqrt(np.diag(lik.covariance_full)),
                 curved=curved, plane_parallel=prev, steps=steps, pp_ic=pp_ic, ic=fw.ic,
-                fnl=float(values["fnl"][0]), ir=light.meta.get("ir_per_decade", 0.0))
+                fnl=float(values["fnl"][0]), ir=light.meta.get("ir_per_decade", 0.0),
+                observer_terms=[t for t in fw.terms if t in OBSERVER_TERMS])
 
 
 def curved_report(cfg, out_path, fnl=None):
@@ -135,10 +146,15 @@ def curved_report(cfg, out_path, fnl=None):
         for n in names:
             lines.append(f"    {n:<{width}s} " + " ".join(f"{c['steps'][n][i] / sig[i]:9.3g}"
                                                         for i in sel))
+    obs = c["observer_terms"]
     lines.append(f"  infrared: the curved model moves by {c['ir']:.2g} of P_0 per decade of its "
-                 "lowest wavenumber (1e-4 h/Mpc); the observer terms that cancel this are not "
-                 "modelled" + ("" if c["ic"] == "radial" else
-                               "; effects.integral_constraint: radial removes it"))
+                 "lowest wavenumber (1e-4 h/Mpc); " + (
+                     "the observer terms are on (" + ", ".join(obs) + "): with both, the "
+                     "infrared parts cancel" if obs else
+                     "the observer terms that cancel this are off (effects.observer_motion, "
+                     "effects.observer_potential)")
+                 + ("" if c["ic"] == "radial" else "; effects.integral_constraint: radial "
+                    "removes the J = 0 part"))
     return lines
 
 

@@ -45,6 +45,13 @@ def _curved(write_config, *extra):
                     "fnl": {"flat": [-50, 50], "start": 1.0},
                     "nu_obs": {"gauss": [0, 1], "start": 1.0},
                     "shot_noise": {"flat": [0, 3], "start": 1.0}}},
+    {"effects": {"observer_motion": "conditioned", "observer_potential": True,   # observer terms
+                 "integral_constraint": "none"}, **FREE_BE_S},
+    {"effects": {"observer_motion": True, "observer_potential": True, "observer": True},
+     "observer": {"nu_true": 1.5},
+     "parameters": {"b1": {"flat": [0.5, 5.0], "start": 2.0},
+                    "nu_obs": {"gauss": [0, 1], "start": 1.0},
+                    "shot_noise": {"flat": [0, 3], "start": 1.0}}},
 ])
 def test_fast_path_equals_direct_engine_run(write_config, extra):
     """Templates of the basis kernels (a quadratic form in the amplitudes) reproduce a direct run
@@ -101,6 +108,17 @@ def test_templates_cached_on_disk(write_config, tmp_path):
                 if f.startswith("curved-templates-")]) == 2
 
 
+def test_curved_hash_unchanged_by_observer_terms_off(write_config):
+    """Writing the observer terms off explicitly keeps a curved-sky config's hash (and so the
+    run folders and chains of curved configs made before these terms existed)."""
+    plain = load_config(write_config(CURVED, name="a.yaml"))
+    explicit = load_config(write_config(dict(CURVED, effects={"observer_motion": False,
+                                                              "observer_potential": False}),
+                                        name="b.yaml"))
+    assert plain.hash == explicit.hash
+    assert "observer_motion" not in plain["effects"]
+
+
 def test_plane_parallel_hash_unchanged_by_engine_section(write_config):
     """Writing the default engine explicitly keeps the plane-parallel config hash."""
     plain = load_config(write_config({}, name="a.yaml"))
@@ -135,6 +153,17 @@ def test_plane_parallel_hash_unchanged_by_engine_section(write_config):
     ({"engine": {"kind": "curved_sky", "resolution": {"q_rang": 2}}}, "q_rang"),
     ({"engine": {"kind": "curved_sky", "resolution": {"k_nodes": 2.5}}}, "k_nodes"),
     ({"engine": {"kind": "curved"}}, "engine.kind"),
+    ({"effects": {"observer_motion": "averaged"}}, "effects.observer_motion"),
+    ({"effects": {"observer_potential": True}}, "effects.observer_potential"),
+    ({"observer": {"speed": 369.82}}, "observer.speed"),
+    ({"engine": {"kind": "curved_sky"}, "effects": {"observer_motion": "conditioned"},
+      "survey": {"geometry": {"shape": "cap", "r_min": 1950.0, "r_max": 3140.0, "fsky": 0.5}}},
+     "effects.observer_motion"),
+    ({"engine": {"kind": "curved_sky"}, "effects": {"observer_motion": "partly"}},
+     "effects.observer_motion"),
+    ({"engine": {"kind": "curved_sky", "snapshot": True},
+      "effects": {"observer_potential": True}}, "effects.observer_potential"),
+    ({"engine": {"kind": "curved_sky"}, "observer": {"speed": 369.82}}, "observer.speed"),
 ])
 def test_bad_engine_settings_one_line(write_config, over, words):
     with pytest.raises(ConfigError) as exc:
@@ -233,6 +262,8 @@ CAP = {"survey": {"geometry": {"shape": "cap", "r_min": 1950.0, "r_max": 3140.0,
                     "fnl": {"flat": [-50, 50], "start": 1.0},
                     "nu_obs": {"gauss": [0, 1], "start": 1.0},
                     "shot_noise": {"flat": [0, 3], "start": 1.0}}},
+    {"effects": {"observer_motion": "averaged", "observer_potential": True,       # observer terms
+                 "integral_constraint": "none"}, **FREE_BE_S},
 ])
 def test_cap_fast_path_equals_direct_engine_run(write_config, extra):
     """A polar cap (shape: cap, f_sky = 0.25): the masked basis templates (and the masked

@@ -43,3 +43,26 @@ def test_theory_compares_curved_and_plane_parallel(write_config, tmp_path, capsy
                  "d_approx_plane_parallel", "d_approx_no_integrated"):
         assert name in c
     assert (out / "theory_curved.png").stat().st_size > 10000
+
+
+def test_theory_reports_the_observer_terms(write_config, tmp_path, capsys):
+    """With the observer terms on (motion conditioned on the CMB dipole speed, potential
+    averaged) the table has their columns, and dropping them (approx_no_observer) undoes
+    exactly the sum of their steps (they are the last pieces added); the printed infrared
+    line says they are on."""
+    from tests.conftest import merge
+    over = merge(CURVED, {"effects": {"observer_motion": "conditioned",
+                                      "observer_potential": True,
+                                      "integral_constraint": "none"}})
+    out = tmp_path / "th"
+    assert main(["theory", write_config(over), "--out", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "observer terms are on" in text
+    with open(out / "theory_curved.txt") as fh:
+        cols = [l for l in fh if l.startswith("# columns:")][0].split()[2:]
+    tab = np.loadtxt(out / "theory_curved.txt")
+    c = {name: tab[:, i] for i, name in enumerate(cols)}
+    steps = c["d_curved_observer_motion"] + c["d_curved_observer_potential"] \
+        + c["d_curved_motion_conditioned"]
+    assert np.abs(steps).max() > 0
+    np.testing.assert_allclose(c["d_approx_no_observer"], -steps, rtol=0, atol=1e-8)
