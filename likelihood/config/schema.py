@@ -181,7 +181,8 @@ def _mapping(val, where):
 # Defaults are applied by likelihood.forecast (none are stored here).
 FORECAST_NEGLECT = ("doppler", "potential", "fnl", "rsd", "integral_constraint", "window", "observer",
                     # curved-sky truth models only (config/variants.py)
-                    "plane_parallel", "radial_integral_constraint", "lensing", "isw", "time_delay")
+                    "plane_parallel", "radial_integral_constraint", "effective_redshift", "lensing",
+                    "isw", "time_delay")
 FORECAST_SCAN = ("redshift", "volume", "fsky", "thickness", "b1", "nbar", "b_e", "s", "k_min",
                  "bias_split")
 _SCAN_POSITIVE = ("redshift", "volume", "fsky", "thickness", "nbar", "k_min")
