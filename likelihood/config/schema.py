@@ -171,7 +171,8 @@ def _mapping(val, where):
 
 # --- forecast section (Fisher forecasts and f_NL bias studies, read by likelihood.forecast) ---
 # forecast: {neglect: [doppler, potential, fnl, rsd, integral_constraint, window, observer,
-#                      plane_parallel, radial_integral_constraint, lensing, isw, time_delay],
+#                      plane_parallel, radial_integral_constraint, effective_redshift, lensing,
+#                      isw, time_delay],
 #            parameters: [NAME, ...], priors: {NAME: sigma}, threshold: x, step_rtol: x,
 #            scan: {quantity: redshift | volume | fsky | thickness | b1 | nbar | b_e | s | k_min
 #                             | bias_split (several tracers; with nbar: [total n̄, ...]),

@@ -79,6 +79,7 @@ def _shell_forecast(write_config, half):
         warnings.simplefilter("ignore")
         res = bias_forecast(cfg, neglect=["effective_redshift"], parameters=["b1", "fnl"])
     assert res.analysis_config["engine"]["snapshot"] and not cfg["engine"]["snapshot"]
+    assert not any("already off" in n for n in res.warnings)
     return res.value("delta"), res.value("sigma")
 
 
