@@ -219,6 +219,13 @@ def _as_samples(second_name, second_tracers):
     return change
 
 
+def _south_mock(cfg):
+    """The second sample of :func:`_as_samples` on its own mock data (its tracers differ from
+    those of the demo's data file)."""
+    cfg["samples"][1].update(data={"mock": {"k_min": 0.004, "k_max": 0.05, "n_bins": 8}},
+                             covariance={"kind": "gaussian"})
+
+
 MULTI_CASES = [
     ("unknown-tracer", _spectrum(1, "pair", ["bright", "faynt"]), "check",
      "spectra[1].pair: unknown tracer 'faynt' (did you mean 'faint'?)"),
@@ -246,10 +253,16 @@ MULTI_CASES = [
      "tracers[0].nbar = -1: expected a positive number"),
     ("cov-mocks-none", lambda c: c.update(covariance={"kind": "mocks", "mocks": "m_*.txt"}), "check",
      "m_*.txt: found 0 mock data-vector files; need at least 2"),
-    ("simulate-samples", _as_samples("south", {"bright": "b2", "faint": "f2"}), "simulate",
-     "ergofit simulate makes the mocks of one sample"),
+    # the second sample cannot be simulated: nothing is written for the first one either
+    ("simulate-samples-shared-noise", lambda c: (_as_samples("south", {"bright": "b2", "faint": "f2"})(c),
+                                                 _south_mock(c),
+                                                 c["samples"][1]["spectra"][1].update(shared_nbar=2e-5)),
+     "simulate", "(samples[1] south): spectra b2 x f2: shared_nbar (overlapping populations) cannot "
+     "be simulated"),
     ("simulate-shared-noise", _spectrum(1, "shared_nbar", 2e-5), "simulate",
      "shared_nbar (overlapping populations) cannot be simulated"),
+    ("samples-header", _as_samples("south", {"bright": "b2", "faint": "f2"}), "check",
+     "multi_demo_data.txt: the config's tracers ['b2', 'f2'] are not in the file"),
     ("samples-same-name", _as_samples("north", {"bright": "brightS", "faint": "faintS"}), "check",
      "samples: two samples are named 'north'"),
     ("samples-same-tracer", _as_samples("south", {"bright": "brightS"}), "check",
