@@ -159,7 +159,7 @@ def _sample_and_summarise(args, cfg, out, pool):
         _write_config_copy(args.config, cfg_copy)
     summary = write_summary(out, result, lik)
     print(f"outputs in {out}/: chain.h5, config.yaml, summary.json, constraints.md, "
-          "constraints.tex, triangle.png, triangle.pdf, multipoles.png")
+          "constraints.tex, triangle.png, triangle.pdf, multipoles.png" + _triangles(summary))
     print(constraints_text(summary))
     if not result.converged:
         print("WARNING: the chain did not converge (see summary.json: converged=false); "
@@ -232,8 +232,14 @@ def cmd_summarize(args):
     where = out if out is not None else args.run_dirs[0]
     print(f"written to {where}/: " + ("triangle.png, triangle.pdf, constraints.md, summary.json"
                                       if out is not None else "summary.json, constraints.md, "
-                                      "constraints.tex, triangle.png, triangle.pdf, multipoles.png"))
+                                      "constraints.tex, triangle.png, triangle.pdf, multipoles.png"
+                                      + _triangles(summaries[0])))
     return 0
+
+
+def _triangles(summary):
+    """', triangle_NAME.png/.pdf' for each sample's triangle plot of a run with samples."""
+    return "".join(f", {t}.png/.pdf" for t in summary.get("sample_triangles") or [])
 
 
 def cmd_window(args):

@@ -75,11 +75,13 @@ class SampleSum(Likelihood):
         return np.hstack([p.derived(theta[:, cols]) for p, cols in zip(self.parts, self.columns)])
 
     def observables(self):
-        """Data per (sample, spectrum, multipole), labelled 'sample: spectrum'."""
-        out = dict(spectra=[], ells=[], k=[], data=[], sigma=[])
+        """Data per (sample, spectrum, multipole): ``spectra`` the spectrum labels, ``samples``
+        the sample names."""
+        out = dict(spectra=[], samples=[], ells=[], k=[], data=[], sigma=[])
         for name, p in zip(self.names, self.parts):
             o = p.observables()
-            out["spectra"] += [f"{name}: {s}" for s in o["spectra"]]
+            out["spectra"] += list(o["spectra"])
+            out["samples"] += [name] * len(o["spectra"])
             for key in ("ells", "k", "data", "sigma"):
                 out[key] += list(o[key])
         return out

@@ -195,6 +195,13 @@ def test_two_tracer_demo_and_samples_end_to_end(tmp_path, monkeypatch):
     out = tmp_path / "both"
     assert main(["run", str(src / "both.yaml"), "--out", str(out), "--quiet"]) == 0
     stored = yaml.safe_load((out / "config.yaml").read_text())
+    summ = json.loads((out / "summary.json").read_text())      # reports per sample and spectrum
+    assert summ["parameters"]["b1_lrg"]["sample"] == "south" and summ["parameters"]["fnl"]["sample"] == "shared"
+    assert [b["spectrum"] for b in summ["fit_blocks"] if b["sample"] == "south"] == ["lrg", "all"]
+    assert sum(b["chi2"] for b in summ["fit_blocks"] if b["spectrum"] == "all") == \
+        pytest.approx(summ["chi2"], rel=1e-6)
+    assert "| north | bright x faint | 64 |" in (out / "constraints.md").read_text()
+    assert all((out / f"triangle_{s}.png").stat().st_size > 0 for s in ("north", "south"))
     assert stored["samples"][0]["data"]["file"] == os.path.join("inputs", "north", "multi_demo_data.txt")
     shutil.rmtree(src)
     moved = tmp_path / "far" / "both"
