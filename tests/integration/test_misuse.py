@@ -287,8 +287,6 @@ MULTI_CASES = [
                                        c.update(forecast={"scan": {"quantity": "bias_split",
                                                                    "values": [0, 1]}})),
      "forecast", "bias_split compares one tracer with a split into two; the config has 3 tracers"),
-    ("forecast-check-mcmc", lambda c: None, "forecast --check-mcmc",
-     "--check-mcmc is for one tracer"),
     ("forecast-split-nbar", lambda c: c.update(forecast={"scan": {"quantity": "nbar", "values": [1e-4],
                                                                   "nbar": [1e-4]}}),
      "forecast", "forecast.scan.nbar: only with quantity: bias_split")]
