@@ -10,6 +10,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..config import parameter_set
+from ..errors import ErgofitError
 from .fiducial import COSMO_PARAMS
 from .likelihood import Likelihood
 from .multitracer import build_multi, parameter_lines
@@ -102,5 +103,18 @@ class SampleSum(Likelihood):
 
 
 def build_samples(cfg):
-    """The :class:`SampleSum` of a validated config with ``samples``."""
-    return SampleSum(cfg, [build_multi(sc) for sc in cfg.sample_configs])
+    """The :class:`SampleSum` of a validated config with ``samples``; an error in a sample's
+    files names the sample."""
+    return SampleSum(cfg, [in_sample(i, s["name"], build_multi, sc) for i, (s, sc)
+                           in enumerate(zip(cfg["samples"], cfg.sample_configs))])
+
+
+def in_sample(i, name, fn, *args):
+    """``fn(*args)`` for sample ``i`` named ``name``; an ErgofitError that does not name the
+    sample yet (e.g. a data file's) is raised again with "sample NAME: " in front."""
+    try:
+        return fn(*args)
+    except ErgofitError as exc:
+        if f"samples[{i}] {name}" in str(exc):
+            raise
+        raise type(exc)(f"sample {name}: {exc}") from None

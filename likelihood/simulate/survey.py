@@ -143,7 +143,9 @@ def simulate_samples(cfg, n, out=None, mesh_n=None, check=False, echo=print, poi
     and meshed before the first file is written. Returns {sample name: validation result or None}.
     """
     out = out or os.path.join(cfg.output_folder, "mocks")
-    setups = [_multi_setup(sc, poisson, mesh_n) for sc in cfg.sample_configs]
+    from ..model.samples import in_sample
+    setups = [in_sample(i, s["name"], _multi_setup, sc, poisson, mesh_n)
+              for i, (s, sc) in enumerate(zip(cfg["samples"], cfg.sample_configs))]
     results = {}
     for i, (s, sc, setup) in enumerate(zip(cfg["samples"], cfg.sample_configs, setups)):
         echo(f"== sample {s['name']}")

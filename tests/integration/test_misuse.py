@@ -262,7 +262,7 @@ MULTI_CASES = [
     ("simulate-shared-noise", _spectrum(1, "shared_nbar", 2e-5), "simulate",
      "shared_nbar (overlapping populations) cannot be simulated"),
     ("samples-header", _as_samples("south", {"bright": "b2", "faint": "f2"}), "check",
-     "multi_demo_data.txt: the config's tracers ['b2', 'f2'] are not in the file"),
+     "sample south: multi_demo_data.txt: the config's tracers ['b2', 'f2'] are not in the file"),
     ("samples-same-name", _as_samples("north", {"bright": "brightS", "faint": "faintS"}), "check",
      "samples: two samples are named 'north'"),
     ("samples-same-tracer", _as_samples("south", {"bright": "brightS"}), "check",
@@ -297,3 +297,18 @@ def test_malformed_multi_tracer_input_exits_2_with_one_line(case, tmp_path, caps
     for name in ("multi_demo_data.txt", "multi_demo_cov.txt"):
         shutil.copy(os.path.join(DEMO, name), tmp_path / name)
     _check_refused(MULTI, case, tmp_path, capsys, monkeypatch)
+
+
+#: the bad inputs listed by issue 13, also through `ergofit run` and `ergofit simulate`: refused
+#: before the output folder or any mock file is made
+ISSUE13 = ("unknown-tracer", "cross-without-auto", "odd-ell-auto", "samples-same-name",
+           "header-tracers", "header-ells", "samples-header")
+
+
+@pytest.mark.parametrize("command", ["run", "simulate --n 3"])
+@pytest.mark.parametrize("case_id", ISSUE13)
+def test_issue13_bad_input_writes_nothing(case_id, command, tmp_path, capsys, monkeypatch):
+    case = next(c for c in MULTI_CASES if c[0] == case_id)
+    for name in ("multi_demo_data.txt", "multi_demo_cov.txt"):
+        shutil.copy(os.path.join(DEMO, name), tmp_path / name)
+    _check_refused(MULTI, (case[0], case[1], command, case[3]), tmp_path, capsys, monkeypatch)
