@@ -17,19 +17,12 @@ ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)
 
 
 @pytest.fixture(scope="module")
-def two_samples(tmp_path_factory):
+def built(tmp_path_factory, two_samples):
     """configs/multi_demo.yaml as sample 'north' plus a one-tracer mock sample 'south'."""
     folder = tmp_path_factory.mktemp("samples")
     for name in ("multi_demo_data.txt", "multi_demo_cov.txt"):
         shutil.copy(os.path.join(ROOT, "configs", name), folder / name)
-    cfg = yaml.safe_load(open(os.path.join(ROOT, "configs", "multi_demo.yaml")))
-    north = {k: cfg.pop(k) for k in ("survey", "tracers", "spectra", "data", "covariance")}
-    south = {"survey": {"redshift": 0.6, "geometry": {"shape": "shell", "r_min": 1200, "r_max": 1900}},
-             "tracers": [{"name": "lrg", "nbar": 3e-4, "b1": 2.0}],
-             "spectra": [{"pair": ["lrg", "lrg"], "ells": [0, 2]}],
-             "data": {"mock": {"seed": 5, "k_min": 0.004, "k_max": 0.05, "n_bins": 8}}}
-    cfg["samples"] = [dict(name="north", **north), dict(name="south", **south)]
-    cfg["parameters"]["b1_lrg"] = {"flat": [0.5, 5.0]}
+    cfg = two_samples(yaml.safe_load(open(os.path.join(ROOT, "configs", "multi_demo.yaml"))))
     path = folder / "both.yaml"
     path.write_text(yaml.safe_dump(cfg))
     with warnings.catch_warnings():
@@ -41,8 +34,8 @@ def two_samples(tmp_path_factory):
     return lik, theta
 
 
-def test_multipoles_figure_has_a_labelled_panel_per_sample_and_spectrum(two_samples):
-    lik, theta = two_samples
+def test_multipoles_figure_has_a_labelled_panel_per_sample_and_spectrum(built):
+    lik, theta = built
     fig = multipoles_figure(lik, theta, title="both")
     tops = [ax for ax in fig.axes if ax.get_title()]
     assert [ax.get_title() for ax in tops] == [
@@ -63,12 +56,12 @@ def test_multipoles_figure_has_a_labelled_panel_per_sample_and_spectrum(two_samp
     np.testing.assert_allclose(line.get_ydata(), (obs["k"][i] * model[i])[order], rtol=1e-12)
 
 
-def test_fit_blocks_agree_with_the_likelihood_chi2(two_samples):
+def test_fit_blocks_agree_with_the_likelihood_chi2(built):
     """The χ² per sample (residuals of model_observables against the data, the sample's whole
     covariance) equals each sample likelihood's own χ² (the fast path's quadratic form in the
     templates, another code path) and their sum the run's (independent samples); a sample with
     one spectrum has that spectrum's χ² equal to its own."""
-    lik, theta = two_samples
+    lik, theta = built
     blocks = {(b["sample"], b["spectrum"]): b for b in fit_blocks(lik, theta)}
     assert list(blocks) == [("north", "bright"), ("north", "bright x faint"), ("north", "faint"),
                             ("north", "all"), ("south", "lrg"), ("south", "all")]
