@@ -15,6 +15,8 @@ from typing import Any
 
 import numpy as np
 
+from ..config.multitracer import SHARED as SHARED_PARAMETERS
+
 SHARED = "shared"
 
 
@@ -51,7 +53,8 @@ def fit_blocks(lik: Any, theta: np.ndarray) -> list[dict]:
 
 def parameter_samples(lik: Any) -> dict[str, str]:
     """{parameter or derived name: the sample it belongs to, or "shared"} for a run with
-    several samples; {} otherwise. A parameter read by more than one sample is shared."""
+    several samples; {} otherwise. f_NL, ν, the cosmology and any parameter read by more than
+    one sample are shared."""
     parts = sample_parts(lik)
     if parts[0][0] is None:
         return {}
@@ -59,7 +62,8 @@ def parameter_samples(lik: Any) -> dict[str, str]:
     for name, part, _ in parts:
         for n in list(part.parameter_names) + list(part.derived_names):
             owners.setdefault(n, []).append(name)
-    return {n: (o[0] if len(o) == 1 else SHARED) for n, o in owners.items()}
+    return {n: (o[0] if len(o) == 1 and n not in SHARED_PARAMETERS else SHARED)
+            for n, o in owners.items()}
 
 
 def triangle_groups(lik: Any, names: list[str]) -> dict[str, list[str]]:

@@ -97,7 +97,7 @@ def multipole_panels(obs: dict) -> list[tuple[str | None, str | None, list[int]]
 
     One panel per spectrum of each sample, titled "sample: spectrum" (or "spectrum", or nothing
     for one tracer); the odd multipoles of a cross spectrum (Π_ℓ, far below P_0) get a panel of
-    their own, titled "... (odd ℓ)". Panels follow the order of the observables.
+    their own, titled "... (odd ell)". Panels follow the order of the observables.
     """
     ells = list(obs["ells"])
     spectra = obs.get("spectra", [None] * len(ells))

@@ -309,7 +309,8 @@ def _compute_summary(out_dir, result: SamplerResult, lik: Any, label: str):
         "parameters": params,
         "fit_blocks": fit_blocks(lik, np.asarray(result.best_fit, float)) if can_plot else [],
         "sample_triangles": [f"triangle_{s}" for s in
-                             triangle_groups(lik, list(result.parameter_names))] if lik else [],
+                             triangle_groups(lik, list(result.parameter_names))]
+        if lik is not None else [],
         "notes": notes,
     }
     return _clean(summary), samples, can_plot
