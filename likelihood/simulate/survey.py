@@ -24,6 +24,10 @@ of the config's data vector on one set of k bins and written as labelled spectra
 validation is made per spectrum and multipole. The mocks' estimator takes the line of sight at
 each galaxy, so their odd cross multipoles carry the wide-angle dipole ∝ (b_X − b_Y)/(kχ) that the
 plane-parallel model leaves out: those tests fail where kχ is small (README).
+
+Several samples (a config with ``samples``): each sample's mocks as for several tracers, from its
+own survey, tracers, spectra and k bins, into ``NAME/`` of the output folder, with independent
+random streams (:func:`simulate_samples`).
 """
 from __future__ import annotations
 
