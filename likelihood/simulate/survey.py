@@ -49,8 +49,8 @@ from ..model.fiducial import make_tracer
 from ..numerics.mesh import Mesh
 from ..simulate.mocks import simulate_from_settings
 from ..simulate.validation import validate
-from ..data import DataVector
-from ..spectra import SpectraVector, pair_label, save_spectra_covariance
+from ..data import DataVector, save_covariance
+from ..spectra import SpectraVector, is_single_tracer_file, pair_label, save_spectra_covariance
 
 
 def choose_mesh(lik, n_mesh=None):
@@ -272,7 +272,8 @@ def simulate_several_tracers(cfg, n, out=None, mesh_n=None, check=False, echo=pr
     config's window, effects and observer term), measured into the config's spectra (pairs and
     multipoles of its data vector, on its k bins) and written into ``out`` as labelled spectra
     files ``mock_0000.txt``, ... with their sample covariance ``covariance.txt`` (the formats of
-    :mod:`likelihood.spectra`; ``.npz`` files when the config's data file is one); ``check``: the
+    :mod:`likelihood.spectra`; ``.npz`` files when the config's data file is one, and single-tracer
+    data vectors when it is one, i.e. one auto spectrum); ``check``: the
     validation of :func:`simulate_one_tracer` for every (spectrum, ℓ) and jointly. ``setup``:
     the result of :func:`_multi_setup` if already made; ``seed``: the random streams (default
     the config's ``data.mock.seed`` or 0). Returns the validation result or None."""
@@ -281,7 +282,11 @@ def simulate_several_tracers(cfg, n, out=None, mesh_n=None, check=False, echo=pr
     lik, mesh, spectra, edges = setup or _multi_setup(cfg, poisson, mesh_n)
     if seed is None:
         seed = cfg["data"].get("mock", {}).get("seed", 0)
-    ext = ".npz" if str(cfg["data"].get("file", "")).endswith(".npz") else ".txt"
+    data_file = cfg["data"].get("file")
+    ext = ".npz" if str(data_file).endswith(".npz") else ".txt"
+    # one auto spectrum read from a single-tracer data file: the mocks keep that layout
+    single = (data_file is not None and len(spectra) == 1
+              and is_single_tracer_file(cfg.resolve(data_file)))
     out = out or os.path.join(cfg.output_folder, "mocks")
     names = lik.forward.names
     tracers = {t: lik.forward.tracer(lik.fiducial, t) for t in names}
@@ -312,11 +317,15 @@ def simulate_several_tracers(cfg, n, out=None, mesh_n=None, check=False, echo=pr
         os.makedirs(out, exist_ok=True)
     except OSError as exc:
         raise ErgofitError(f"--out {out}: cannot create the folder ({exc})") from None
+    cov = mocks.covariance().covariance
     for i, v in enumerate(vectors):
-        v.save(os.path.join(out, f"mock_{i:04d}{ext}"))
-    save_spectra_covariance(os.path.join(out, f"covariance{ext}"), mocks.covariance().covariance,
-                            vectors[0])
-    echo(f"wrote {n} labelled spectra files (mock_0000{ext} ...) and covariance{ext} into {out}/")
+        (v.parts[0] if single else v).save(os.path.join(out, f"mock_{i:04d}{ext}"))
+    if single:
+        save_covariance(os.path.join(out, f"covariance{ext}"), cov, spectra[0][1], edges.size - 1)
+    else:
+        save_spectra_covariance(os.path.join(out, f"covariance{ext}"), cov, vectors[0])
+    echo(f"wrote {n} {'single-tracer data' if single else 'labelled spectra'} files "
+         f"(mock_0000{ext} ...) and covariance{ext} into {out}/")
     if not check:
         return None
     model, _, k_ir = multi_validation_model(cfg, mesh, poisson)
@@ -346,15 +355,15 @@ def simulate_several_tracers(cfg, n, out=None, mesh_n=None, check=False, echo=pr
 
 def _spectra_vector(mocks, names, flat, cfg, i, seed):
     """Mock ``i`` (flat vector ``flat`` of :class:`MultiTracerMocks` ``mocks``) as a SpectraVector."""
+    meta = {"mock": str(i), "seed": " ".join(str(s) for s in np.atleast_1d(seed)),
+            "z": f"{cfg['survey']['redshift']:.6g}"}
     parts, pos = [], 0
     nb = mocks.k_eff.size
     for pair, ells in mocks.spectra:
         vals = flat[pos:pos + nb * len(ells)].reshape(len(ells), nb)
         parts.append(DataVector(tuple(ells), mocks.edges, mocks.k_eff, mocks.n_modes, vals,
-                                source=f"mock {i}"))
+                                meta=dict(meta), source=f"mock {i}"))
         pos += vals.size
-    meta = {"mock": str(i), "seed": " ".join(str(s) for s in np.atleast_1d(seed)),
-            "z": f"{cfg['survey']['redshift']:.6g}"}
     return SpectraVector(names, [p for p, _ in mocks.spectra], parts, meta, source=f"mock {i}")
 
 

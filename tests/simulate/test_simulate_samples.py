@@ -13,7 +13,8 @@ import yaml
 from likelihood.cli import main
 from likelihood.config import validate
 from likelihood.model import build
-from likelihood.spectra import SpectraVector
+from likelihood.data import DataVector
+from likelihood.spectra import SpectraVector, is_single_tracer_file
 
 N_MOCKS = 26
 NORTH = {"survey": {"redshift": 1.0, "geometry": {"shape": "sphere", "radius": 500.0}},
@@ -42,13 +43,13 @@ def _write(folder, raw, name):
 
 def test_simulate_two_samples_each_in_its_own_layout(tmp_path):
     folder = str(tmp_path)
-    # the south sample's data file is an .npz spectra file (its layout: one tracer, 4 bins)
+    # the south sample's data file is a single-tracer .npz data vector (one tracer, 4 bins)
     one = dict(copy.deepcopy(TOP), **copy.deepcopy(SOUTH))
     one["parameters"] = {"b1_lrg": {"flat": [0.5, 5]}}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         south_data = build(validate(one, src="south.yaml", base_dir=folder)).data_full
-    south_data.save(os.path.join(folder, "south.npz"))
+    south_data.parts[0].save(os.path.join(folder, "south.npz"))
     south = dict(copy.deepcopy(SOUTH), data={"file": "south.npz"})
     raw = dict(copy.deepcopy(TOP), samples=[dict(name="north", **NORTH), dict(name="south", **south)])
     cfg = _write(folder, raw, "both.yaml")
@@ -61,11 +62,13 @@ def test_simulate_two_samples_each_in_its_own_layout(tmp_path):
     south_files = sorted(glob.glob(os.path.join(out, "south", "mock_*.npz")))
     assert len(north_files) == N_MOCKS and len(south_files) == N_MOCKS
     assert os.path.isfile(os.path.join(out, "south", "covariance.npz"))
-    n0, s0 = SpectraVector.load(north_files[0]), SpectraVector.load(south_files[0])
+    n0 = SpectraVector.load(north_files[0])                 # labelled spectra, as north's data
     assert n0.pairs == [("bright", "bright"), ("bright", "faint"), ("faint", "faint")]
     assert [p.ells for p in n0.parts] == [(0, 2), (0, 1, 2), (0, 2)]
-    assert tuple(s0.tracers) == ("lrg",) and [tuple(p) for p in s0.pairs] == [("lrg", "lrg")]
-    np.testing.assert_allclose(s0.parts[0].edges, south_data.parts[0].edges, rtol=1e-12)
+    assert is_single_tracer_file(south_files[0])            # single-tracer vectors, as south's
+    s0 = DataVector.load(south_files[0])
+    assert s0.ells == (0, 2)
+    np.testing.assert_allclose(s0.edges, south_data.parts[0].edges, rtol=1e-12)
     assert n0.meta["seed"] == "2 0" and s0.meta["seed"] == "0 1"   # independent streams
     for name, blocks in (("north", 7), ("south", 2)):
         res = json.load(open(os.path.join(out, name, "validation.json")))
@@ -82,7 +85,7 @@ def test_simulate_two_samples_each_in_its_own_layout(tmp_path):
         warnings.simplefilter("ignore")
         lik = build(_write(folder, raw, "fit.yaml"))
     assert [p.n_mocks for p in lik.parts] == [N_MOCKS, N_MOCKS]
-    x = np.array([SpectraVector.load(f).flat for f in south_files])
+    x = np.array([DataVector.load(f).flat for f in south_files])
     np.testing.assert_allclose(lik.parts[1].covariance, np.cov(x, rowvar=False), rtol=1e-10)
     theta = np.array([{"fnl": 0.0, "b1_bright": 2.0, "b1_faint": 1.2, "b1_lrg": 1.8}[n]
                       for n in lik.parameter_names])
