@@ -327,7 +327,8 @@ def make_parser():
     s.add_argument("config", help=cfg_help + "; its forecast section says what to neglect or scan")
     s.add_argument("--out", help="output folder (default: <output folder of the config>/forecast)")
     s.add_argument("--check-mcmc", action="store_true",
-                   help="also run a short MCMC on the noiseless truth mock and compare its widths")
+                   help="also run a short MCMC on the noiseless truth mock (one or several "
+                   "tracers) and compare its widths and shifts with the Fisher forecast")
     s.add_argument("--mpi", action="store_true", help="run a scan's points on MPI ranks")
     s.add_argument("--processes", type=_positive_int, default=0,
                    help="run a scan's points on a process pool of this size")
@@ -338,7 +339,8 @@ def make_parser():
     s.add_argument("config", help=cfg_help + " (the survey and fiducial model of the mocks)")
     s.add_argument("--n", type=_positive_int, default=10, help="number of mocks")
     s.add_argument("--out", help="output folder of the mock data vectors "
-                   "(default: <output folder of the config>/mocks)")
+                   "(default: <output folder of the config>/mocks; with samples, one "
+                   "subfolder per sample)")
     s.add_argument("--mesh", type=_positive_int, default=None, help="FFT cells per side")
     s.add_argument("--validate", action="store_true",
                    help="compare the mean of the mocks with the model they were made from")
