@@ -242,23 +242,26 @@ class SpectraVector:
         return cls(tracers, pairs, parts, meta, source=path)
 
 
+def is_single_tracer_file(path):
+    """True when ``path`` (an existing file) is a single-tracer data vector (``# ergofit data
+    vector`` text, or ``.npz`` with ``values`` and no ``pairs``)."""
+    if path.endswith(".npz"):
+        try:
+            with np.load(path) as z:
+                return "pairs" not in z and "values" in z
+        except (OSError, ValueError):
+            return False
+    try:
+        return read_comment_header(path)[0] == DATA_HEADER
+    except (OSError, UnicodeDecodeError):
+        return False
+
+
 def load_spectra(path, tracer=None):
     """A multi-tracer data vector, or a single-tracer one read as the auto spectrum of ``tracer``
     (the config's only tracer); ``tracer=None`` refuses single-tracer files."""
     path = input_file(path, "data vector")
-    single = False
-    if path.endswith(".npz"):
-        try:
-            with np.load(path) as z:
-                single = "pairs" not in z and "values" in z
-        except (OSError, ValueError):
-            single = False
-    else:
-        try:
-            single = read_comment_header(path)[0] == DATA_HEADER
-        except (OSError, UnicodeDecodeError):
-            single = False
-    if single:
+    if is_single_tracer_file(path):
         if tracer is None:
             raise DataError(f"{path}: a single-tracer data vector, but the config has several "
                             "tracers; write a multi-tracer file (likelihood.spectra.SpectraVector)")
@@ -313,13 +316,13 @@ def load_spectra_covariance(path, sv):
     return cov
 
 
-def spectra_covariance_from_mocks(pattern):
+def spectra_covariance_from_mocks(pattern, tracer=None):
     """(MockCovariance, first vector): the unbiased (1/(n−1)) sample covariance of the
     multi-tracer data vectors matching ``pattern`` (covariance files skipped, as in
     :func:`likelihood.data.covariance_from_mocks`); all must hold the same spectra, multipoles
-    and k bins."""
+    and k bins. ``tracer``: single-tracer files are read as its auto spectrum (:func:`load_spectra`)."""
     files = mock_data_files(pattern)
-    vecs = [SpectraVector.load(f) for f in files]
+    vecs = [load_spectra(f, tracer) for f in files]
     first = vecs[0]
     layout = [(p, d.ells) for p, d in zip(first.pairs, first.parts)]
     for v in vecs[1:]:

@@ -20,6 +20,25 @@ BASE = {
 }
 
 
+@pytest.fixture(scope="session")
+def two_samples():
+    """as_two_samples(cfg): see :func:`as_two_samples`."""
+    return as_two_samples
+
+
+def as_two_samples(cfg):
+    """The two-tracer demo config (configs/multi_demo.yaml, read as a dict) made sample 'north',
+    beside a one-tracer mock sample 'south' (tracer lrg, 8 bins); changes ``cfg`` in place."""
+    north = {k: cfg.pop(k) for k in ("survey", "tracers", "spectra", "data", "covariance")}
+    south = {"survey": {"redshift": 0.6, "geometry": {"shape": "shell", "r_min": 1200, "r_max": 1900}},
+             "tracers": [{"name": "lrg", "nbar": 3e-4, "b1": 2.0}],
+             "spectra": [{"pair": ["lrg", "lrg"], "ells": [0, 2]}],
+             "data": {"mock": {"seed": 5, "k_min": 0.004, "k_max": 0.05, "n_bins": 8}}}
+    cfg["samples"] = [dict(name="north", **north), dict(name="south", **south)]
+    cfg["parameters"]["b1_lrg"] = {"flat": [0.5, 5.0]}
+    return cfg
+
+
 def merge(base, over):
     out = copy.deepcopy(base)
     for k, v in over.items():

@@ -159,7 +159,7 @@ def _sample_and_summarise(args, cfg, out, pool):
         _write_config_copy(args.config, cfg_copy)
     summary = write_summary(out, result, lik)
     print(f"outputs in {out}/: chain.h5, config.yaml, summary.json, constraints.md, "
-          "constraints.tex, triangle.png, triangle.pdf, multipoles.png")
+          "constraints.tex, triangle.png, triangle.pdf, multipoles.png" + _triangles(summary))
     print(constraints_text(summary))
     if not result.converged:
         print("WARNING: the chain did not converge (see summary.json: converged=false); "
@@ -232,8 +232,14 @@ def cmd_summarize(args):
     where = out if out is not None else args.run_dirs[0]
     print(f"written to {where}/: " + ("triangle.png, triangle.pdf, constraints.md, summary.json"
                                       if out is not None else "summary.json, constraints.md, "
-                                      "constraints.tex, triangle.png, triangle.pdf, multipoles.png"))
+                                      "constraints.tex, triangle.png, triangle.pdf, multipoles.png"
+                                      + _triangles(summaries[0])))
     return 0
+
+
+def _triangles(summary):
+    """', triangle_NAME.png/.pdf' for each sample's triangle plot of a run with samples."""
+    return "".join(f", {t}.png/.pdf" for t in summary.get("sample_triangles") or [])
 
 
 def cmd_window(args):
@@ -321,7 +327,8 @@ def make_parser():
     s.add_argument("config", help=cfg_help + "; its forecast section says what to neglect or scan")
     s.add_argument("--out", help="output folder (default: <output folder of the config>/forecast)")
     s.add_argument("--check-mcmc", action="store_true",
-                   help="also run a short MCMC on the noiseless truth mock and compare its widths")
+                   help="also run a short MCMC on the noiseless truth mock (one or several "
+                   "tracers) and compare its widths and shifts with the Fisher forecast")
     s.add_argument("--mpi", action="store_true", help="run a scan's points on MPI ranks")
     s.add_argument("--processes", type=_positive_int, default=0,
                    help="run a scan's points on a process pool of this size")
@@ -332,7 +339,8 @@ def make_parser():
     s.add_argument("config", help=cfg_help + " (the survey and fiducial model of the mocks)")
     s.add_argument("--n", type=_positive_int, default=10, help="number of mocks")
     s.add_argument("--out", help="output folder of the mock data vectors "
-                   "(default: <output folder of the config>/mocks)")
+                   "(default: <output folder of the config>/mocks; with samples, one "
+                   "subfolder per sample)")
     s.add_argument("--mesh", type=_positive_int, default=None, help="FFT cells per side")
     s.add_argument("--validate", action="store_true",
                    help="compare the mean of the mocks with the model they were made from")

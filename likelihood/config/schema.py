@@ -173,8 +173,8 @@ def _mapping(val, where):
 
 # --- forecast section (Fisher forecasts and f_NL bias studies, read by likelihood.forecast) ---
 # forecast: {neglect: [doppler, potential, fnl, rsd, integral_constraint, window, observer,
-#                      plane_parallel, radial_integral_constraint, lensing, isw, time_delay,
-#                      observer_motion, observer_potential],
+#                      plane_parallel, radial_integral_constraint, effective_redshift, lensing,
+#                      isw, time_delay, observer_motion, observer_potential],
 #            parameters: [NAME, ...], priors: {NAME: sigma}, threshold: x, step_rtol: x,
 #            scan: {quantity: redshift | volume | fsky | thickness | b1 | nbar | b_e | s | k_min
 #                             | bias_split (several tracers; with nbar: [total n̄, ...]),
@@ -184,8 +184,8 @@ def _mapping(val, where):
 # Defaults are applied by likelihood.forecast (none are stored here).
 FORECAST_NEGLECT = ("doppler", "potential", "fnl", "rsd", "integral_constraint", "window", "observer",
                     # curved-sky truth models only (config/variants.py)
-                    "plane_parallel", "radial_integral_constraint", "lensing", "isw", "time_delay",
-                    "observer_motion", "observer_potential")
+                    "plane_parallel", "radial_integral_constraint", "effective_redshift", "lensing",
+                    "isw", "time_delay", "observer_motion", "observer_potential")
 FORECAST_SCAN = ("redshift", "volume", "fsky", "thickness", "b1", "nbar", "b_e", "s", "k_min",
                  "bias_split")
 _SCAN_POSITIVE = ("redshift", "volume", "fsky", "thickness", "nbar", "k_min")

@@ -56,7 +56,7 @@ def analysis_config(cfg, neglect):
     e = raw.setdefault("effects", {})
     for n in neglect:
         if n in CURVED_NEGLECT:
-            _neglect_curved(cfg, raw, n)
+            _neglect_curved(cfg, raw, n, neglect)
         else:
             e[n] = "none" if n == "integral_constraint" else False
     if "observer" in neglect:
@@ -67,16 +67,22 @@ def analysis_config(cfg, neglect):
 
 
 #: neglected "effects" that are approximations of a curved-sky truth model
-CURVED_NEGLECT = ("plane_parallel", "radial_integral_constraint") + INTEGRATED_EFFECTS \
-    + OBSERVER_EFFECTS
+CURVED_NEGLECT = ("plane_parallel", "radial_integral_constraint", "effective_redshift") \
+    + INTEGRATED_EFFECTS + OBSERVER_EFFECTS
 
 
-def _neglect_curved(cfg, raw, name):
+def _neglect_curved(cfg, raw, name, neglect=()):
     """Change ``raw`` (a curved-sky config) into the analysis that neglects ``name``:
 
     plane_parallel: the plane-parallel engine (kernel at z_eff, window convolution, the
     approximate global integral constraint — for a radial one too —, no integrated terms);
     radial_integral_constraint: the exact global integral constraint instead of the radial one;
+    effective_redshift: the curved-sky engine in snapshot mode (engine.snapshot: b1, b_e, s, D,
+    f, ℋ, ℋ'/ℋ² and χ of the local kernel all at survey.redshift; the geometry, i.e. the
+    end-point line of sight and the window, stays exact) while the truth evolves along the light
+    cone; the snapshot has local terms only, so a truth with integrated or observer terms needs
+    them in ``neglect`` too (their shift is then included: subtract the forecast that neglects
+    only them);
     lensing, isw, time_delay: that integrated term switched off;
     observer_motion, observer_potential: that observer term switched off (with the motion its
     conditioning on observer.speed goes too)."""
@@ -105,7 +111,18 @@ def _neglect_curved(cfg, raw, name):
                               "effects.integral_constraint: radial in the truth model")
         e["integral_constraint"] = "global"
     elif not raw.get("engine"):
-        return                  # the integrated terms went with plane_parallel already
+        return                  # plane_parallel took the integrated terms and z_eff already
+    elif name == "effective_redshift":
+        if cfg["engine"]["snapshot"]:
+            raise ConfigError(f"{cfg.path}: forecast.neglect: 'effective_redshift' needs a truth "
+                              "model on the light cone; set engine.snapshot: false")
+        kept = [t for t in INTEGRATED_EFFECTS + OBSERVER_EFFECTS
+                if cfg["effects"].get(t) and t not in neglect]
+        if kept:
+            raise ConfigError(f"{cfg.path}: forecast.neglect: 'effective_redshift' analyses with "
+                              f"the snapshot mode, which has local terms only; add {', '.join(kept)} "
+                              "to forecast.neglect (or switch them off in effects)")
+        raw["engine"]["snapshot"] = True
     else:
         e[name] = False
         if name == "observer_motion":

@@ -36,11 +36,12 @@ The *truth* model is the config as written (all effects it switches on); the *an
 the same config with the effects of ``forecast.neglect`` switched off (doppler, potential, fnl,
 rsd, window, observer → false; integral_constraint → none; for a curved-sky truth model
 (engine.kind: curved_sky, config/variants.py) also plane_parallel → the plane-parallel engine,
-radial_integral_constraint → the exact global constraint instead, lensing, isw, time_delay →
-false). To first order in the model error
-the maximum of the analysis posterior on noiseless truth data moves by (the systematic-shift
-formula, e.g. Huterer, Takada, Bernstein & Jain 2006, MNRAS 366, 101, eq. 4 — cited from
-memory; it follows from expanding χ² to second order around the fiducial point)::
+radial_integral_constraint → the exact global constraint instead, effective_redshift → the
+snapshot mode (coefficients at survey.redshift), lensing, isw, time_delay → false). To first
+order in the model error the maximum of the analysis posterior on noiseless truth data moves by
+(the systematic-shift formula, e.g. Huterer, Takada, Bernstein & Jain 2006, MNRAS 366, 101,
+eq. 4 — cited from memory; it follows from expanding χ² to second order around the fiducial
+point)::
 
     Δθ = F⁻¹ [ h ∂μᵀ/∂θ C⁻¹ (μ_truth − μ_analysis) + Σ_i e_i (m_i − θ_i^fid) / σ_i² ]
 

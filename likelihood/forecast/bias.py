@@ -140,6 +140,7 @@ def bias_forecast(config, neglect=None, parameters=None, priors=None, step_rtol=
               "window": truth.window is not None, "observer": truth.observer_on,
               # curved-sky approximations (config/variants.py refuses them otherwise)
               "plane_parallel": True, "radial_integral_constraint": True,
+              "effective_redshift": True,
               "lensing": cfg["effects"].get("lensing"), "isw": cfg["effects"].get("isw"),
               "time_delay": cfg["effects"].get("time_delay")}.get(n, n in truth.effects)
         if not on:

@@ -1,4 +1,5 @@
-"""MCMC check of a bias forecast on the noiseless truth mock."""
+"""MCMC check of a bias forecast on the noiseless truth mock (one tracer, or several: the mock is
+then a labelled spectra file holding each spectrum's fitted multipoles and k bins)."""
 from __future__ import annotations
 
 import os
@@ -16,49 +17,118 @@ from .bias import collect_warnings
 _MCMC_TOLERANCE = 0.2        # |MCMC shift − Fisher shift| / σ_F(f_NL) for a near-Gaussian posterior
 
 
+def _kept(mask2, what):
+    """(kept multipole rows, slice of the kept k bins) of a (n_ell, n_bins) mask: every kept
+    multipole must keep the same contiguous k bins (the mock file holds a rectangle)."""
+    rows = [j for j in range(mask2.shape[0]) if mask2[j].any()]
+    kmask = mask2[rows].any(0)
+    idx = np.flatnonzero(kmask)
+    if np.any(np.diff(idx) != 1) or np.any(mask2[rows] != kmask):
+        raise ErgofitError(f"MCMC check: the selected k bins of {what} are not contiguous and "
+                           "common to its multipoles")
+    return rows, slice(idx[0], idx[-1] + 1)
+
+
+def _truth_spectra(bias, alik, folder):
+    """Write the truth mock of a multi-tracer analysis (a SpectraVector of the fitted points) and
+    its covariance; returns (data path, covariance path, {spectrum index: kept ells})."""
+    from ..spectra import SpectraVector, save_spectra_covariance
+    from ..data import DataVector
+    parts, pairs, kept, pos = [], [], {}, 0
+    for i, s in enumerate(alik.forward.spectra):
+        m2 = s.mask.reshape(len(s.part.ells), -1)
+        if not m2.any():
+            continue
+        rows, ks = _kept(m2, f"spectrum {s.label}")
+        ells = tuple(s.part.ells[j] for j in rows)
+        n = len(ells) * (ks.stop - ks.start)
+        parts.append(DataVector(ells, s.part.edges[ks.start:ks.stop + 1], s.part.k_eff[ks],
+                                s.part.n_modes[ks], bias.mu_truth[pos:pos + n].reshape(len(ells), -1),
+                                source="truth mock"))
+        pairs.append(s.pair)
+        kept[i] = list(ells)
+        pos += n
+    sv = SpectraVector(alik.forward.names, pairs, parts,
+                       {"generated": "ergofit forecast: noiseless truth mock",
+                        "config_hash": bias.config.hash}, source="truth mock")
+    data_path = os.path.abspath(os.path.join(folder, "truth_mock.npz"))
+    cov_path = os.path.abspath(os.path.join(folder, "analysis_covariance.npz"))
+    sv.save(data_path)
+    save_spectra_covariance(cov_path, alik.covariance / alik.precision_scale, sv)
+    return data_path, cov_path, kept
+
+
+def _multi_raw(bias, alik, folder, used):
+    """Raw analysis config of several tracers on the truth mock: the kept spectra and ℓ, each
+    tracer's fiducial values in its ``tracers`` entry, ν in observer.nu_true."""
+    acfg = bias.analysis_config
+    data_path, cov_path, kept = _truth_spectra(bias, alik, folder)
+    raw = config_to_raw(acfg)
+    raw["spectra"] = [{**{k: v for k, v in sp.items() if k not in ("k_min", "k_max")},
+                       "ells": kept[i]} for i, sp in enumerate(raw["spectra"]) if i in kept]
+    raw["data"] = {"file": data_path,
+                   "shot_noise_subtracted": acfg["data"]["shot_noise_subtracted"]}
+    raw["covariance"] = {"kind": "file", "file": cov_path}
+    for t in raw["tracers"]:
+        for base in ("b1", "b_e", "s", "p"):
+            if f"{base}_{t['name']}" in used:
+                t[base] = float(used[f"{base}_{t['name']}"])
+    raw.setdefault("observer", {})["nu_true"] = float(used["nu_obs"])
+    return raw
+
+
 def _mcmc_config(bias, folder):
-    """Analysis config whose data are the noiseless truth mock (files written into ``folder``)."""
-    from ..data import DataVector, save_covariance
+    """(Analysis config whose data are the noiseless truth mock (files written into
+    ``folder``), the analysis model's fiducial values)."""
     from ..model import build
     from ..model.fiducial import COSMO_PARAMS
     acfg = bias.analysis_config
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         alik = build(acfg)
-    n_ell = len(alik.data_full.ells)
-    m2 = alik.mask.reshape(n_ell, -1)
-    kmask = m2.any(0)
-    ells = [l for j, l in enumerate(alik.data_full.ells) if m2[j].any()]
-    idx = np.flatnonzero(kmask)
-    if np.any(np.diff(idx) != 1):
-        raise ErgofitError("MCMC check: the selected k bins are not contiguous")
-    edges = alik.data_full.edges[idx[0]:idx[-1] + 2]
-    dv = DataVector(tuple(ells), edges, alik.data_full.k_eff[kmask], alik.data_full.n_modes[kmask],
+    used = dict(alik.fiducial)
+    used.update(alik.params.fixed)    # what the analysis model uses for everything not sampled
+    if "tracers" in acfg:
+        raw = _multi_raw(bias, alik, folder, used)
+    else:
+        raw = _single_raw(bias, alik, folder, used)
+    for n in getattr(alik, "known", KNOWN):
+        if n in COSMO_PARAMS or n in raw["parameters"]:
+            continue
+        raw["parameters"][n] = {"fixed": float(used[n])}
+    for p in alik.params.free:          # start the walkers at the fiducial point
+        spec = raw["parameters"].get(p.name)
+        if isinstance(spec, dict) and p.prior.contains(float(alik.fiducial[p.name])):
+            spec["start"] = float(alik.fiducial[p.name])
+    raw["forecast"] = {}
+    cfg = validate(raw, src=f"{acfg.path} [MCMC check on the truth mock]", base_dir=acfg.base_dir)
+    return cfg, {n: float(v) for n, v in alik.fiducial.items()}
+
+
+def _single_raw(bias, alik, folder, used):
+    """Raw analysis config of one tracer on the truth mock (a data vector of the fitted ℓ and
+    contiguous k bins), the fiducial values in the tracer block."""
+    from ..data import DataVector, save_covariance
+    acfg = bias.analysis_config
+    full = alik.data_full
+    rows, ks = _kept(alik.mask.reshape(len(full.ells), -1), "the data")
+    ells = [full.ells[j] for j in rows]
+    dv = DataVector(tuple(ells), full.edges[ks.start:ks.stop + 1], full.k_eff[ks], full.n_modes[ks],
                     bias.mu_truth.reshape(len(ells), -1),
                     meta={"generated": "ergofit forecast: noiseless truth mock",
                           "config_hash": bias.config.hash}, source="truth mock")
     data_path = os.path.abspath(os.path.join(folder, "truth_mock.npz"))
     cov_path = os.path.abspath(os.path.join(folder, "analysis_covariance.npz"))
     dv.save(data_path)
-    save_covariance(cov_path, alik.covariance / alik.precision_scale, ells, int(kmask.sum()))
+    save_covariance(cov_path, alik.covariance / alik.precision_scale, ells, ks.stop - ks.start)
     raw = config_to_raw(acfg)
     raw["data"] = {"file": data_path, "ells": ells,
                    "shot_noise_subtracted": acfg["data"]["shot_noise_subtracted"]}
     raw["covariance"] = {"kind": "file", "file": cov_path}
-    used = dict(alik.fiducial)
-    used.update(alik.params.fixed)    # what the analysis model uses for everything not sampled
     for n in ("b1", "fnl", "b_e", "s"):
         raw["tracer"][n] = float(used[n])
     raw["observer"]["nu_true"] = float(used["nu_obs"])
-    for n in KNOWN:
-        if n in COSMO_PARAMS or n in raw["parameters"]:
-            continue
-        raw["parameters"][n] = {"fixed": float(used[n])}
-    for p in alik.params.free:          # start the walkers at the fiducial point
-        if p.prior.contains(float(alik.fiducial[p.name])):
-            raw["parameters"][p.name]["start"] = float(alik.fiducial[p.name])
-    raw["forecast"] = {}
-    return validate(raw, src=f"{acfg.path} [MCMC check on the truth mock]", base_dir=acfg.base_dir)
+    return raw
 
 
 def mcmc_check(bias, out_dir, settings=None, tolerance=_MCMC_TOLERANCE):
@@ -77,7 +147,7 @@ def mcmc_check(bias, out_dir, settings=None, tolerance=_MCMC_TOLERANCE):
     from ..model import build
     from ..sampling import CHAIN_FILENAME, SamplerSettings, run_sampler
     os.makedirs(out_dir, exist_ok=True)
-    mcfg = _mcmc_config(bias, out_dir)
+    mcfg, fiducial = _mcmc_config(bias, out_dir)
     notes = []
     with collect_warnings(notes):
         lik = build(mcfg)
@@ -104,7 +174,7 @@ def mcmc_check(bias, out_dir, settings=None, tolerance=_MCMC_TOLERANCE):
     agree = []
     for j, n in enumerate(lik.parameter_names):
         mean, std = float(samples[:, j].mean()), float(samples[:, j].std(ddof=1))
-        entry = {"mcmc_shift": mean - float(lik.fiducial[n]), "mcmc_std": std}
+        entry = {"mcmc_shift": mean - fiducial[n], "mcmc_std": std}
         if n in f.names:
             i = f.index(n)
             sig, dlt = float(f.errors[i]), float(bias.delta[i])

@@ -568,7 +568,8 @@ def mock_covariance(cfg, layout, mask, take):
     in one line; ``take`` (positions of the fitted spectra in ``layout``, or None) selects the
     blocks, the Hartlap factor is then that of the points fitted."""
     pattern = cfg["covariance"]["mocks"]
-    mc, first = spectra_covariance_from_mocks(cfg.resolve(pattern))
+    one = layout.tracers[0] if len(layout.tracers) == 1 else None
+    mc, first = spectra_covariance_from_mocks(cfg.resolve(pattern), one)
     mine = [(p, d.ells, d.n_bins) for p, d in zip(layout.pairs, layout.parts)]
     theirs = [(p, d.ells, d.n_bins) for p, d in zip(first.pairs, first.parts)]
     if theirs != mine or any(not np.allclose(a.edges, b.edges) for a, b in zip(first.parts, layout.parts)):

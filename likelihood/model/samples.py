@@ -10,6 +10,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..config import parameter_set
+from ..errors import ErgofitError
 from .fiducial import COSMO_PARAMS
 from .likelihood import Likelihood
 from .multitracer import build_multi, parameter_lines
@@ -75,11 +76,13 @@ class SampleSum(Likelihood):
         return np.hstack([p.derived(theta[:, cols]) for p, cols in zip(self.parts, self.columns)])
 
     def observables(self):
-        """Data per (sample, spectrum, multipole), labelled 'sample: spectrum'."""
-        out = dict(spectra=[], ells=[], k=[], data=[], sigma=[])
+        """Data per (sample, spectrum, multipole): ``spectra`` the spectrum labels, ``samples``
+        the sample names."""
+        out = dict(spectra=[], samples=[], ells=[], k=[], data=[], sigma=[])
         for name, p in zip(self.names, self.parts):
             o = p.observables()
-            out["spectra"] += [f"{name}: {s}" for s in o["spectra"]]
+            out["spectra"] += list(o["spectra"])
+            out["samples"] += [name] * len(o["spectra"])
             for key in ("ells", "k", "data", "sigma"):
                 out[key] += list(o[key])
         return out
@@ -100,5 +103,18 @@ class SampleSum(Likelihood):
 
 
 def build_samples(cfg):
-    """The :class:`SampleSum` of a validated config with ``samples``."""
-    return SampleSum(cfg, [build_multi(sc) for sc in cfg.sample_configs])
+    """The :class:`SampleSum` of a validated config with ``samples``; an error in a sample's
+    files names the sample."""
+    return SampleSum(cfg, [in_sample(i, s["name"], build_multi, sc) for i, (s, sc)
+                           in enumerate(zip(cfg["samples"], cfg.sample_configs))])
+
+
+def in_sample(i, name, fn, *args):
+    """``fn(*args)`` for sample ``i`` named ``name``; an ErgofitError that does not name the
+    sample yet (e.g. a data file's) is raised again with "sample NAME: " in front."""
+    try:
+        return fn(*args)
+    except ErgofitError as exc:
+        if f"samples[{i}] {name}" in str(exc):
+            raise
+        raise type(exc)(f"sample {name}: {exc}") from None

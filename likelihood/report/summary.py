@@ -11,6 +11,12 @@ Everything here reads a :class:`likelihood.sampling.SamplerResult` (or the run f
 ``triangle.png/pdf``  getdist triangle plot, filled 68/95% contours and 1-D marginals.
 ``multipoles.png``    data with error bars per multipole, best-fit model, residuals in sigma.
 
+Several tracers or samples (:mod:`likelihood.report.breakdown`): ``summary.json`` gains
+``fit_blocks`` (χ² and points per sample and spectrum at the best fit) and, per parameter, the
+sample it belongs to ("shared" for f_NL, ν, cosmology); ``constraints.md`` shows both; each
+sample gets ``triangle_NAME.png/pdf`` (the shared parameters and its own); ``multipoles.png``
+has a panel per spectrum (odd ℓ of a cross spectrum apart) and a row per sample.
+
 Statistics. Marginal limits are getdist's (Lewis 2019, arXiv:1910.13970): from the kernel-
 smoothed 1-D marginal, integrating inwards equally from both tails unless the posterior is
 skewed, then equal-probability (density-threshold) limits; one-tailed limits are reported when
@@ -46,6 +52,7 @@ import numpy as np
 from ..errors import ErgofitError
 from ..io import write_text
 from ..sampling import SamplerResult, load_chain
+from .breakdown import fit_blocks, parameter_samples, triangle_groups
 from .figures import check_observables, plot_multipoles, plot_triangle
 from .tables import constraints_markdown, constraints_tex, constraints_text
 
@@ -237,6 +244,10 @@ def _write_summary(out_dir, result: SamplerResult, lik: Any, label: str | None):
     write_text(os.path.join(out_dir, "constraints.md"), constraints_markdown(summary))
     write_text(os.path.join(out_dir, "constraints.tex"), constraints_tex(summary))
     plot_triangle([samples], os.path.join(out_dir, "triangle"), params=list(result.parameter_names))
+    if lik is not None:
+        for name, params in triangle_groups(lik, list(result.parameter_names)).items():
+            plot_triangle([samples], os.path.join(out_dir, f"triangle_{name}"), params=params,
+                          title=f"sample {name}: the shared parameters and its own")
     if can_plot:
         chi2, dof = summary["chi2"], summary["dof"]
         title = f"{label}: best fit, $\\chi^2$ = {chi2:.1f} for {dof} d.o.f." if chi2 is not None \
@@ -266,6 +277,9 @@ def _compute_summary(out_dir, result: SamplerResult, lik: Any, label: str):
                 notes.append("the best-fit chi2 is not finite: the model cannot describe the data")
         if not can_plot:
             notes.append("the likelihood has no observables(): multipoles.png left out")
+        for name, sample in parameter_samples(lik).items():
+            if name in params:
+                params[name]["sample"] = sample
     else:
         notes.append("no likelihood given: derived parameters, chi2/dof and multipoles.png left out")
     if not can_plot and os.path.exists(os.path.join(out_dir, "multipoles.png")):
@@ -293,6 +307,10 @@ def _compute_summary(out_dir, result: SamplerResult, lik: Any, label: str):
         "chi2_pte": pte,
         "credible_levels": list(_CONTOURS),
         "parameters": params,
+        "fit_blocks": fit_blocks(lik, np.asarray(result.best_fit, float)) if can_plot else [],
+        "sample_triangles": [f"triangle_{s}" for s in
+                             triangle_groups(lik, list(result.parameter_names))]
+        if lik is not None else [],
         "notes": notes,
     }
     return _clean(summary), samples, can_plot

@@ -89,19 +89,35 @@ def constraints_markdown(summary: dict) -> str:
         pte = summary.get("chi2_pte")
         lines.append(f"Best fit: chi2 = {summary['chi2']:.2f} for {summary['dof']} degrees of "
                      "freedom" + (f" (probability to exceed {pte:.3g})." if pte is not None else "."))
-    lines += ["", "| parameter | mean and 68% limits | 68% interval | 95% interval | best fit |",
-              "|:--|:--|:--|:--|:--|"]
+    by_sample = any("sample" in e for e in summary["parameters"].values())
+    lines += ["", "| parameter | " + ("sample | " if by_sample else "") + "mean and 68% limits | "
+              "68% interval | 95% interval | best fit |",
+              "|:--|" + (":--|" if by_sample else "") + ":--|:--|:--|:--|"]
     for name, e in summary["parameters"].items():
         label = f"${e['label']}$" + (" (derived)" if e["derived"] else "")
-        lines.append(f"| {label} `{name}` | {_central_text(e, tex=False)} | {_interval(e, '68', False)} | "
-                     f"{_interval(e, '95', False)} | {_best(e)} |")
+        sample = f" {e.get('sample', '')} |" if by_sample else ""
+        lines.append(f"| {label} `{name}` |{sample} {_central_text(e, tex=False)} | "
+                     f"{_interval(e, '68', False)} | {_interval(e, '95', False)} | {_best(e)} |")
     lines.append("")
+    lines += _blocks_markdown(summary.get("fit_blocks") or [])
     for note in summary["notes"]:
         lines.append(f"> Note: {note}")
     lines.append("")
     lines.append("Limits: getdist marginal limits at 68% and 95% credibility; best fit: "
                  "highest-posterior sample of the chain.")
     return "\n".join(lines) + "\n"
+
+
+def _blocks_markdown(blocks: list[dict]) -> list[str]:
+    """The best fit per sample and spectrum (likelihood.report.breakdown.fit_blocks)."""
+    if not blocks:
+        return []
+    lines = ["Best fit per sample and spectrum (a spectrum's chi2 with its own block of the "
+             "covariance; 'all': the sample's chi2 with its whole covariance):", "",
+             "| sample | spectrum | points | chi2 |", "|:--|:--|--:|--:|"]
+    for b in blocks:
+        lines.append(f"| {b['sample'] or '-'} | {b['spectrum']} | {b['n_points']} | {b['chi2']:.2f} |")
+    return lines + [""]
 
 
 def _central_text(e: dict, tex: bool) -> str:

@@ -24,6 +24,10 @@ of the config's data vector on one set of k bins and written as labelled spectra
 validation is made per spectrum and multipole. The mocks' estimator takes the line of sight at
 each galaxy, so their odd cross multipoles carry the wide-angle dipole ∝ (b_X − b_Y)/(kχ) that the
 plane-parallel model leaves out: those tests fail where kχ is small (README).
+
+Several samples (a config with ``samples``): each sample's mocks as for several tracers, from its
+own survey, tracers, spectra and k bins, into ``NAME/`` of the output folder, with independent
+random streams (:func:`simulate_samples`).
 """
 from __future__ import annotations
 
@@ -45,8 +49,8 @@ from ..model.fiducial import make_tracer
 from ..numerics.mesh import Mesh
 from ..simulate.mocks import simulate_from_settings
 from ..simulate.validation import validate
-from ..data import DataVector
-from ..spectra import SpectraVector, pair_label, save_spectra_covariance
+from ..data import DataVector, save_covariance
+from ..spectra import SpectraVector, is_single_tracer_file, pair_label, save_spectra_covariance
 
 
 def choose_mesh(lik, n_mesh=None):
@@ -126,13 +130,33 @@ def simulate_survey(config, n, out=None, mesh_n=None, check=False, echo=print, p
     """``n`` mocks of the survey of ``config``: :func:`simulate_one_tracer`, or
     :func:`simulate_several_tracers` for a config with a ``tracers`` section (same arguments)."""
     cfg = load_config(config)
-    if "samples" in cfg:
-        raise ErgofitError(f"{cfg.path}: ergofit simulate makes the mocks of one sample; write a "
-                           "config with that sample's survey, tracers and spectra")
     if n < 2:
         raise ErgofitError(f"--n {n}: need at least 2 mocks for a covariance")
+    if "samples" in cfg:
+        return simulate_samples(cfg, n, out, mesh_n, check, echo, poisson)
     run = simulate_several_tracers if "tracers" in cfg else simulate_one_tracer
     return run(cfg, n, out, mesh_n, check, echo, poisson)
+
+
+def simulate_samples(cfg, n, out=None, mesh_n=None, check=False, echo=print, poisson=True):
+    """Mocks of a config with ``samples``: for each sample, :func:`simulate_several_tracers` of
+    that sample's validated config (its own geometry, mesh, tracers, spectra, k bins and the file
+    format of its data file) into ``out/NAME/`` (default ``<output folder>/mocks/NAME/``), with
+    its own ``--validate``. The samples are independent: sample i draws from the random streams
+    of ``SeedSequence((seed, i))``, seed = its ``data.mock.seed`` or 0. Every sample is checked
+    and meshed before the first file is written. Returns {sample name: validation result or None}.
+    """
+    out = out or os.path.join(cfg.output_folder, "mocks")
+    from ..model.samples import in_sample
+    setups = [in_sample(i, s["name"], _multi_setup, sc, poisson, mesh_n)
+              for i, (s, sc) in enumerate(zip(cfg["samples"], cfg.sample_configs))]
+    results = {}
+    for i, (s, sc, setup) in enumerate(zip(cfg["samples"], cfg.sample_configs, setups)):
+        echo(f"== sample {s['name']}")
+        seed = (int(sc["data"].get("mock", {}).get("seed", 0)), i)
+        results[s["name"]] = simulate_several_tracers(sc, n, os.path.join(out, s["name"]), mesh_n,
+                                                      check, echo, poisson, setup, seed)
+    return results
 
 
 def simulate_one_tracer(config, n, out=None, mesh_n=None, check=False, echo=print, poisson=True):
@@ -241,17 +265,28 @@ def multi_validation_model(cfg, mesh, poisson=True):
     return lik.forward.full(vals)[0], lik, k_ir
 
 
-def simulate_several_tracers(cfg, n, out=None, mesh_n=None, check=False, echo=print, poisson=True):
+def simulate_several_tracers(cfg, n, out=None, mesh_n=None, check=False, echo=print, poisson=True,
+                             setup=None, seed=None):
     """Mocks of a multi-tracer config (one sample): all tracers from one Gaussian field
     (:func:`likelihood.simulate.mocks.simulate_tracers`: each Poisson sampled with its n̄, the
     config's window, effects and observer term), measured into the config's spectra (pairs and
     multipoles of its data vector, on its k bins) and written into ``out`` as labelled spectra
     files ``mock_0000.txt``, ... with their sample covariance ``covariance.txt`` (the formats of
-    :mod:`likelihood.spectra`); ``check``: the validation of :func:`simulate_one_tracer` for
-    every (spectrum, ℓ) and jointly. Returns the validation result or None."""
+    :mod:`likelihood.spectra`; ``.npz`` files when the config's data file is one, and single-tracer
+    data vectors when it is one, i.e. one auto spectrum); ``check``: the
+    validation of :func:`simulate_one_tracer` for every (spectrum, ℓ) and jointly. ``setup``:
+    the result of :func:`_multi_setup` if already made; ``seed``: the random streams (default
+    the config's ``data.mock.seed`` or 0). Returns the validation result or None."""
     from ..simulate.mocks import simulate_tracers
     from ..simulate.validation import validate_spectra
-    lik, mesh, spectra, edges = _multi_setup(cfg, poisson, mesh_n)
+    lik, mesh, spectra, edges = setup or _multi_setup(cfg, poisson, mesh_n)
+    if seed is None:
+        seed = cfg["data"].get("mock", {}).get("seed", 0)
+    data_file = cfg["data"].get("file")
+    ext = ".npz" if str(data_file).endswith(".npz") else ".txt"
+    # one auto spectrum read from a single-tracer data file: the mocks keep that layout
+    single = (data_file is not None and len(spectra) == 1
+              and is_single_tracer_file(cfg.resolve(data_file)))
     out = out or os.path.join(cfg.output_folder, "mocks")
     names = lik.forward.names
     tracers = {t: lik.forward.tracer(lik.fiducial, t) for t in names}
@@ -274,19 +309,23 @@ def simulate_several_tracers(cfg, n, out=None, mesh_n=None, check=False, echo=pr
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", tr.PlaneParallelWarning)
         mocks = simulate_tracers(lik.cosmo, lik.z, tracers, lik.effects, mesh, spectra, edges, n,
-                                 cfg["data"].get("mock", {}).get("seed", 0), window=lik.window,
+                                 seed, window=lik.window,
                                  poisson=poisson, observer=observer, subtract_shot_noise=sub,
                                  progress=lambda i, m: echo(f"  mock {i}/{m}", flush=True))
-    vectors = [_spectra_vector(mocks, names, x, cfg, i) for i, x in enumerate(mocks.vectors)]
+    vectors = [_spectra_vector(mocks, names, x, cfg, i, seed) for i, x in enumerate(mocks.vectors)]
     try:
         os.makedirs(out, exist_ok=True)
     except OSError as exc:
         raise ErgofitError(f"--out {out}: cannot create the folder ({exc})") from None
+    cov = mocks.covariance().covariance
     for i, v in enumerate(vectors):
-        v.save(os.path.join(out, f"mock_{i:04d}.txt"))
-    save_spectra_covariance(os.path.join(out, "covariance.txt"), mocks.covariance().covariance,
-                            vectors[0])
-    echo(f"wrote {n} labelled spectra files (mock_0000.txt ...) and covariance.txt into {out}/")
+        (v.parts[0] if single else v).save(os.path.join(out, f"mock_{i:04d}{ext}"))
+    if single:
+        save_covariance(os.path.join(out, f"covariance{ext}"), cov, spectra[0][1], edges.size - 1)
+    else:
+        save_spectra_covariance(os.path.join(out, f"covariance{ext}"), cov, vectors[0])
+    echo(f"wrote {n} {'single-tracer data' if single else 'labelled spectra'} files "
+         f"(mock_0000{ext} ...) and covariance{ext} into {out}/")
     if not check:
         return None
     model, _, k_ir = multi_validation_model(cfg, mesh, poisson)
@@ -314,17 +353,17 @@ def simulate_several_tracers(cfg, n, out=None, mesh_n=None, check=False, echo=pr
     return res
 
 
-def _spectra_vector(mocks, names, flat, cfg, i):
+def _spectra_vector(mocks, names, flat, cfg, i, seed):
     """Mock ``i`` (flat vector ``flat`` of :class:`MultiTracerMocks` ``mocks``) as a SpectraVector."""
+    meta = {"mock": str(i), "seed": " ".join(str(s) for s in np.atleast_1d(seed)),
+            "z": f"{cfg['survey']['redshift']:.6g}"}
     parts, pos = [], 0
     nb = mocks.k_eff.size
     for pair, ells in mocks.spectra:
         vals = flat[pos:pos + nb * len(ells)].reshape(len(ells), nb)
         parts.append(DataVector(tuple(ells), mocks.edges, mocks.k_eff, mocks.n_modes, vals,
-                                source=f"mock {i}"))
+                                meta=dict(meta), source=f"mock {i}"))
         pos += vals.size
-    meta = {"mock": str(i), "seed": str(cfg["data"].get("mock", {}).get("seed", 0)),
-            "z": f"{cfg['survey']['redshift']:.6g}"}
     return SpectraVector(names, [p for p, _ in mocks.spectra], parts, meta, source=f"mock {i}")
 
 

@@ -21,7 +21,7 @@ import likelihood
 
 FIXTURE = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))),
                        "fixtures", "legacy")
-ROOT = os.path.dirname(os.path.dirname(FIXTURE.rstrip(os.sep)))
+ROOT = os.path.dirname(os.path.dirname(os.path.dirname(FIXTURE.rstrip(os.sep))))   # the repository
 with open(os.path.join(FIXTURE, "values.json"), encoding="utf-8") as _fh:
     REF = json.load(_fh)
 CACHE_FILE = "window-matrix-" + REF["cache_key"][:24] + ".npz"

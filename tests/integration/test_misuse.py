@@ -219,6 +219,13 @@ def _as_samples(second_name, second_tracers):
     return change
 
 
+def _south_mock(cfg):
+    """The second sample of :func:`_as_samples` on its own mock data (its tracers differ from
+    those of the demo's data file)."""
+    cfg["samples"][1].update(data={"mock": {"k_min": 0.004, "k_max": 0.05, "n_bins": 8}},
+                             covariance={"kind": "gaussian"})
+
+
 MULTI_CASES = [
     ("unknown-tracer", _spectrum(1, "pair", ["bright", "faynt"]), "check",
      "spectra[1].pair: unknown tracer 'faynt' (did you mean 'faint'?)"),
@@ -246,10 +253,16 @@ MULTI_CASES = [
      "tracers[0].nbar = -1: expected a positive number"),
     ("cov-mocks-none", lambda c: c.update(covariance={"kind": "mocks", "mocks": "m_*.txt"}), "check",
      "m_*.txt: found 0 mock data-vector files; need at least 2"),
-    ("simulate-samples", _as_samples("south", {"bright": "b2", "faint": "f2"}), "simulate",
-     "ergofit simulate makes the mocks of one sample"),
+    # the second sample cannot be simulated: nothing is written for the first one either
+    ("simulate-samples-shared-noise", lambda c: (_as_samples("south", {"bright": "b2", "faint": "f2"})(c),
+                                                 _south_mock(c),
+                                                 c["samples"][1]["spectra"][1].update(shared_nbar=2e-5)),
+     "simulate", "(samples[1] south): spectra b2 x f2: shared_nbar (overlapping populations) cannot "
+     "be simulated"),
     ("simulate-shared-noise", _spectrum(1, "shared_nbar", 2e-5), "simulate",
      "shared_nbar (overlapping populations) cannot be simulated"),
+    ("samples-header", _as_samples("south", {"bright": "b2", "faint": "f2"}), "check",
+     "sample south: multi_demo_data.txt: the config's tracers ['b2', 'f2'] are not in the file"),
     ("samples-same-name", _as_samples("north", {"bright": "brightS", "faint": "faintS"}), "check",
      "samples: two samples are named 'north'"),
     ("samples-same-tracer", _as_samples("south", {"bright": "brightS"}), "check",
@@ -274,8 +287,6 @@ MULTI_CASES = [
                                        c.update(forecast={"scan": {"quantity": "bias_split",
                                                                    "values": [0, 1]}})),
      "forecast", "bias_split compares one tracer with a split into two; the config has 3 tracers"),
-    ("forecast-check-mcmc", lambda c: None, "forecast --check-mcmc",
-     "--check-mcmc is for one tracer"),
     ("forecast-split-nbar", lambda c: c.update(forecast={"scan": {"quantity": "nbar", "values": [1e-4],
                                                                   "nbar": [1e-4]}}),
      "forecast", "forecast.scan.nbar: only with quantity: bias_split")]
@@ -286,3 +297,18 @@ def test_malformed_multi_tracer_input_exits_2_with_one_line(case, tmp_path, caps
     for name in ("multi_demo_data.txt", "multi_demo_cov.txt"):
         shutil.copy(os.path.join(DEMO, name), tmp_path / name)
     _check_refused(MULTI, case, tmp_path, capsys, monkeypatch)
+
+
+#: the bad inputs listed by issue 13, also through `ergofit run` and `ergofit simulate`: refused
+#: before the output folder or any mock file is made
+ISSUE13 = ("unknown-tracer", "cross-without-auto", "odd-ell-auto", "samples-same-name",
+           "header-tracers", "header-ells", "samples-header")
+
+
+@pytest.mark.parametrize("command", ["run", "simulate --n 3"])
+@pytest.mark.parametrize("case_id", ISSUE13)
+def test_issue13_bad_input_writes_nothing(case_id, command, tmp_path, capsys, monkeypatch):
+    case = next(c for c in MULTI_CASES if c[0] == case_id)
+    for name in ("multi_demo_data.txt", "multi_demo_cov.txt"):
+        shutil.copy(os.path.join(DEMO, name), tmp_path / name)
+    _check_refused(MULTI, (case[0], case[1], command, case[3]), tmp_path, capsys, monkeypatch)

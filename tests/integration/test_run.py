@@ -164,7 +164,7 @@ def test_run_folder_is_portable(tmp_path, monkeypatch):
         json.loads((moved / "summary.json").read_text())["config_hash"]
 
 
-def test_two_tracer_demo_and_samples_end_to_end(tmp_path, monkeypatch):
+def test_two_tracer_demo_and_samples_end_to_end(tmp_path, monkeypatch, two_samples):
     """The README's two-tracer demo config runs end to end (short chain): outputs, derived b1σ8
     per tracer, the multipoles figure with a column per spectrum; a run with two samples stores
     each sample's input files in inputs/NAME/ and still summarises after its folder moved."""
@@ -183,18 +183,19 @@ def test_two_tracer_demo_and_samples_end_to_end(tmp_path, monkeypatch):
     assert {"fnl", "b1_bright", "b1_faint", "b1_sigma8_bright", "b1_sigma8_faint"} <= set(summ["parameters"])
     assert summ["dof"] == 128 - 6 and (out / "multipoles.png").stat().st_size > 0
 
-    north = {k: cfg.pop(k) for k in ("survey", "tracers", "spectra", "data", "covariance")}
-    south = {"survey": {"redshift": 0.6, "geometry": {"shape": "shell", "r_min": 1200, "r_max": 1900}},
-             "tracers": [{"name": "lrg", "nbar": 3e-4, "b1": 2.0}],
-             "spectra": [{"pair": ["lrg", "lrg"], "ells": [0, 2]}],
-             "data": {"mock": {"seed": 5, "k_min": 0.004, "k_max": 0.05, "n_bins": 8}}}
-    cfg["samples"] = [dict(name="north", **north), dict(name="south", **south)]
-    cfg["parameters"]["b1_lrg"] = {"flat": [0.5, 5.0]}
+    two_samples(cfg)
     cfg["run"] = "both"
     (src / "both.yaml").write_text(yaml.safe_dump(cfg))
     out = tmp_path / "both"
     assert main(["run", str(src / "both.yaml"), "--out", str(out), "--quiet"]) == 0
     stored = yaml.safe_load((out / "config.yaml").read_text())
+    summ = json.loads((out / "summary.json").read_text())      # reports per sample and spectrum
+    assert summ["parameters"]["b1_lrg"]["sample"] == "south" and summ["parameters"]["fnl"]["sample"] == "shared"
+    assert [b["spectrum"] for b in summ["fit_blocks"] if b["sample"] == "south"] == ["lrg", "all"]
+    assert sum(b["chi2"] for b in summ["fit_blocks"] if b["spectrum"] == "all") == \
+        pytest.approx(summ["chi2"], rel=1e-6)
+    assert "| north | bright x faint | 64 |" in (out / "constraints.md").read_text()
+    assert all((out / f"triangle_{s}.png").stat().st_size > 0 for s in ("north", "south"))
     assert stored["samples"][0]["data"]["file"] == os.path.join("inputs", "north", "multi_demo_data.txt")
     shutil.rmtree(src)
     moved = tmp_path / "far" / "both"

@@ -275,7 +275,8 @@ def test_samples_sum_of_independent_likelihoods(tmp_path):
     np.testing.assert_allclose(lik.log_prob(theta), ref, rtol=1e-12)
     assert lik.log_prob(theta[0]) == pytest.approx(ref[0], rel=1e-12)
     assert lik.dof == alone_n.data.size + alone_s.data.size - 9
-    assert len(lik.observables()["spectra"]) == 10 and lik.observables()["spectra"][-1] == "south: lrg"
+    assert len(lik.observables()["spectra"]) == 10 and lik.observables()["spectra"][-1] == "lrg"
+    assert lik.observables()["samples"][-1] == "south"
     assert lik.derived_names == ["b1_sigma8_bright", "b1_sigma8_faint", "b1_sigma8_lrg"]
     d = lik.derived(theta)
     np.testing.assert_allclose(d[:, 2], alone_s.derived(theta[:, [0, 8]])[:, 0], rtol=1e-12)
