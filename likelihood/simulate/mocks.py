@@ -61,7 +61,7 @@ def _mesh_kernel(mesh, A, B, label):
 
 def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10, seed=0,
                    nbar=None, constraint=None, subtract_mean=True, k_cut=None, progress=None,
-                   subtract_shot_noise=True):
+                   subtract_shot_noise=True, observe=None):
     """Draw ``n_mocks`` Gaussian mocks, observe them and measure their multipoles.
 
     Per mock i (random streams spawned from ``seed``, so mock i depends only on (seed, i)):
@@ -76,6 +76,9 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
     with Poisson sampling, where the full linear power up to the Nyquist frequency can drive
     1 + Δ < 0 in many cells; keep k_cut well above the last bin (the window mixes modes over a
     few k_f, so the measured bins near k_cut then lack the leakage from k > k_cut).
+    ``subtract_mean``: as :func:`measure_multipoles` (True, False or "radial").
+    ``observe`` (optional): a callable δ_k → Δ_g(x) on the mesh used instead of the kernel
+    (A, B, F), e.g. the light cone of :mod:`likelihood.simulate.lightcone`.
     Returns (list of DataVector, MockCovariance); the covariance is the unbiased sample covariance
     of the flat (ℓ-major) vectors.
     """
@@ -85,7 +88,9 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
     w = window_weights(mesh, window, "window")
     extent_warning(mesh, w)
     p = _mesh_power(mesh, pk, k_cut, e)
-    a, bk = _mesh_kernel(mesh, A, B, "")
+    if observe is None:
+        a, bk = _mesh_kernel(mesh, A, B, "")
+        observe = lambda dk: observed_field(mesh, dk, a, bk, F)  # noqa: E731
     tpl = _constraint_template(mesh, constraint, p)
     c_value = None if tpl is None else constraint.nu * math.sqrt(tpl.sigma2)
     mocks = []
@@ -95,7 +100,7 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
         dk = gaussian_field(mesh, p, s_field)
         if constraint is not None:
             dk, _, _ = constrain_at_origin(mesh, dk, None, c_value, p, template=tpl, inplace=True)
-        gal = observed_field(mesh, dk, a, bk, F)
+        gal = observe(dk)
         del dk
         if nbar is not None:
             gal, frac, gain = poisson_counts(mesh, gal, nbar, w, s_poisson, gaussian_gain=True)
