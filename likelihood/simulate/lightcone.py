@@ -163,3 +163,39 @@ def simulate_lightcone(cosmo, tracer, terms, mesh, window, edges, ells=(0, 2, 4)
                           nbar=nbar, constraint=constraint, subtract_mean=subtract_mean,
                           k_cut=k_cut, progress=progress, subtract_shot_noise=subtract_shot_noise,
                           observe=lambda dk: kern.field(mesh, dk))
+
+
+#: integral constraint of a curved-sky run → the mocks' mean subtraction (measure_multipoles)
+SUBTRACT_MEAN = {"none": False, "global": True, "radial": "radial"}
+
+
+@dataclass(frozen=True)
+class LightConeSpec:
+    """What the mocks of a curved-sky run take from its model: the tracer's coefficients, the
+    local terms, the snapshot redshift (None: light cone) and the integral constraint, which
+    sets how each mock estimates its mean (none, the survey mean, or each distance's mean)."""
+
+    cosmo: object
+    tracer: TracerCoefficients
+    terms: tuple
+    snapshot_z: object = None
+    ic: str = "global"
+
+    @classmethod
+    def of_likelihood(cls, lik):
+        """The spec of a curved-sky likelihood at its fiducial values (likelihood.model.curved:
+        ``forward.tracer``, ``terms``, ``snapshot_z``, ``ic``); integrated terms dropped."""
+        f = lik.forward
+        return cls(lik.cosmo, f.tracer(lik.cosmo, lik.fiducial),
+                   tuple(t for t in f.terms if t in LOCAL_TERMS), f.snapshot_z, f.ic)
+
+    def describe(self):
+        mode = ("snapshot at z = %g" % self.snapshot_z if self.snapshot_z is not None
+                else "light cone (coefficients at each cell's distance)")
+        return f"{mode}, local terms {', '.join(self.terms)}, {self.ic} mean subtraction"
+
+    def mocks(self, mesh, window, edges, ells, n_mocks, seed, **kw):
+        """:func:`simulate_lightcone` with this spec (keyword arguments passed on)."""
+        return simulate_lightcone(self.cosmo, self.tracer, self.terms, mesh, window, edges, ells,
+                                  n_mocks, seed, snapshot_z=self.snapshot_z,
+                                  subtract_mean=SUBTRACT_MEAN[self.ic], **kw)

@@ -349,7 +349,7 @@ def simulate_tracers(cosmo, z, tracers, effects, mesh, spectra, edges, n_mocks, 
 
 def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells, n_mocks, seed,
                            nbar=None, observer=None, out_dir=None, k_cut=None, progress=None,
-                           subtract_shot_noise=True):
+                           subtract_shot_noise=True, lightcone=None):
     """Mocks of a configured survey: one data-vector file per mock plus ``covariance.txt``.
 
     ``cosmo`` (``likelihood.theory.cosmology.Cosmology``) gives P(k, z); ``likelihood.theory.tracer.kernel(cosmo,
@@ -358,7 +358,9 @@ def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells,
     mapping like the config's ``observer`` section {"field": "potential"|"density", "nu_true": ν,
     "smoothing": R, "k_ir": k}; ``nbar``: Poisson-sample the tracer with this n̄ (None: the
     continuous field, no shot noise); ``k_cut``, ``subtract_shot_noise``: see
-    :func:`simulate_mocks`; ``progress(i, n)``: an optional callback after each mock.
+    :func:`simulate_mocks`; ``progress(i, n)``: an optional callback after each mock;
+    ``lightcone``: a :class:`likelihood.simulate.lightcone.LightConeSpec` (a curved-sky run):
+    the density today through the light-cone kernel instead of ``tracer`` at ``z``.
     Files in ``out_dir`` (created): ``mock_0000.txt``, ... (the documented data-vector text format
     of ``likelihood.data``) and ``covariance.txt`` (``likelihood.data`` covariance format: header
     ``# ergofit covariance``, ``# ells:``, ``# n_bins:``, then the matrix in the ℓ-major order).
@@ -368,18 +370,21 @@ def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells,
     constraint = _observer_from_settings(observer)
     ells = multipole_list(ells, "ells", max_ell=MAX_ELL)
     e = check_edges(mesh, edges)
-    pk = mesh.on_grid(lambda k: cosmo.power(k, zf), "cosmology power").astype(mesh.real_dtype)
-    a, b, fval = _tracer_on_mesh(cosmo, zf, tracer, effects, mesh)
+    if lightcone is None:
+        pk = mesh.on_grid(lambda k: cosmo.power(k, zf), "cosmology power").astype(mesh.real_dtype)
+        a, b, fval = _tracer_on_mesh(cosmo, zf, tracer, effects, mesh)
     if out_dir is not None:
         out_dir = os.fspath(out_dir)
         try:
             os.makedirs(out_dir, exist_ok=True)
         except OSError as exc:
             raise ErgofitError(f"out_dir = {out_dir}: cannot create the folder ({exc})") from None
-    mocks, cov = simulate_mocks(mesh, pk, a, b, fval, window, e, ells,
-                                n_mocks, seed, nbar=nbar, constraint=constraint,
-                                k_cut=k_cut, progress=progress,
-                                subtract_shot_noise=subtract_shot_noise)
+    run = dict(nbar=nbar, constraint=constraint, k_cut=k_cut, progress=progress,
+               subtract_shot_noise=subtract_shot_noise)
+    if lightcone is not None:
+        mocks, cov = lightcone.mocks(mesh, window, e, ells, n_mocks, seed, **run)
+    else:
+        mocks, cov = simulate_mocks(mesh, pk, a, b, fval, window, e, ells, n_mocks, seed, **run)
     for m in mocks:
         m.meta["z"] = f"{zf:.6g}"
     if out_dir is not None:

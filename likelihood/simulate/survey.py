@@ -37,12 +37,13 @@ import numpy as np
 
 from ..theory import tracer as tr
 from ..config.schema import Config, load_config, validate as validate_config
-from ..config.engine import is_curved
-from ..errors import ConfigError, ErgofitError
+from ..config.engine import INTEGRATED_EFFECTS, is_curved
+from ..errors import ErgofitError
 from ..io import write_text
 from ..model import build
 from ..model.fiducial import make_tracer
 from ..numerics.mesh import Mesh
+from ..simulate.lightcone import LightConeSpec
 from ..simulate.mocks import simulate_from_settings
 from ..simulate.validation import validate
 from ..data import DataVector
@@ -84,6 +85,8 @@ def mock_model_raw(cfg, poisson, k_ir=None):
         raw.setdefault("observer", {})["k_ir"] = float(k_ir)
     if cfg["covariance"]["kind"] == "mocks":
         raw["covariance"] = {"kind": "gaussian"}
+    if is_curved(cfg):      # the light-cone mocks have the local terms only
+        raw.setdefault("effects", {}).update({t: False for t in INTEGRATED_EFFECTS})
     return raw
 
 
@@ -146,11 +149,8 @@ def simulate_one_tracer(config, n, out=None, mesh_n=None, check=False, echo=prin
     cfg = config if isinstance(config, Config) else load_config(config)
     if n < 2:
         raise ErgofitError(f"--n {n}: need at least 2 mocks for a covariance")
-    if check and is_curved(cfg) and not cfg["engine"]["snapshot"]:
-        raise ConfigError(f"{cfg.path}: --validate: the mocks are snapshots (coefficients at "
-                          "survey.redshift, local terms only), not light cones; set "
-                          "engine.snapshot: true to compare them with the curved-sky model")
     lik = build(cfg)
+    lightcone = LightConeSpec.of_likelihood(lik) if is_curved(cfg) else None
     mesh = choose_mesh(lik, mesh_n)
     out = out or os.path.join(cfg.output_folder, "mocks")
     fid = lik.fiducial
@@ -167,6 +167,8 @@ def simulate_one_tracer(config, n, out=None, mesh_n=None, check=False, echo=prin
                   "no shot noise (continuous field, --no-poisson)")
     echo(f"simulate: {n} mocks on a {mesh.n}^3 mesh, box {mesh.box:.0f} Mpc/h "
          f"(k_Nyquist = {mesh.k_nyquist:.3g} h/Mpc), {noise_text}, writing into {out}/")
+    if lightcone is not None:
+        echo(f"  curved sky: {lightcone.describe()}; no integrated terms in the mocks")
     if n <= n_data + 2:
         echo(f"  note: {n} mocks for {n_data} data points; covariance.kind: mocks needs more than "
              f"n_data + 2 (Hartlap et al. 2007): --n {n_data + 3} or more")
@@ -181,7 +183,7 @@ def simulate_one_tracer(config, n, out=None, mesh_n=None, check=False, echo=prin
                                            cfg["data"].get("mock", {}).get("seed", 0),
                                            nbar=lik.nbar if poisson else None,
                                            observer=observer, out_dir=out, progress=progress,
-                                           subtract_shot_noise=sub)
+                                           subtract_shot_noise=sub, lightcone=lightcone)
     echo(f"wrote {len(mocks)} data vectors (mock_0000.txt ...) and covariance.txt into {out}/")
     if not check:
         return None
