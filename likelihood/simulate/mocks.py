@@ -14,8 +14,9 @@ Regime of validity
 * The box is periodic: the mock has no power below the fundamental k_f = 2π/L and points
   separated by more than L/2 see periodic images. Use a box at least twice the survey diameter
   (a warning says so) when comparing with a theory that assumes an infinite volume.
-* One redshift: the whole mock is a snapshot at the effective z (growth, bias, f and the
-  projection coefficients γ1, γ2 do not evolve across the survey; no light cone).
+* One redshift: the mocks of a tracer kernel are a snapshot at the effective z (growth, bias, f
+  and the projection coefficients γ1, γ2 do not evolve across the survey). Light-cone mocks
+  (coefficients at each cell's distance): :mod:`likelihood.simulate.lightcone`.
 * Poisson sampling is done per mesh cell: mock galaxies are cell-resolved. Cells with
   1 + aΔ < 0 are clipped to 0, after the gain a of :func:`likelihood.simulate.fields.clip_gain`
   that keeps the large-scale power of the clipped field equal to the Gaussian one to first order

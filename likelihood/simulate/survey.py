@@ -18,6 +18,11 @@ FFT estimator (:mod:`likelihood.observation.estimator`) on the data's k bins and
 compares their mean with the model they were made from (:func:`validation_model`), using the
 mocks' own scatter, and writes ``validation.png`` and ``validation.json``.
 
+A curved-sky config (``engine.kind: curved_sky``) gets light-cone mocks
+(:mod:`likelihood.simulate.lightcone`; snapshot mocks with ``engine.snapshot: true``) with the mean
+subtraction of its integral constraint; its validation model leaves out the integrated terms,
+which the mocks do not have.
+
 Several tracers (a config with ``tracers``, one sample): all populations from one Gaussian field,
 each Poisson sampled independently (:func:`simulate_several_tracers`), measured into the spectra
 of the config's data vector on one set of k bins and written as labelled spectra files; the
