@@ -300,18 +300,21 @@ def test_lightcone_evolution_against_paired_mocks(cosmo):
 
 # --- the radial integral constraint --------------------------------------------------------------
 
-def test_radial_integral_constraint_mocks(cosmo):
+@pytest.mark.parametrize("n_mesh, r1, r2, n_low", [
+    (48, 150.0, 450.0, 3), pytest.param(96, 300.0, 900.0, 4, marks=pytest.mark.slow)])
+def test_radial_integral_constraint_mocks(cosmo, n_mesh, r1, r2, n_low):
     """Mocks whose radial selection is estimated from each mock (every distance shell's
     angular mean removed, de Mattia & Ruhlmann-Kleider 2019; shells one cell thick) are fitted
-    by the curved model with ic = radial and not with ic = global. 60 mocks, 48³, full-sky
-    shell 150–450 Mpc/h, ℓ = 0, 2, 4 in the 3 lowest bins (k from 0.004 h/Mpc). Measured χ²/p:
-    radial 1.17, global 2.67 (p = 9)."""
+    by the curved model with ic = radial and not with ic = global (exact form). 60 mocks,
+    full-sky shell, ℓ = 0, 2, 4 in the lowest bins from k = 0.004 h/Mpc. Measured χ²/p:
+    48³, 150–450 Mpc/h, 3 bins: radial 1.17, global 2.67 (p = 9); slow, 96³, 300–900 Mpc/h,
+    4 bins: radial 1.03, global 2.54 (p = 12)."""
     edges = np.arange(1, 7) * 0.004
-    mesh, _, x = mock_set(cosmo, 48, 60, 150.0, 450.0, 1.0, edges, ic="radial")
-    rad = curved_model(cosmo, mesh, 150.0, 450.0, 1.0, edges, "radial").combine({})
-    glo = curved_model(cosmo, mesh, 150.0, 450.0, 1.0, edges, "global").combine({})
-    c, p = chi2_per_dof(x, rad, 3)
-    c_glo, _ = chi2_per_dof(x, glo, 3)
+    mesh, _, x = mock_set(cosmo, n_mesh, 60, r1, r2, 1.0, edges, ic="radial")
+    rad = curved_model(cosmo, mesh, r1, r2, 1.0, edges, "radial").combine({})
+    glo = curved_model(cosmo, mesh, r1, r2, 1.0, edges, "global").combine({})
+    c, p = chi2_per_dof(x, rad, n_low)
+    c_glo, _ = chi2_per_dof(x, glo, n_low)
     assert abs(c - 1.0) < band(p)
     assert c_glo - 1.0 > band(p)
 
@@ -332,18 +335,3 @@ def test_poisson_mocks_with_radial_constraint(cosmo):
     model = t.combine({}, noise=1.0) - mono / nbar
     c, p = chi2_per_dof(x, model, 3)
     assert abs(c - 1.0) < band(p)
-
-
-@pytest.mark.slow
-def test_radial_integral_constraint_mocks_large(cosmo):
-    """As above with 60 mocks on 96³, full-sky shell 300–900 Mpc/h, ℓ = 0, 2, 4 in the 4
-    lowest bins from k = 0.004 h/Mpc. Measured χ²/p: radial 1.03, global (exact form) 2.54
-    (p = 12)."""
-    edges = np.arange(1, 7) * 0.004
-    mesh, _, x = mock_set(cosmo, 96, 60, 300.0, 900.0, 1.0, edges, ic="radial")
-    rad = curved_model(cosmo, mesh, 300.0, 900.0, 1.0, edges, "radial").combine({})
-    glo = curved_model(cosmo, mesh, 300.0, 900.0, 1.0, edges, "global").combine({})
-    c, p = chi2_per_dof(x, rad, 4)
-    c_glo, _ = chi2_per_dof(x, glo, 4)
-    assert abs(c - 1.0) < band(p)
-    assert c_glo - 1.0 > band(p)
