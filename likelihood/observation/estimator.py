@@ -256,7 +256,7 @@ def _binned_multipole(Fl, F0, ell, bins, i2):
 def _data_vector(mesh, e, ells, bins, vals, i2, shot, subtract_mean, source):
     meta = {"estimator": "FFT local line of sight (end point)", "mesh_n": str(mesh.n),
             "box": f"{mesh.box:.8g}", "I2": f"{i2:.10e}", "shot_noise": f"{shot:.10e}",
-            "subtract_mean": str(bool(subtract_mean))}
+            "subtract_mean": "radial" if subtract_mean == "radial" else str(bool(subtract_mean))}
     return DataVector(ells, e, bins["k_eff"], bins["counts"], np.array(vals), meta=meta,
                       source=source)
 
@@ -333,7 +333,8 @@ def _estimator_field(mesh, field, w, nbar, subtract_mean, name):
     h3 = mesh.cell ** 3
     wsum = float(np.sum(w, dtype=float)) if w is not None else float(mesh.n ** 3)
     i2 = h3 * (float(np.sum(w.astype(float) ** 2)) if w is not None else mesh.n ** 3)
-    if not (isinstance(subtract_mean, bool) or subtract_mean == "radial"):
+    if not (isinstance(subtract_mean, str) and subtract_mean == "radial") \
+            and subtract_mean not in (True, False):
         raise ErgofitError(f"subtract_mean = {subtract_mean!r}: expected True (survey mean), "
                            "False (true mean 0) or 'radial' (each distance shell's mean)")
     if subtract_mean == "radial":

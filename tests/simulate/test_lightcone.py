@@ -22,7 +22,7 @@ from likelihood.curved.estimator import EstimatorResolution, Shell, multipole_te
 from likelihood.curved.mask import Cap, masked_templates
 from likelihood.errors import ConfigError, ErgofitError
 from likelihood.numerics.mesh import Mesh
-from likelihood.observation.estimator import measure_multipoles, window_weights
+from likelihood.observation.estimator import measure_multipoles, radial_shells, window_weights
 from likelihood.observation.matrix import KBins, WindowMatrix, theory_k_grid
 from likelihood.observation.window import CapShellWindow, ShellWindow
 from likelihood.simulate.fields import gaussian_field
@@ -335,3 +335,26 @@ def test_poisson_mocks_with_radial_constraint(cosmo):
     model = t.combine({}, noise=1.0) - mono / nbar
     c, p = chi2_per_dof(x, model, 3)
     assert abs(c - 1.0) < band(p)
+
+
+def test_radial_mean_removes_any_radial_field():
+    """By its definition (each distance shell's window-weighted mean removed; with counts,
+    α(r) = N_shell/(n̄H³Σ_shell W)), the radial mean subtraction leaves nothing of a field that
+    depends on the distance only (through the shells of one cell, radial_shells), as a field or
+    as (noise-free) counts; the survey mean
+    (subtract_mean=True) leaves most of it."""
+    mesh = Mesh(32, 2000.0)
+    win = ShellWindow(200.0, 450.0)
+    w = window_weights(mesh, win)
+    g = 0.3 * np.cos(1.3 * radial_shells(mesh))      # constant on each estimator shell
+    edges = [0.01, 0.02, 0.03]
+    kw = dict(window_mask=w, edges=edges, ells=(0, 2))
+    ref = measure_multipoles(mesh, g, subtract_mean=True, **kw)
+    rad = measure_multipoles(mesh, g, subtract_mean="radial", **kw)
+    assert np.max(np.abs(rad.values)) < 1e-12 * np.max(np.abs(ref.values))
+    assert rad.meta["subtract_mean"] == "radial"
+    nbar = 1e-3
+    counts = nbar * mesh.cell ** 3 * w * (1.0 + g)
+    rad_n = measure_multipoles(mesh, counts, subtract_mean="radial", nbar=nbar, **kw)
+    assert np.max(np.abs(rad_n.values[1])) < 1e-12 * np.max(np.abs(ref.values))
+    assert rad_n.values[0] == pytest.approx(-float(rad_n.meta["shot_noise"]), rel=1e-10)
