@@ -358,3 +358,55 @@ def test_radial_mean_removes_any_radial_field():
     rad_n = measure_multipoles(mesh, counts, subtract_mean="radial", nbar=nbar, **kw)
     assert np.max(np.abs(rad_n.values[1])) < 1e-12 * np.max(np.abs(ref.values))
     assert rad_n.values[0] == pytest.approx(-float(rad_n.meta["shot_noise"]), rel=1e-10)
+
+
+# --- two tracers: the cross spectrum's odd multipoles ---------------------------------------------
+
+def test_cross_spectrum_dipole_of_two_lightcone_tracers(cosmo):
+    """Two tracers of one field (A: b = 2.2(1 + z), b_e = 1, s = 0.3; B: b = 1, b_e = s = 0),
+    each through its own light-cone kernel, cross multipoles ℓ = 0–3 with the line of sight at
+    A's points (40 mocks, 48³, full-sky shell 150–450 Mpc/h, global integral constraint):
+    the curved model's cross templates (F_ℓ of A times F_0* of B, docs/curved_sky.md section 4;
+    exact in linear theory) match the mean in every ℓ, and in the dipole and octupole alone,
+    which the plane-parallel model (window matrix of likelihood.theory.tracer.cross_multipoles
+    at z_eff: only the Doppler dipole) does not. Lowest 3 bins from k = 0.006 h/Mpc. Measured
+    χ²/p: all ℓ 0.42 (p = 12); odd ℓ: curved 0.29, plane-parallel 55, zero 5.4 (p = 6)."""
+    r1, r2 = 150.0, 450.0
+    mesh = Mesh(48, 4.1 * r2, dtype="float32")
+    win = ShellWindow(r1, r2)
+    w = window_weights(mesh, win)
+    edges = np.arange(1, 7) * 0.006
+    ta = TracerCoefficients(lambda z: 2.2 * (1.0 + np.asarray(z, dtype=float)), 1.0, 0.3)
+    tb = TracerCoefficients(1.0)
+    ka = LightConeKernel.make(mesh, cosmo, ta, LOCAL, w)
+    kb = LightConeKernel.make(mesh, cosmo, tb, LOCAL, w)
+    pk0 = mesh.on_grid(lambda k: cosmo.power(k, 0.0))
+    ells = (0, 1, 2, 3)
+    x = []
+    for i in range(40):
+        dk = gaussian_field(mesh, pk0, i)
+        x.append(measure_multipoles(mesh, ka.field(mesh, dk), w, edges, ells,
+                                    cross=kb.field(mesh, dk)).values)
+    x = np.array(x)
+    cur = multipole_templates(cosmo, Shell(r1, r2), edges, ta, LOCAL, tracer_b=tb, terms_b=LOCAL,
+                              ells=ells, ic="global", combine_pieces=True,
+                              resolution=EstimatorResolution(q_ir=mesh.k_fundamental,
+                                                             q_range=1.5)).combine({})
+    z = z_of_r(cosmo, r_eff(r1, r2))
+    kt = theory_k_grid()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        pl = T.cross_multipoles(cosmo, z, kt, T.Tracer(b1=2.2 * (1 + z), b_e=1.0, s=0.3),
+                                T.Tracer(b1=1.0), effects=("rsd", "doppler", "potential"),
+                                ells=(0, 1, 2, 3, 4))
+        wm = WindowMatrix(kt, (0, 1, 2, 3, 4), KBins.from_edges(edges), ells, window=win,
+                          ic="global", cache=False)
+    pp = wm.convolve_direct(pl).reshape(len(ells), -1)
+    odd = [1, 3]
+    c_all, p_all = chi2_per_dof(x, cur, 3)
+    c_odd, p = chi2_per_dof(x[:, odd], cur[odd], 3)
+    c_pp, _ = chi2_per_dof(x[:, odd], pp[odd], 3)
+    c_0, _ = chi2_per_dof(x[:, odd], 0.0 * cur[odd], 3)
+    assert abs(c_all - 1.0) < band(p_all)
+    assert abs(c_odd - 1.0) < band(p)
+    assert c_pp - 1.0 > band(p) and c_0 - 1.0 > band(p)
