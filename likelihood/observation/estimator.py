@@ -256,7 +256,7 @@ def _binned_multipole(Fl, F0, ell, bins, i2):
 def _data_vector(mesh, e, ells, bins, vals, i2, shot, subtract_mean, source):
     meta = {"estimator": "FFT local line of sight (end point)", "mesh_n": str(mesh.n),
             "box": f"{mesh.box:.8g}", "I2": f"{i2:.10e}", "shot_noise": f"{shot:.10e}",
-            "subtract_mean": str(bool(subtract_mean))}
+            "subtract_mean": "radial" if subtract_mean == "radial" else str(bool(subtract_mean))}
     return DataVector(ells, e, bins["k_eff"], bins["counts"], np.array(vals), meta=meta,
                       source=source)
 
@@ -308,12 +308,48 @@ def measure_spectra(mesh, fields, spectra, edges, window_mask=None, nbar=None,
     return out
 
 
+def radial_shells(mesh):
+    """Index of the distance shell [jH, (j+1)H) of every node (H the cell size), for the
+    radial integral constraint of ``subtract_mean="radial"``."""
+    return np.floor(mesh.radius().astype(float) / mesh.cell).astype(np.int64)
+
+
+def _radial_mean(mesh, w, d):
+    """Per node, the W-weighted mean of d over its distance shell (:func:`radial_shells`): the
+    angular mean that a survey removes when it builds n(r) from the data (de Mattia &
+    Ruhlmann-Kleider 2019)."""
+    idx = radial_shells(mesh).ravel()
+    ww = np.ones(idx.size) if w is None else w.astype(float).ravel()
+    num = np.bincount(idx, weights=ww * d.astype(float).ravel())
+    den = np.bincount(idx, weights=ww)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        mean = np.where(den > 0, num / den, 0.0)
+    return mean[idx].reshape(d.shape).astype(mesh.real_dtype)
+
+
 def _estimator_field(mesh, field, w, nbar, subtract_mean, name):
     d = check_real_field(mesh, field, name)
     rdt = mesh.real_dtype
     h3 = mesh.cell ** 3
     wsum = float(np.sum(w, dtype=float)) if w is not None else float(mesh.n ** 3)
     i2 = h3 * (float(np.sum(w.astype(float) ** 2)) if w is not None else mesh.n ** 3)
+    if not (isinstance(subtract_mean, str) and subtract_mean == "radial") \
+            and subtract_mean not in (True, False):
+        raise ErgofitError(f"subtract_mean = {subtract_mean!r}: expected True (survey mean), "
+                           "False (true mean 0) or 'radial' (each distance shell's mean)")
+    if subtract_mean == "radial":
+        ww = w if w is not None else rdt.type(1.0)
+        if nbar is None:
+            return ww * (d - _radial_mean(mesh, w, d)), 0.0, i2
+        nb = finite_number(nbar, "nbar", ConfigError)
+        if nb <= 0 or np.any(d < 0):
+            raise ErgofitError(f"{name}: with nbar given the field must be galaxy counts (>= 0) "
+                               "and nbar > 0")
+        ntot = float(np.sum(d, dtype=float))
+        # α(r) W with α(r) = N(shell)/(n̄ H³ Σ_shell W): n(r) estimated from the data
+        dens = d * rdt.type(1.0 / (nb * h3))
+        F = dens - ww * _radial_mean(mesh, w, dens / np.where(ww > 0, ww, 1.0))
+        return F.astype(rdt, copy=False), ntot / (nb * nb * i2), i2
     if nbar is None:
         if w is None:
             mean = float(np.mean(d, dtype=float)) if subtract_mean else 0.0

@@ -76,40 +76,61 @@ def observed_field(mesh, delta_k, A, B=None, F=0.0):
     locally, i.e. wide-angle effects of the LOS are included, those of the kernel are not).
     """
     dk = check_fourier_field(mesh, delta_k)
-    rdt = mesh.real_dtype
     a = fourier_array(mesh, A, "A")
     f = finite_number(F, "F (the growth rate f)")
     b = None if B is None else fourier_array(mesh, B, "B")
     if np.iscomplexobj(a) or (b is not None and np.iscomplexobj(b)):
         raise ErgofitError("A(k) and B(k) must be real (the i of the Doppler term is explicit)")
+    out = los_power(mesh, dk, 0, a)
+    if f != 0.0:
+        los_power(mesh, dk, 2, f, out=out)
+    if b is not None:
+        los_power(mesh, dk, 1, b, out=out)
+    return out
+
+
+def los_power(mesh, delta_k, power, factor=1.0, out=None):
+    """Real-space field of (iμ)^power X(k) δ(k) for power 0 and 1, and of μ² X(k) δ(k) for
+    power 2, with μ = k̂·n̂ and the local line of sight n̂ = x/|x| (see :func:`observed_field`
+    for the operators and their FFT counts). ``factor`` X: a number or a real array on the rfft
+    layout (already checked). Added into ``out`` (a real mesh array) when given; returns it.
+    """
+    rdt = mesh.real_dtype
     inv_h3 = rdt.type(mesh.cell ** -3)
     s = (mesh.n,) * 3
 
     def irf(arr):
         return sfft.irfftn(arr, s=s, workers=-1, overwrite_x=True) * inv_h3
 
-    out = irf(dk * (a.astype(rdt) if np.ndim(a) else rdt.type(a)))
-    if f == 0.0 and b is None:
+    x = factor.astype(rdt) if np.ndim(factor) else rdt.type(factor)
+    if power == 0:
+        t = irf(delta_k * x)
+        if out is None:
+            return t
+        out += t
         return out
+    if power not in (1, 2):
+        raise ErgofitError(f"los_power: power = {power!r}; expected 0, 1 or 2")
+    if out is None:
+        out = np.zeros(s, dtype=rdt)
     kv = mesh.kvectors()
     k = mesh.kmag()
     with np.errstate(divide="ignore", invalid="ignore"):
         inv_k = np.where(k > 0, 1.0 / k, 0.0).astype(rdt)
     nhat = unit_vectors(mesh)
-    if f != 0.0:
-        fd = dk * (rdt.type(f) * inv_k * inv_k)
+    if power == 2:
+        fd = delta_k * (x * inv_k * inv_k)
         for i in range(3):
             for j in range(i, 3):
                 t = irf(fd * (kv[i] * kv[j]))
                 t *= nhat[i] * nhat[j] * rdt.type(1.0 if i == j else 2.0)
                 out += t
-        del fd
-    if b is not None:
-        bd = dk * ((b.astype(rdt) if np.ndim(b) else rdt.type(b)) * inv_k) * 1j
-        for i in range(3):
-            t = irf(bd * kv[i])
-            t *= nhat[i]
-            out += t
+        return out
+    bd = delta_k * (x * inv_k) * 1j
+    for i in range(3):
+        t = irf(bd * kv[i])
+        t *= nhat[i]
+        out += t
     return out
 
 

@@ -14,8 +14,9 @@ Regime of validity
 * The box is periodic: the mock has no power below the fundamental k_f = 2π/L and points
   separated by more than L/2 see periodic images. Use a box at least twice the survey diameter
   (a warning says so) when comparing with a theory that assumes an infinite volume.
-* One redshift: the whole mock is a snapshot at the effective z (growth, bias, f and the
-  projection coefficients γ1, γ2 do not evolve across the survey; no light cone).
+* One redshift: the mocks of a tracer kernel are a snapshot at the effective z (growth, bias, f
+  and the projection coefficients γ1, γ2 do not evolve across the survey). Light-cone mocks
+  (coefficients at each cell's distance): :mod:`likelihood.simulate.lightcone`.
 * Poisson sampling is done per mesh cell: mock galaxies are cell-resolved. Cells with
   1 + aΔ < 0 are clipped to 0, after the gain a of :func:`likelihood.simulate.fields.clip_gain`
   that keeps the large-scale power of the clipped field equal to the Gaussian one to first order
@@ -61,7 +62,7 @@ def _mesh_kernel(mesh, A, B, label):
 
 def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10, seed=0,
                    nbar=None, constraint=None, subtract_mean=True, k_cut=None, progress=None,
-                   subtract_shot_noise=True):
+                   subtract_shot_noise=True, observe=None):
     """Draw ``n_mocks`` Gaussian mocks, observe them and measure their multipoles.
 
     Per mock i (random streams spawned from ``seed``, so mock i depends only on (seed, i)):
@@ -76,6 +77,9 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
     with Poisson sampling, where the full linear power up to the Nyquist frequency can drive
     1 + Δ < 0 in many cells; keep k_cut well above the last bin (the window mixes modes over a
     few k_f, so the measured bins near k_cut then lack the leakage from k > k_cut).
+    ``subtract_mean``: as :func:`measure_multipoles` (True, False or "radial").
+    ``observe`` (optional): a callable δ_k → Δ_g(x) on the mesh used instead of the kernel
+    (A, B, F), e.g. the light cone of :mod:`likelihood.simulate.lightcone`.
     Returns (list of DataVector, MockCovariance); the covariance is the unbiased sample covariance
     of the flat (ℓ-major) vectors.
     """
@@ -85,7 +89,9 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
     w = window_weights(mesh, window, "window")
     extent_warning(mesh, w)
     p = _mesh_power(mesh, pk, k_cut, e)
-    a, bk = _mesh_kernel(mesh, A, B, "")
+    if observe is None:
+        a, bk = _mesh_kernel(mesh, A, B, "")
+        observe = lambda dk: observed_field(mesh, dk, a, bk, F)  # noqa: E731
     tpl = _constraint_template(mesh, constraint, p)
     c_value = None if tpl is None else constraint.nu * math.sqrt(tpl.sigma2)
     mocks = []
@@ -95,7 +101,7 @@ def simulate_mocks(mesh, pk, A, B, F, window, edges, ells=(0, 2, 4), n_mocks=10,
         dk = gaussian_field(mesh, p, s_field)
         if constraint is not None:
             dk, _, _ = constrain_at_origin(mesh, dk, None, c_value, p, template=tpl, inplace=True)
-        gal = observed_field(mesh, dk, a, bk, F)
+        gal = observe(dk)
         del dk
         if nbar is not None:
             gal, frac, gain = poisson_counts(mesh, gal, nbar, w, s_poisson, gaussian_gain=True)
@@ -344,7 +350,7 @@ def simulate_tracers(cosmo, z, tracers, effects, mesh, spectra, edges, n_mocks, 
 
 def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells, n_mocks, seed,
                            nbar=None, observer=None, out_dir=None, k_cut=None, progress=None,
-                           subtract_shot_noise=True):
+                           subtract_shot_noise=True, lightcone=None):
     """Mocks of a configured survey: one data-vector file per mock plus ``covariance.txt``.
 
     ``cosmo`` (``likelihood.theory.cosmology.Cosmology``) gives P(k, z); ``likelihood.theory.tracer.kernel(cosmo,
@@ -353,7 +359,9 @@ def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells,
     mapping like the config's ``observer`` section {"field": "potential"|"density", "nu_true": ν,
     "smoothing": R, "k_ir": k}; ``nbar``: Poisson-sample the tracer with this n̄ (None: the
     continuous field, no shot noise); ``k_cut``, ``subtract_shot_noise``: see
-    :func:`simulate_mocks`; ``progress(i, n)``: an optional callback after each mock.
+    :func:`simulate_mocks`; ``progress(i, n)``: an optional callback after each mock;
+    ``lightcone``: a :class:`likelihood.simulate.lightcone.LightConeSpec` (a curved-sky run):
+    the density today through the light-cone kernel instead of ``tracer`` at ``z``.
     Files in ``out_dir`` (created): ``mock_0000.txt``, ... (the documented data-vector text format
     of ``likelihood.data``) and ``covariance.txt`` (``likelihood.data`` covariance format: header
     ``# ergofit covariance``, ``# ells:``, ``# n_bins:``, then the matrix in the ℓ-major order).
@@ -363,18 +371,21 @@ def simulate_from_settings(cosmo, z, tracer, effects, mesh, window, edges, ells,
     constraint = _observer_from_settings(observer)
     ells = multipole_list(ells, "ells", max_ell=MAX_ELL)
     e = check_edges(mesh, edges)
-    pk = mesh.on_grid(lambda k: cosmo.power(k, zf), "cosmology power").astype(mesh.real_dtype)
-    a, b, fval = _tracer_on_mesh(cosmo, zf, tracer, effects, mesh)
+    if lightcone is None:
+        pk = mesh.on_grid(lambda k: cosmo.power(k, zf), "cosmology power").astype(mesh.real_dtype)
+        a, b, fval = _tracer_on_mesh(cosmo, zf, tracer, effects, mesh)
     if out_dir is not None:
         out_dir = os.fspath(out_dir)
         try:
             os.makedirs(out_dir, exist_ok=True)
         except OSError as exc:
             raise ErgofitError(f"out_dir = {out_dir}: cannot create the folder ({exc})") from None
-    mocks, cov = simulate_mocks(mesh, pk, a, b, fval, window, e, ells,
-                                n_mocks, seed, nbar=nbar, constraint=constraint,
-                                k_cut=k_cut, progress=progress,
-                                subtract_shot_noise=subtract_shot_noise)
+    run = dict(nbar=nbar, constraint=constraint, k_cut=k_cut, progress=progress,
+               subtract_shot_noise=subtract_shot_noise)
+    if lightcone is not None:
+        mocks, cov = lightcone.mocks(mesh, window, e, ells, n_mocks, seed, **run)
+    else:
+        mocks, cov = simulate_mocks(mesh, pk, a, b, fval, window, e, ells, n_mocks, seed, **run)
     for m in mocks:
         m.meta["z"] = f"{zf:.6g}"
     if out_dir is not None:

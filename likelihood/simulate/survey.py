@@ -18,6 +18,11 @@ FFT estimator (:mod:`likelihood.observation.estimator`) on the data's k bins and
 compares their mean with the model they were made from (:func:`validation_model`), using the
 mocks' own scatter, and writes ``validation.png`` and ``validation.json``.
 
+A curved-sky config (``engine.kind: curved_sky``) gets light-cone mocks
+(:mod:`likelihood.simulate.lightcone`; snapshot mocks with ``engine.snapshot: true``) with the mean
+subtraction of its integral constraint; its validation model leaves out the integrated terms,
+which the mocks do not have.
+
 Several tracers (a config with ``tracers``, one sample): all populations from one Gaussian field,
 each Poisson sampled independently (:func:`simulate_several_tracers`), measured into the spectra
 of the config's data vector on one set of k bins and written as labelled spectra files; the
@@ -41,12 +46,13 @@ import numpy as np
 
 from ..theory import tracer as tr
 from ..config.schema import Config, load_config, validate as validate_config
-from ..config.engine import is_curved
-from ..errors import ConfigError, ErgofitError
+from ..config.engine import INTEGRATED_EFFECTS, is_curved
+from ..errors import ErgofitError
 from ..io import write_text
 from ..model import build
 from ..model.fiducial import make_tracer
 from ..numerics.mesh import Mesh
+from ..simulate.lightcone import LightConeSpec
 from ..simulate.mocks import simulate_from_settings
 from ..simulate.validation import validate
 from ..data import DataVector, save_covariance
@@ -88,6 +94,8 @@ def mock_model_raw(cfg, poisson, k_ir=None):
         raw.setdefault("observer", {})["k_ir"] = float(k_ir)
     if cfg["covariance"]["kind"] == "mocks":
         raw["covariance"] = {"kind": "gaussian"}
+    if is_curved(cfg):      # the light-cone mocks have the local terms only
+        raw.setdefault("effects", {}).update({t: False for t in INTEGRATED_EFFECTS})
     return raw
 
 
@@ -170,11 +178,8 @@ def simulate_one_tracer(config, n, out=None, mesh_n=None, check=False, echo=prin
     cfg = config if isinstance(config, Config) else load_config(config)
     if n < 2:
         raise ErgofitError(f"--n {n}: need at least 2 mocks for a covariance")
-    if check and is_curved(cfg) and not cfg["engine"]["snapshot"]:
-        raise ConfigError(f"{cfg.path}: --validate: the mocks are snapshots (coefficients at "
-                          "survey.redshift, local terms only), not light cones; set "
-                          "engine.snapshot: true to compare them with the curved-sky model")
     lik = build(cfg)
+    lightcone = LightConeSpec.of_likelihood(lik) if is_curved(cfg) else None
     mesh = choose_mesh(lik, mesh_n)
     out = out or os.path.join(cfg.output_folder, "mocks")
     fid = lik.fiducial
@@ -191,6 +196,8 @@ def simulate_one_tracer(config, n, out=None, mesh_n=None, check=False, echo=prin
                   "no shot noise (continuous field, --no-poisson)")
     echo(f"simulate: {n} mocks on a {mesh.n}^3 mesh, box {mesh.box:.0f} Mpc/h "
          f"(k_Nyquist = {mesh.k_nyquist:.3g} h/Mpc), {noise_text}, writing into {out}/")
+    if lightcone is not None:
+        echo(f"  curved sky: {lightcone.describe()}; no integrated terms in the mocks")
     if n <= n_data + 2:
         echo(f"  note: {n} mocks for {n_data} data points; covariance.kind: mocks needs more than "
              f"n_data + 2 (Hartlap et al. 2007): --n {n_data + 3} or more")
@@ -205,7 +212,7 @@ def simulate_one_tracer(config, n, out=None, mesh_n=None, check=False, echo=prin
                                            cfg["data"].get("mock", {}).get("seed", 0),
                                            nbar=lik.nbar if poisson else None,
                                            observer=observer, out_dir=out, progress=progress,
-                                           subtract_shot_noise=sub)
+                                           subtract_shot_noise=sub, lightcone=lightcone)
     echo(f"wrote {len(mocks)} data vectors (mock_0000.txt ...) and covariance.txt into {out}/")
     if not check:
         return None
