@@ -401,7 +401,7 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
     binned = {p: ns.bin(vals) for p, vals in acc.items()}
     names = {(ns.names_a[a], ns.names_b[b]): binned[a, b] for a, b in pairs}
     noise = None
-    if ns.auto and shell.nbar is not None:
+    if shell.nbar is not None:       # a cross spectrum: the objects the two populations share
         noise = _noise(ns, mask, ells, ic, i2, v, lfac, W, j_max)
     meta = dict(j_max=j_max, n_q=ns.q.size, n_r=nr, n_k=ns.k.size, q_max=float(ns.q[-1]),
                 ic=ic, snapshot_z=snapshot_z, k_band=k_band, l_top=l_top,
@@ -439,7 +439,7 @@ def masked_multipoles(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "
                       resolution=EstimatorResolution(), tolerance=MASK_TOLERANCE,
                       snapshot_z=None):
     """Direct computation (each tracer's pieces summed into one kernel first): (n_ell, n_bins)
-    signal plus the shot noise if ``shell.nbar`` is given (auto spectra). See
+    signal plus the shot noise if ``shell.nbar`` is given (a cross spectrum: of its shared objects, likelihood.curved.estimator.multipole_templates). See
     :func:`masked_templates`."""
     t = masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a, tracer_b, terms_b, ells,
                          ic, resolution, tolerance, combine_pieces=True, snapshot_z=snapshot_z)

@@ -8,12 +8,12 @@ The number-count kernel of the engine (docs/curved_sky.md, section 2) is, at fix
 linear in a short vector of amplitudes x_a with parameter-free basis kernels W_a:
 
     W = W_1 + b1 W_b1 + v W_v + b_e W_be + s W_s,               (bias_evolution: constant)
-    W = W_1 + b1 W_b1 + (f_NL b1) W_fb + f_NL W_f + b_e W_be + s W_s   (inverse_growth)
+    W = W_1 + b1 W_b1 + (f_NL b1) W_fb + (f_NL p) W_fp + b_e W_be + s W_s   (inverse_growth)
 
 with W_1 the rsd, doppler, potential and integrated pieces at the held b_e, s (0 for a sampled
 one), W_b1 the density of unit bias b(z) = g(z) (g = 1, or D(z_eff)/D(z)), v = f_NL (b1 − p)
 and W_v the f_NL piece of unit amplitude; with an evolving bias f_NL (b1 g(z) − p) needs the
-two amplitudes f_NL b1 and f_NL. W_be = W(b_e = 1) − W(b_e = 0) over the doppler, potential and
+two amplitudes f_NL b1 and f_NL p (W_fp the f_NL piece of b = 0, p = 1). W_be = W(b_e = 1) − W(b_e = 0) over the doppler, potential and
 ISW pieces and W_s = W(s = 1) − W(s = 0) over those and lensing and time delay: all are affine in
 b_e and 𝒬 = 5s/2 with no product b_e 𝒬 (docs/projection.md eq. 6.2), so the differences are
 exact. The expected estimator is then Σ_{a≤b} x_a x_b T_ab + A_sn N − s_sub e₀/n̄ with T_ab the
@@ -58,7 +58,7 @@ from .fiducial import COSMO_PARAMS, fiducial_values, held_values, make_tracer
 from .likelihood import Likelihood
 
 #: bump when the engine's numbers change, so old cache entries are not reused
-CACHE_VERSION = "curved-templates-1"
+CACHE_VERSION = "curved-templates-2"
 #: pieces of the engine that depend on b_e, on s (through 𝒬), in engine order
 _BE_TERMS = ("doppler", "potential", "isw")
 _S_TERMS = ("doppler", "potential", "isw", "lensing", "time_delay")
@@ -159,12 +159,184 @@ def _z_of(cosmo, r):
     return brentq(lambda z: float(cosmo.comoving_distance(z)) - r, 0.0, 1100.0, xtol=1e-10)
 
 
+def tracer_table(cfg, cosmo, path):
+    """The :class:`TracerTable` at ``path`` (relative to the config), checked to cover the
+    survey's shell."""
+    geo = cfg["survey"]["geometry"]
+    z_lo, z_hi = (float(_z_of(cosmo, r)) for r in (geo["r_min"], geo["r_max"]))
+    return TracerTable(cfg.resolve(path), z_lo, z_hi)
+
+
+class TracerBasis:
+    """One tracer's basis kernels on the curved sky and their amplitudes (module docstring).
+
+    ``terms``: the engine's kernel pieces switched on; ``evolution``: constant, inverse_growth or
+    table (then ``table`` a :class:`TracerTable`); ``z``: the effective redshift at which b1,
+    b_e, s are quoted; ``held``: {"b_e", "s"} values when not sampled; ``lin_free``: the sampled
+    ones among b_e, s. The f_NL pieces: constant bias, one kernel of unit f_NL (b1 − p),
+    amplitude v = f_NL (b1 − p); evolving bias f_NL (b1 g(z) − p) = f_NL b1 g(z) − f_NL p, two
+    kernels (b = g, p = 0) and (b = 0, p = 1) with amplitudes f_NL b1 and f_NL p, so p enters
+    only the amplitudes (it may be sampled)."""
+
+    def __init__(self, terms, evolution, table, z, held, lin_free):
+        self.terms, self.evolution, self.table, self.z = tuple(terms), evolution, table, z
+        self.held = {k: float(held[k]) for k in ("b_e", "s")}
+        self.lin_free = list(lin_free)
+        self.names = [name for name, _ in self.spec(None)]
+
+    def spec(self, g):
+        """[(name, ((weight, TracerCoefficients, terms), ...))] of the basis kernels; ``g`` the
+        bias shape (None: constant, or a placeholder when only the names are wanted). Kernels
+        with no piece switched on are left out."""
+        on = set(self.terms)
+        unit = 1.0 if g is None else g
+        be0 = self.held_shape("b_e", 0.0 if "b_e" in self.lin_free else self.held["b_e"])
+        s0 = self.held_shape("s", 0.0 if "s" in self.lin_free else self.held["s"])
+        t1 = tuple(t for t in self.terms if t not in ("density", "fnl"))
+        spec = [("1", ((1.0, TracerCoefficients(0.0, be0, s0), t1),)),
+                ("b1", ((1.0, TracerCoefficients(unit), ("density",)),))]
+        if "fnl" in on:
+            if self.evolution == "constant":
+                spec.append(("v", ((1.0, TracerCoefficients(1.0, fnl=1.0, p=0.0), ("fnl",)),)))
+            else:
+                spec.append(("fnl_b1", ((1.0, TracerCoefficients(unit, fnl=1.0, p=0.0),
+                                         ("fnl",)),)))
+                spec.append(("fnl_p", ((1.0, TracerCoefficients(0.0, fnl=1.0, p=1.0),
+                                        ("fnl",)),)))
+        for name, terms, one in (("b_e", _BE_TERMS, dict(b_e=1.0)), ("s", _S_TERMS, dict(s=1.0))):
+            terms = tuple(t for t in terms if t in on)
+            if name in self.lin_free:
+                spec.append((name, ((1.0, TracerCoefficients(0.0, **one), terms),
+                                    (-1.0, TracerCoefficients(0.0), terms))))
+        return [(n, parts) for n, parts in spec if all(p[2] for p in parts)]
+
+    def held_shape(self, name, value):
+        """b_e or s of the kernel: the number, or value + the table's shape (a callable of z)."""
+        if self.table is None:
+            return value
+        shape = self.table.shape(name, self.z)
+        return lambda z: value + shape(z)
+
+    def amplitudes(self, values):
+        """The amplitudes x of the basis kernels, in the order of ``names``, for parameter values
+        (floats or arrays) keyed b1, fnl, p, b_e, s."""
+        b1, p = values["b1"], values["p"]
+        fnl = values.get("fnl", 0.0)
+        col = {"1": 1.0, "b1": b1, "v": fnl * (b1 - p), "fnl_b1": fnl * b1, "fnl_p": fnl * p}
+        return [values[n] if n in ("b_e", "s") else col[n] for n in self.names]
+
+    def basis(self, cosmo):
+        """The BasisKernels at ``cosmo``."""
+        g = bias_shape(self.evolution, cosmo, self.z, self.table)
+        return [BasisKernel(n, parts) for n, parts in self.spec(g)]
+
+    def coefficients(self, cosmo, t, fnl_on=True):
+        """The engine's TracerCoefficients of a :class:`~likelihood.theory.tracer.Tracer`."""
+        g = bias_shape(self.evolution, cosmo, self.z, self.table)
+        b = t.b1 if g is None else (lambda z: t.b1 * g(z))
+        return TracerCoefficients(b, self.held_shape("b_e", t.b_e), self.held_shape("s", t.s),
+                                  t.fnl if fnl_on else 0.0, t.p)
+
+    def fingerprint(self):
+        """What defines the basis in a cache key."""
+        return dict(names=self.names, lin_free=self.lin_free, held=self.held, z=self.z,
+                    evolution=self.evolution,
+                    table=None if self.table is None else self.table.data.tolist())
+
+
+def cosmology_fingerprint(cosmo):
+    """The cosmology in a cache key: its parameters and probes of its background and power, so
+    a changed table or code changes the key."""
+    zp, qp = np.array([0.3, 1.0, 3.0]), np.array([1e-3, 1e-2, 0.1])
+    return dict(cosmo=repr(cosmo), probes=[float(v) for v in np.concatenate([
+        cosmo.comoving_distance(zp), cosmo.growth_factor(zp, norm="today"),
+        cosmo.growth_rate(zp), cosmo.power(qp, 0.0)])])
+
+
+def template_key(spec):
+    """sha256 of a JSON-able dict of everything that defines a set of templates."""
+    return hashlib.sha256(json.dumps(dict(spec, version=CACHE_VERSION), sort_keys=True,
+                                     default=str).encode()).hexdigest()
+
+
+def cached_templates(cache_dir, spec, compute):
+    """Templates from the disk cache entry of ``spec`` (:func:`template_key`), or ``compute()``
+    written there (a warning if the cache is not writable)."""
+    key = template_key(spec)
+    folder = cache_folder(cache_dir)
+    path = os.path.join(folder, f"curved-templates-{key[:24]}.npz")
+    cached = _read_templates(path, key)
+    if cached is not None:
+        return cached
+    t = compute()
+    try:
+        os.makedirs(os.path.dirname(path), exist_ok=True)
+        _write_templates(path, key, t)
+    except OSError as exc:
+        warnings.warn(f"curved-sky template cache {os.path.dirname(path)}: not "
+                      f"writable ({exc}); continuing without cache", stacklevel=3)
+    return t
+
+
 class CurvedOperator:
     """What the likelihood and the reports read from an observation operator: the data bins
     and the integral constraint the engine applies (exact forms: docs/curved_sky.md)."""
 
     def __init__(self, bins, ic):
         self.bins, self.ic = bins, ic
+
+
+class CurvedSky:
+    """The curved-sky engine as a run sets it up: shell, angular mask, integral constraint,
+    kernel pieces, snapshot mode and resolution from the config; :meth:`templates` runs the
+    engine (full sky or masked) and re-issues its ResolutionWarnings naming the config key."""
+
+    def __init__(self, cfg, nbar=None):
+        eng, geo = cfg["engine"], cfg["survey"]["geometry"]
+        self.ic = cfg["effects"]["integral_constraint"]
+        self.terms = engine_terms(cfg)
+        self.snapshot_z = cfg["survey"]["redshift"] if eng["snapshot"] else None
+        self.resolution = EstimatorResolution(**eng["resolution"])
+        self.shell = Shell(geo["r_min"], geo["r_max"], nbar=nbar)
+        self.sky = sky_mask(cfg)
+        self.mask_tolerance = eng.get("mask_tolerance", MASK_TOLERANCE)
+
+    def fingerprint(self):
+        """What defines the engine's set-up in a cache key."""
+        return dict(shell=[self.shell.r_min, self.shell.r_max], ic=self.ic, terms=self.terms,
+                    snapshot=self.snapshot_z, resolution=repr(self.resolution),
+                    sky=sky_fingerprint(self.sky),
+                    mask_tolerance=None if self.sky is None else self.mask_tolerance)
+
+    def run(self, cosmo, edges, ells, tracer, terms, combine=False, snapshot_z=None,
+            tracer_b=None, nbar=None):
+        """The engine's Templates: the full-sky estimator (likelihood.curved.estimator.
+        multipole_templates) or, with an angular mask, the masked one (likelihood.curved.mask.
+        masked_templates, band-limit tolerance ``engine.mask_tolerance``). ``tracer_b``: the
+        second tracer of a cross spectrum; ``nbar``: the n̄ of its shot-noise template (an auto
+        spectrum's n̄, or n̄_X n̄_Y/n̄_XY of overlapping populations; None: no noise)."""
+        shell = replace(self.shell, nbar=nbar)
+        run = dict(tracer_b=tracer_b, ells=tuple(ells), ic=self.ic, resolution=self.resolution,
+                   combine_pieces=combine, snapshot_z=snapshot_z)
+        if self.sky is None:
+            return multipole_templates(cosmo, shell, edges, tracer, terms, **run)
+        return masked_templates(cosmo, shell, self.sky, edges, tracer, terms,
+                                tolerance=self.mask_tolerance, **run)
+
+    def templates(self, cosmo, edges, ells, tracer, combine, tracer_b=None, nbar=None):
+        """:meth:`run` with this run's terms and snapshot setting; its ResolutionWarnings are
+        re-issued naming the config key."""
+        with warnings.catch_warnings(record=True) as rec:
+            warnings.simplefilter("always", ResolutionWarning)
+            t = self.run(cosmo, edges, ells, tracer, self.terms, combine, self.snapshot_z,
+                         tracer_b=tracer_b, nbar=nbar)
+        for w in rec:
+            msg = str(w.message)
+            if issubclass(w.category, ResolutionWarning):
+                msg += (" (config: survey.geometry.mask)" if "raise lmax" in msg
+                        else " (config: engine.resolution)")
+            warnings.warn(msg, w.category, stacklevel=3)
+        return t
 
 
 class CurvedForwardModel:
@@ -178,21 +350,18 @@ class CurvedForwardModel:
     def __init__(self, cfg, srv, dv, mask, held, lin_free, cosmology, cosmo_keys, cosmo_free,
                  shot_noise_subtracted, cache_dir=None, observer=None):
         eng = cfg["engine"]
-        geo = cfg["survey"]["geometry"]
         self.survey = srv
         self.z, self.nbar, self.p, self.effects = srv.z, srv.nbar, srv.p, srv.effects
-        self.ic = cfg["effects"]["integral_constraint"]
-        self.terms = engine_terms(cfg)
-        self.snapshot_z = srv.z if eng["snapshot"] else None
+        self.engine = CurvedSky(cfg, srv.nbar)
+        self.ic, self.terms, self.snapshot_z = self.engine.ic, self.engine.terms, \
+            self.engine.snapshot_z
+        self.resolution, self.shell, self.sky = (self.engine.resolution, self.engine.shell,
+                                                 self.engine.sky)
+        self.mask_tolerance = self.engine.mask_tolerance
         self.evolution = eng["bias_evolution"]
         self.table = None
         if "tracer_table" in eng:
-            z_lo, z_hi = (float(_z_of(cosmology({}), r)) for r in (geo["r_min"], geo["r_max"]))
-            self.table = TracerTable(cfg.resolve(eng["tracer_table"]), z_lo, z_hi)
-        self.resolution = EstimatorResolution(**eng["resolution"])
-        self.shell = Shell(geo["r_min"], geo["r_max"], nbar=srv.nbar)
-        self.sky = sky_mask(cfg)
-        self.mask_tolerance = eng.get("mask_tolerance", MASK_TOLERANCE)
+            self.table = tracer_table(cfg, cosmology({}), eng["tracer_table"])
         self.edges, self.ells, self.n_bins = dv.edges, tuple(dv.ells), dv.edges.size - 1
         self.operator = CurvedOperator(KBins(dv.edges, dv.k_eff, dv.n_modes), self.ic)
         self.observer = observer
@@ -200,134 +369,57 @@ class CurvedForwardModel:
         self.mask = mask
         self.held = held
         self.lin_free = list(lin_free)
+        self.tb = TracerBasis(self.terms, self.evolution, self.table, self.z, held, lin_free)
         self.cosmology = cosmology
         self.cosmo_keys = list(cosmo_keys)
         self.disk_cache = not cosmo_free          # only the build cosmology is worth a file
         self.cache_dir = cache_dir
         self.sn_sub = 1.0 if shot_noise_subtracted else 0.0
         self.monopole = np.repeat(np.array([l == 0 for l in self.ells], float), self.n_bins)
-        self.names = [name for name, _ in self._basis_spec(None)]
 
-    # --- basis ----------------------------------------------------------------------------------
-    def _basis_spec(self, g):
-        """[(name, ((weight, TracerCoefficients, terms), ...))] of the basis kernels; ``g`` the
-        bias shape (None: constant, or a placeholder when only the names are wanted). Kernels
-        with no piece switched on are left out."""
-        on = set(self.terms)
-        unit = 1.0 if g is None else g
-        be0 = self._held_shape("b_e", 0.0 if "b_e" in self.lin_free else self.held["b_e"])
-        s0 = self._held_shape("s", 0.0 if "s" in self.lin_free else self.held["s"])
-        t1 = tuple(t for t in self.terms if t not in ("density", "fnl"))
-        spec = [("1", ((1.0, TracerCoefficients(0.0, be0, s0), t1),)),
-                ("b1", ((1.0, TracerCoefficients(unit), ("density",)),))]
-        if "fnl" in on:
-            if self.evolution == "constant":
-                spec.append(("v", ((1.0, TracerCoefficients(1.0, fnl=1.0, p=0.0), ("fnl",)),)))
-            else:
-                spec.append(("fnl_b1", ((1.0, TracerCoefficients(unit, fnl=1.0, p=0.0),
-                                         ("fnl",)),)))
-                spec.append(("fnl", ((1.0, TracerCoefficients(0.0, fnl=1.0, p=self.p),
-                                      ("fnl",)),)))
-        for name, terms, one in (("b_e", _BE_TERMS, dict(b_e=1.0)), ("s", _S_TERMS, dict(s=1.0))):
-            terms = tuple(t for t in terms if t in on)
-            if name in self.lin_free:
-                spec.append((name, ((1.0, TracerCoefficients(0.0, **one), terms),
-                                    (-1.0, TracerCoefficients(0.0), terms))))
-        return [(n, parts) for n, parts in spec if all(p[2] for p in parts)]
-
-    def _held_shape(self, name, value):
-        """b_e or s of the kernel: the number, or value + the table's shape (a callable of z)."""
-        if self.table is None:
-            return value
-        shape = self.table.shape(name, self.z)
-        return lambda z: value + shape(z)
+    # --- basis (one tracer: TracerBasis) -------------------------------------------------------
+    @property
+    def names(self):
+        return self.tb.names
 
     def amplitudes(self, values):
         """The amplitudes x of the basis kernels (module docstring), in the order of
         ``names``, for parameter values (floats or arrays)."""
-        b1 = values["b1"]
-        fnl = values.get("fnl", 0.0)
-        col = {"1": 1.0, "b1": b1, "v": fnl * (b1 - self.p), "fnl_b1": fnl * b1, "fnl": fnl}
-        return [values[n] if n in ("b_e", "s") else col[n] for n in self.names]
+        return self.tb.amplitudes(dict(values, p=self.p))
 
     def coefficients(self, values):
         """(n, n_basis) amplitudes x of the basis kernels for the parameter values."""
-        cols = self.amplitudes(values)
-        n = max(np.size(c) for c in cols)
-        x = np.empty((n, len(cols)))
-        for j, c in enumerate(cols):
-            x[:, j] = c
-        return x
-
-    # --- templates ------------------------------------------------------------------------------
-    def engine_templates(self, cosmo, tracer, terms, combine=False, snapshot_z=None):
-        """The engine's Templates for this run's window: the full-sky estimator
-        (likelihood.curved.estimator.multipole_templates) or, with an angular mask, the masked
-        one (likelihood.curved.mask.masked_templates, band-limit tolerance
-        ``engine.mask_tolerance``)."""
-        run = dict(ells=self.ells, ic=self.ic, resolution=self.resolution,
-                   combine_pieces=combine, snapshot_z=snapshot_z)
-        if self.sky is None:
-            return multipole_templates(cosmo, self.shell, self.edges, tracer, terms, **run)
-        return masked_templates(cosmo, self.shell, self.sky, self.edges, tracer, terms,
-                                tolerance=self.mask_tolerance, **run)
-
-    def _engine(self, cosmo, tracer, combine):
-        """One engine run; its ResolutionWarnings are re-issued naming the config key."""
-        with warnings.catch_warnings(record=True) as rec:
-            warnings.simplefilter("always", ResolutionWarning)
-            t = self.engine_templates(cosmo, tracer, self.terms, combine, self.snapshot_z)
-        for w in rec:
-            msg = str(w.message)
-            if issubclass(w.category, ResolutionWarning):
-                msg += (" (config: survey.geometry.mask)" if "raise lmax" in msg
-                        else " (config: engine.resolution)")
-            warnings.warn(msg, w.category, stacklevel=3)
-        return t
-
-    def cache_key(self, cosmo):
-        """sha256 of everything the pair templates depend on (cosmology by its parameters and
-        probes of its background and power, so a changed table or code changes the key)."""
-        zp, qp = np.array([0.3, 1.0, 3.0]), np.array([1e-3, 1e-2, 0.1])
-        spec = dict(version=CACHE_VERSION, cosmo=repr(cosmo),
-                    probes=[float(v) for v in np.concatenate([
-                        cosmo.comoving_distance(zp), cosmo.growth_factor(zp, norm="today"),
-                        cosmo.growth_rate(zp), cosmo.power(qp, 0.0)])],
-                    shell=[self.shell.r_min, self.shell.r_max, self.nbar],
-                    edges=[float(e) for e in self.edges], ells=self.ells, ic=self.ic,
-                    terms=self.terms, names=self.names, lin_free=self.lin_free,
-                    held=[self.held["b_e"], self.held["s"]], p=self.p, z=self.z,
-                    evolution=self.evolution, snapshot=self.snapshot_z,
-                    table=None if self.table is None else self.table.data.tolist(),
-                    resolution=repr(self.resolution), sky=sky_fingerprint(self.sky),
-                    mask_tolerance=None if self.sky is None else self.mask_tolerance)
-        return hashlib.sha256(json.dumps(spec, sort_keys=True).encode()).hexdigest()
+        return amplitude_matrix(self.amplitudes(values))
 
     def basis(self, cosmo):
         """The BasisKernels of the fast path at ``cosmo`` (module docstring)."""
-        g = bias_shape(self.evolution, cosmo, self.z, self.table)
-        return [BasisKernel(n, parts) for n, parts in self._basis_spec(g)]
+        return self.tb.basis(cosmo)
+
+    # --- templates ------------------------------------------------------------------------------
+    def engine_templates(self, cosmo, tracer, terms, combine=False, snapshot_z=None):
+        """The engine's Templates for this run's window and data bins (:meth:`CurvedSky.run`)."""
+        return self.engine.run(cosmo, self.edges, self.ells, tracer, terms, combine, snapshot_z,
+                               nbar=self.nbar)
+
+    def cache_spec(self, cosmo):
+        """Everything the pair templates depend on (the disk cache's key)."""
+        return dict(cosmology_fingerprint(cosmo), engine=self.engine.fingerprint(),
+                    basis=self.tb.fingerprint(), nbar=self.nbar, p=self.p,
+                    edges=[float(e) for e in self.edges], ells=self.ells)
+
+    def cache_key(self, cosmo):
+        """The disk cache's key of the pair templates at ``cosmo``."""
+        return template_key(self.cache_spec(cosmo))
 
     def pair_templates(self, cosmo):
         """The engine's :class:`~likelihood.curved.estimator.Templates` of the basis at
         ``cosmo`` (from the disk cache when this is the build cosmology)."""
-        path = None
-        if self.disk_cache:
-            key = self.cache_key(cosmo)
-            folder = cache_folder(self.cache_dir)
-            path = os.path.join(folder, f"curved-templates-{key[:24]}.npz")
-            cached = _read_templates(path, key)
-            if cached is not None:
-                return cached
-        t = self._engine(cosmo, self.basis(cosmo), combine=False)
-        if path is not None:
-            try:
-                os.makedirs(os.path.dirname(path), exist_ok=True)
-                _write_templates(path, key, t)
-            except OSError as exc:
-                warnings.warn(f"curved-sky template cache {os.path.dirname(path)}: not "
-                              f"writable ({exc}); continuing without cache", stacklevel=3)
-        return t
+        def compute():
+            return self.engine.templates(cosmo, self.edges, self.ells, self.basis(cosmo), False,
+                                         nbar=self.nbar)
+        if not self.disk_cache:
+            return compute()
+        return cached_templates(self.cache_dir, self.cache_spec(cosmo), compute)
 
     def templates(self, cosmo):
         """Template rows (masked) in the order of :meth:`design`: dict(pairs, pair_list,
@@ -357,27 +449,21 @@ class CurvedForwardModel:
     # --- direct path ----------------------------------------------------------------------------
     def tracer(self, cosmo, values, i=0):
         """The engine's TracerCoefficients of point ``i`` of ``values``."""
-        t = make_tracer(values, self.p, self.nbar, i)
-        g = bias_shape(self.evolution, cosmo, self.z, self.table)
-        b = t.b1 if g is None else (lambda z: t.b1 * g(z))
-        return TracerCoefficients(b, self._held_shape("b_e", t.b_e), self._held_shape("s", t.s),
-                                  t.fnl if "fnl" in self.effects else 0.0, self.p)
+        return self.tb.coefficients(cosmo, make_tracer(values, self.p, self.nbar, i),
+                                    "fnl" in self.effects)
 
     def full(self, values, cosmo_keys=None):
         """Full (unmasked) model vector(s) by a direct run of the engine at each point."""
         keys = self.cosmo_keys if cosmo_keys is None else cosmo_keys
         out = []
-        def at(v, i):
-            v = np.atleast_1d(v)
-            return float(v[i] if v.size > 1 else v[0])
         for i in range(len(np.atleast_1d(values["b1"]))):
-            cosmo = self.cosmology({k: at(values[k], i) for k in keys if k in values})
+            cosmo = self.cosmology({k: point(values[k], i) for k in keys if k in values})
             tracer = self.tracer(cosmo, values, i)
-            t = self._engine(cosmo, tracer, combine=True)
-            amp = at(values["shot_noise"], i)
+            t = self.engine.templates(cosmo, self.edges, self.ells, tracer, True, nbar=self.nbar)
+            amp = point(values["shot_noise"], i)
             model = t.combine({}, {}, noise=amp).ravel()
             if self.observer is not None:
-                model = model + (at(values["nu_obs"], i) ** 2 - 1.0) * \
+                model = model + (point(values["nu_obs"], i) ** 2 - 1.0) * \
                     self.observer.correction(cosmo, tracer, self.terms).ravel()
             out.append(model - self.sn_sub * self.monopole / self.nbar)
         return np.array(out)
@@ -387,6 +473,21 @@ class CurvedForwardModel:
         covariance; see the module docstring)."""
         return tr.kernel(cosmo, self.z, k, make_tracer(values, self.p, self.nbar, i),
                          effects=self.effects)
+
+
+def point(v, i):
+    """Float of point ``i`` of a value (a number, or an array of one or more points)."""
+    v = np.atleast_1d(v)
+    return float(v[i] if v.size > 1 else v[0])
+
+
+def amplitude_matrix(cols):
+    """(n, len(cols)) from a list of amplitude columns (floats or arrays of n points)."""
+    n = max(np.size(c) for c in cols)
+    x = np.empty((n, len(cols)))
+    for j, c in enumerate(cols):
+        x[:, j] = c
+    return x
 
 
 def _write_templates(path, key, t):
