@@ -649,13 +649,23 @@ def radial_field_multipoles(shell, edges, r_tab, m_tab, ells=(0, 2, 4), ic="none
 
 
 def radial_field_templates(shell, edges, names, profiles, ells=(0, 2, 4), ic="none",
-                           resolution=EstimatorResolution(k_nodes=16)):
+                           resolution=EstimatorResolution(k_nodes=16), names_b=None,
+                           profiles_b=None):
     """Pair templates of the estimator applied to m = Σ_a x_a m_a, fields isotropic about the
     observer given as ``profiles`` (n_a, n_r) on the window nodes of ``resolution`` (those of
     :func:`monopole_profiles`): {(a, b): (n_ell, n_bins)} for a ≤ b in the order of ``names``,
-    with E[m] = Σ_{a≤b} x_a x_b T_ab (T_ab holds both orderings F_ℓ[a] F_0[b] + F_ℓ[b] F_0[a])."""
+    with E[m] = Σ_{a≤b} x_a x_b T_ab (T_ab holds both orderings F_ℓ[a] F_0[b] + F_ℓ[b] F_0[a]).
+    A cross spectrum (``names_b``, ``profiles_b``: the fields of tracer B, which carries F_0):
+    every pair, T_ab = F_ℓ[a] F_0^B[b]."""
     wk, fac, f = _radial_transforms(shell, edges, profiles, ells, ic, resolution)
     out = {}
+    if names_b is not None:
+        _, _, f_b = _radial_transforms(shell, edges, profiles_b, (0,), ic, resolution)
+        for a, na in enumerate(names):
+            for b, nb in enumerate(names_b):
+                t = np.array([fac[l] * f[l][a] * f_b[0][b] for l in ells])
+                out[na, nb] = _bin(t, wk, edges.size - 1)
+        return out
     for a, na in enumerate(names):
         for b in range(a, len(names)):
             t = np.array([fac[l] * (f[l][a] * f[0][b] + (f[l][b] * f[0][a] if b != a else 0.0))

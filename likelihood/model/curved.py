@@ -530,17 +530,17 @@ class CurvedObserver:
     0.5 h/Mpc (checked against direct quadrature of ξ_gc to 1e-4 and, in snapshot mode,
     against the plane-parallel ObserverTerm's exact radial path to 1e-4: tests)."""
 
-    def __init__(self, cfg, model):
+    def __init__(self, cfg, engine, edges, ells):
         from ..observation.observer import K_IR_DEFAULT
         o = cfg["observer"]
         self.field, self.smoothing = o["field"], o.get("smoothing")
         self.k_ir = o.get("k_ir", K_IR_DEFAULT)
-        self.model = model
-        self.resolution = replace(model.resolution, k_nodes=max(16, model.resolution.k_nodes))
+        self.engine, self.edges, self.ells = engine, edges, tuple(ells)
+        self.resolution = replace(engine.resolution, k_nodes=max(16, engine.resolution.k_nodes))
 
     def _measure(self, cosmo):
         from ..observation.observer import constraint_kernel, sigma_c
-        r_max = self.model.shell.r_max
+        r_max = self.engine.shell.r_max
         q_lo = max(6.0 / r_max, 2.0 * self.k_ir)
         t, u = np.polynomial.legendre.leggauss(32)
         span = np.log(q_lo) - np.log(self.k_ir)
@@ -553,30 +553,39 @@ class CurvedObserver:
         return q, wq * q * q * np.asarray(cosmo.power(q, 0.0)) * c / (2.0 * np.pi ** 2) / sig
 
     def _profiles(self, cosmo, tracer, terms):
-        m = self.model
         q, meas = self._measure(cosmo)
-        return monopole_profiles(cosmo, m.shell, m.edges, q, meas, tracer, terms,
-                                 self.resolution, m.snapshot_z)
+        return monopole_profiles(cosmo, self.engine.shell, self.edges, q, meas, tracer, terms,
+                                 self.resolution, self.engine.snapshot_z)
 
-    def _estimate(self, names, profiles):
+    def _estimate(self, names, profiles, names_b=None, profiles_b=None):
         """E_ℓ pair templates of the radial fields: full sky or through the run's mask
-        (likelihood.curved.mask.masked_radial_field_templates: exact, only L = 0 couples)."""
-        m = self.model
-        if m.sky is None:
-            return radial_field_templates(m.shell, m.edges, names, profiles, m.ells, m.ic,
-                                          self.resolution)
-        return masked_radial_field_templates(m.shell, m.sky, m.edges, names, profiles, m.ells,
-                                             m.ic, self.resolution)
+        (likelihood.curved.mask.masked_radial_field_templates: exact, only L = 0 couples);
+        ``names_b``, ``profiles_b``: tracer B of a cross spectrum."""
+        e = self.engine
+        cross = dict(names_b=names_b, profiles_b=profiles_b)
+        if e.sky is None:
+            return radial_field_templates(e.shell, self.edges, names, profiles, self.ells, e.ic,
+                                          self.resolution, **cross)
+        return masked_radial_field_templates(e.shell, e.sky, self.edges, names, profiles,
+                                             self.ells, e.ic, self.resolution, **cross)
 
-    def templates(self, cosmo, basis, names):
-        """{(a, b): (n_ell, n_bins)} observer templates of the basis kernels (a ≤ b)."""
+    def templates(self, cosmo, basis, names, basis_b=None):
+        """{(a, b): (n_ell, n_bins)} observer templates of the basis kernels (a ≤ b; a cross
+        spectrum with the basis ``basis_b`` of tracer B: every pair)."""
         _, got, prof = self._profiles(cosmo, basis, None)
-        return self._estimate(got, prof)
+        if basis_b is None:
+            return self._estimate(got, prof)
+        _, got_b, prof_b = self._profiles(cosmo, basis_b, None)
+        return self._estimate(got, prof, got_b, prof_b)
 
-    def correction(self, cosmo, tracer, terms):
-        """E_ℓ[m] (n_ell, n_bins) of one tracer (direct path)."""
+    def correction(self, cosmo, tracer, terms, tracer_b=None):
+        """E_ℓ[m] (n_ell, n_bins) of one tracer, or of the cross spectrum with ``tracer_b``
+        (direct path)."""
         _, _, prof = self._profiles(cosmo, tracer, terms)
-        return self._estimate(["m"], prof.sum(0)[None])["m", "m"]
+        if tracer_b is None:
+            return self._estimate(["m"], prof.sum(0)[None])["m", "m"]
+        _, _, prof_b = self._profiles(cosmo, tracer_b, terms)
+        return self._estimate(["m"], prof.sum(0)[None], ["m"], prof_b.sum(0)[None])["m", "m"]
 
 
 class CurvedLikelihood(Likelihood):
@@ -619,7 +628,7 @@ def forward_model(cfg, srv, params, dv, mask, fiducial):
         cosmo_keys=[k for k in COSMO_PARAMS if k in cosmo_free or k in cfg["fixed"]],
         cosmo_free=cosmo_free, shot_noise_subtracted=cfg["data"]["shot_noise_subtracted"])
     if srv.observer_on:
-        model.observer = CurvedObserver(cfg, model)
+        model.observer = CurvedObserver(cfg, model.engine, model.edges, model.ells)
     return model
 
 
