@@ -492,8 +492,9 @@ def amplitude_matrix(cols):
 
 def _write_templates(path, key, t):
     arrays = {f"pair:{a}|{b}": v for (a, b), v in t.pairs.items()}
-    arrays["noise"] = t.noise
-    meta = json.dumps(dict(ells=list(t.ells), meta=t.meta), default=str)
+    if t.noise is not None:              # a cross spectrum of disjoint populations has none
+        arrays["noise"] = t.noise
+    meta = json.dumps(dict(ells=list(t.ells), auto=t.auto, meta=t.meta), default=str)
     open_atomic(path, lambda fh: np.savez(fh, key=np.array(key), edges=t.edges,
                                           meta=np.array(meta), **arrays), binary=True)
 
@@ -508,8 +509,9 @@ def _read_templates(path, key):
             meta = json.loads(str(f["meta"]))
             pairs = {tuple(n[5:].split("|")): np.array(f[n]) for n in f.files
                      if n.startswith("pair:")}
-            return Templates(tuple(meta["ells"]), np.array(f["edges"]), pairs,
-                             np.array(f["noise"]), True, meta["meta"])
+            noise = np.array(f["noise"]) if "noise" in f.files else None
+            return Templates(tuple(meta["ells"]), np.array(f["edges"]), pairs, noise,
+                             meta.get("auto", True), meta["meta"])
     except (OSError, ValueError, KeyError, EOFError):
         return None     # unreadable entry: rebuild and overwrite
 

@@ -29,6 +29,8 @@ the effective redshift (likelihood.covariance); mocks or a file are used as give
 """
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
 from .curved import (CurvedObserver, CurvedOperator, CurvedSky, TracerBasis, amplitude_matrix,
@@ -82,12 +84,26 @@ class CurvedMultiForwardModel(MultiForwardModel):
             cols += self.bases[n].amplitudes(self._tracer_values(values, n))
         return amplitude_matrix(cols)
 
-    def x_point(self, vals):
-        """The coefficient vector x of one point (``vals``: name → float)."""
+    @functools.cached_property
+    def _columns(self):
+        """(code, name, name) per column of x: 0 → 1; 1 → v[a]; 2 → f_NL (v[a] − v[b]);
+        3 → f_NL v[a] (the amplitudes of TracerBasis.amplitudes, for the scalar path)."""
         out = []
         for n in self.names:
-            out += self.bases[n].amplitudes(self._tracer_values(vals, n))
-        return np.array(out, dtype=float)
+            b1, p = f"b1_{n}", f"p_{n}"
+            code = {"1": (0, None, None), "b1": (1, b1, None), "v": (2, b1, p),
+                    "fnl_b1": (3, b1, None), "fnl_p": (3, p, None),
+                    "b_e": (1, f"b_e_{n}", None), "s": (1, f"s_{n}", None)}
+            out += [code[a] for a in self.bases[n].names]
+        return out
+
+    def x_point(self, vals):
+        """The coefficient vector x of one point (``vals``: name → float); equals a row of
+        :meth:`coefficients` (tests)."""
+        fnl = vals["fnl"]
+        return np.array([1.0 if c == 0 else vals[a] if c == 1 else
+                         fnl * (vals[a] - vals[b]) if c == 2 else fnl * vals[a]
+                         for c, a, b in self._columns])
 
     # --- templates ------------------------------------------------------------------------------
     def noise_nbar(self, s):

@@ -128,6 +128,9 @@ def test_fast_path_equals_direct_engine_runs():
             assert lik.log_likelihood(p) == pytest.approx(lik.log_likelihood_direct(p), rel=1e-10)
         th = np.array([p[n] for n in lik.parameter_names])
         assert lik.log_prob(th) == pytest.approx(lik.log_prob(th[None])[0], rel=1e-12)
+        vals = dict(lik.forward.held, **p)
+        np.testing.assert_allclose(lik.forward.x_point(vals), lik.forward.coefficients(
+            {k: np.atleast_1d(v) for k, v in vals.items()})[0], rtol=1e-15)
     # the shared noise n̄_XY/(n̄_X n̄_Y) enters the cross spectrum only, flat in the monopole away
     # from the lowest k (where the integral constraint removes some of it)
     diff = (lik.model_vector({"shot_noise_bright_faint": 1.0}, direct=False)
@@ -137,6 +140,30 @@ def test_fast_path_equals_direct_engine_runs():
     assert np.all(diff[:n_aa] == 0) and np.all(diff[n_aa + n_ab:] == 0)
     n_b = lik.forward.spectra[1].part.n_bins
     assert diff[n_aa + n_b - 1] == pytest.approx(2.0e-5 / (1.0e-4 * 2.0e-4), rel=2e-3)
+
+
+def test_templates_cached_on_disk(monkeypatch):
+    """A second build reads every spectrum's templates from the disk cache (the engine's basis
+    templates are not recomputed), a cross spectrum without shot noise included, and gives the
+    same template rows."""
+    import likelihood.model.curved as curved
+    raw = copy.deepcopy(TWO)
+    raw["spectra"][1].pop("shared_nbar")
+    raw["effects"] = {"observer": False}
+    raw["parameters"].pop("shot_noise_bright_faint")
+    raw["parameters"].pop("nu_obs")
+    first = _build(raw)
+    calls = []
+    engine = curved.multipole_templates
+
+    def spy(*args, **kw):
+        calls.append(kw.get("combine_pieces"))
+        return engine(*args, **kw)
+    monkeypatch.setattr(curved, "multipole_templates", spy)
+    second = _build(raw)
+    assert False not in calls            # only direct runs (the data.mock), no basis templates
+    assert calls                         # the spy saw the direct runs
+    np.testing.assert_array_equal(first._templates["M"], second._templates["M"])
 
 
 def _doppler_dipole(engine, r1, r2, z):
