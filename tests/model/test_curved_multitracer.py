@@ -17,6 +17,7 @@ from likelihood.model.curved import CurvedLikelihood
 from likelihood.model.curved_multitracer import CurvedMultiForwardModel
 from likelihood.model.multitracer import MultiLikelihood
 from tests.curved.test_wide_angle_cross import expansion, shell_redshift
+from tests.model.test_multitracer import check_analytic_marginalisation
 
 SHELL = {"shape": "shell", "r_min": 1937.0, "r_max": 3144.0}
 # small k range and coarse grids keep each engine run around a second (as tests/model/test_curved.py)
@@ -262,32 +263,9 @@ def test_analytic_marginalisation_on_the_curved_sky(prior):
     eqs. 8-10) through the curved-sky templates: the marginal log-likelihood difference of two
     points equals the log of the likelihood integrated numerically over the amplitudes (2-D
     trapezoid; the amplitudes sampled as ordinary parameters), to 1e-6."""
-    spec = {"gauss": [1.0, 0.1]} if prior == "gauss" else {"flat": [-50.0, 50.0]}
-    sampled = copy.deepcopy(TWO)
-    sampled["spectra"][1].pop("shared_nbar")
-    sampled["effects"] = {"observer": False}
-    sampled["data"]["mock"]["noise"] = True
-    sampled["parameters"] = {"fnl": {"flat": [-200, 200]}, "b1_bright": {"flat": [0.5, 5]},
-                             "b1_faint": {"flat": [0.5, 5]}, "shot_noise_bright": dict(spec),
-                             "shot_noise_faint": dict(spec)}
-    marg = copy.deepcopy(sampled)
-    for n in ("shot_noise_bright", "shot_noise_faint"):
-        marg["parameters"][n]["analytic"] = True
-    ls, lm = _build(sampled), _build(marg)
-    assert lm.parameter_names == ["fnl", "b1_bright", "b1_faint"]
-    grid = np.linspace(0.4, 1.6, 241)
-    aa, bb = np.meshgrid(grid, grid, indexing="ij")
-
-    def log_integral(th):
-        pts = np.column_stack([np.tile(th, (aa.size, 1)), aa.ravel(), bb.ravel()])
-        lp = ls.log_prob(pts).reshape(aa.shape)
-        top = lp.max()
-        inner = np.trapezoid(np.exp(lp - top), grid, axis=1)
-        return top + np.log(np.trapezoid(inner, grid))
-
-    t1, t2 = np.array([10.0, 2.4, 1.5]), np.array([-20.0, 2.38, 1.52])
-    assert lm.log_prob(t1) - lm.log_prob(t2) == pytest.approx(log_integral(t1) - log_integral(t2),
-                                                              abs=1e-6)
+    base = copy.deepcopy(TWO)
+    base["effects"] = {"observer": False}
+    check_analytic_marginalisation(base, prior, np.linspace(0.4, 1.6, 241), _build)
 
 
 @pytest.mark.parametrize("change, words", [
