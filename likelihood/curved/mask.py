@@ -439,8 +439,8 @@ def masked_multipoles(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "
                       resolution=EstimatorResolution(), tolerance=MASK_TOLERANCE,
                       snapshot_z=None):
     """Direct computation (each tracer's pieces summed into one kernel first): (n_ell, n_bins)
-    signal plus the shot noise if ``shell.nbar`` is given (a cross spectrum: of its shared objects, likelihood.curved.estimator.multipole_templates). See
-    :func:`masked_templates`."""
+    signal plus the shot noise if ``shell.nbar`` is given (a cross spectrum: that of its shared
+    objects, see likelihood.curved.estimator.multipole_templates). See :func:`masked_templates`."""
     t = masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a, tracer_b, terms_b, ells,
                          ic, resolution, tolerance, combine_pieces=True, snapshot_z=snapshot_z)
     return t.combine({}, {})
