@@ -198,8 +198,8 @@ def _doppler_dipole(engine, r1, r2, z):
                                     pytest.param(6000.0, 6400.0, marks=pytest.mark.slow)])
 def test_cross_doppler_dipole_of_a_distant_shell_tends_to_plane_parallel(r1, r2):
     """A distant narrow shell (3000–3200 Mpc/h, kχ = 50–100; slow: 6000–6400, kχ = 100–200;
-    snapshot mode): the Doppler part of
-    the cross dipole and octupole from the curved-sky engine tends to the plane-parallel one
+    snapshot mode): the Doppler part of the cross dipole and octupole from the curved-sky
+    engine tends to the plane-parallel one
     (Π_1 = [γ_A b_B − b_A γ_B + (3/5) f (γ_A − γ_B)] P/k, Π_3 = (2/5) f (γ_A − γ_B) P/k: McDonald
     2009; Bonvin, Hui & Gaztañaga 2014; checked against that formula in a box by
     tests/model/test_multitracer.py::test_cross_dipole_against_doppler_formula), convolved with
@@ -213,8 +213,8 @@ def test_cross_doppler_dipole_of_a_distant_shell_tends_to_plane_parallel(r1, r2)
     flat, _ = _doppler_dipole("plane_parallel", r1, r2, round(z, 4))
     k = lik.forward.spectra[1].part.k_eff
     rel = np.abs(curved / flat - 1.0)
-    print(f"Doppler dipole, shell {r1:g}-{r2:g}: curved/plane-parallel - 1 =", (curved / flat - 1).ravel(),
-          "k chi", k * 0.5 * (r1 + r2))
+    print(f"Doppler dipole, shell {r1:g}-{r2:g}: curved/plane-parallel - 1 =",
+          (curved / flat - 1).ravel(), "k chi", k * 0.5 * (r1 + r2))
     assert np.all(np.sign(curved) == np.sign(flat))
     assert np.all(rel < 0.5 / (k * 0.5 * (r1 + r2))), rel
 
