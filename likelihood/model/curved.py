@@ -17,7 +17,8 @@ two amplitudes f_NL b1 and f_NL p (W_fp the f_NL piece of b = 0, p = 1, so p may
 W_be = W(b_e = 1) − W(b_e = 0) over the doppler, potential and ISW pieces and
 W_s = W(s = 1) − W(s = 0) over those and lensing and time delay: all are affine in b_e and
 𝒬 = 5s/2 with no product b_e 𝒬 (docs/projection.md eq. 6.2), so the differences are exact.
-The expected estimator is then Σ_{a≤b} x_a x_b T_ab + A_sn N − s_sub e₀/n̄ with T_ab the engine's pair templates of the basis, N its shot-noise template (same window and integral
+The expected estimator is then Σ_{a≤b} x_a x_b T_ab + A_sn N − s_sub e₀/n̄ with T_ab the
+engine's pair templates of the basis, N its shot-noise template (same window and integral
 constraint) and the flat 1/n̄ monopole subtraction as in the plane-parallel model; with
 ``effects.observer`` the constrained-field term adds (ν² − 1) Σ_{a≤b} x_a x_b O_ab, the mean
 field being linear in the basis kernels too (:class:`CurvedObserver`). The direct
