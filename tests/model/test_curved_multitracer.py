@@ -57,17 +57,19 @@ def _build(raw, tmp_path=None):
                               base_dir=str(tmp_path) if tmp_path else "."))
 
 
-@pytest.mark.parametrize("variant", ["global", "observer_evolving"])
+@pytest.mark.parametrize("variant", ["global", "radial", "observer_evolving"])
 def test_one_tracer_equals_single_tracer_curved_likelihood(tmp_path, variant):
     """One tracer through the multi-tracer curved path (the single-tracer data file and covariance
     read as the auto spectrum of that tracer) gives the single-tracer curved log-likelihood to
-    1e-10 (batch and single point, direct path too): global IC with constant bias; observer term
-    with b1 ∝ 1/D(z) and b_e sampled."""
+    1e-10 (batch and single point, direct path too): global and radial IC with constant bias;
+    observer term with b1 ∝ 1/D(z) and b_e sampled."""
     obs = variant == "observer_evolving"
     single = {"run": "one", "survey": {"redshift": 1.2, "nbar": 3.0e-4, "geometry": SHELL},
               "tracer": {"b1": 1.8, "fnl": 0.0, "p": 1.0, "b_e": 1.5, "s": 0.25},
               "engine": dict(ENGINE, **({"bias_evolution": "inverse_growth"} if obs else {})),
-              "effects": {"observer": obs}, "data": {"mock": MOCK, "ells": [0, 2]},
+              "effects": {"observer": obs, "integral_constraint": "radial" if variant == "radial"
+                          else "global"},
+              "data": {"mock": MOCK, "ells": [0, 2]},
               "parameters": {"b1": {"flat": [0.5, 5]}, "fnl": {"flat": [-200, 200]},
                              "shot_noise": {"flat": [0, 3]}}}
     if obs:
@@ -84,7 +86,7 @@ def test_one_tracer_equals_single_tracer_curved_likelihood(tmp_path, variant):
     multi = {"run": "one", "survey": {"redshift": 1.2, "geometry": SHELL},
              "tracers": [{"name": "g", "nbar": 3.0e-4, "b1": 1.8, "b_e": 1.5, "s": 0.25}],
              "spectra": [{"pair": ["g", "g"], "ells": [0, 2]}],
-             "engine": ref_raw["engine"], "effects": {"observer": obs},
+             "engine": ref_raw["engine"], "effects": single["effects"],
              "data": {"file": "d.txt"}, "covariance": {"kind": "file", "file": "c.txt"},
              "parameters": {"b1_g": {"flat": [0.5, 5]}, "fnl": {"flat": [-200, 200]},
                             "shot_noise_g": {"flat": [0, 3]}}}
