@@ -57,16 +57,24 @@ def _build(raw, tmp_path=None):
                               base_dir=str(tmp_path) if tmp_path else "."))
 
 
-@pytest.mark.parametrize("variant", ["global", "radial", "observer_evolving"])
+@pytest.mark.parametrize("variant", ["global", "radial", "observer_evolving", "table"])
 def test_one_tracer_equals_single_tracer_curved_likelihood(tmp_path, variant):
     """One tracer through the multi-tracer curved path (the single-tracer data file and covariance
     read as the auto spectrum of that tracer) gives the single-tracer curved log-likelihood to
     1e-10 (batch and single point, direct path too): global and radial IC with constant bias;
-    observer term with b1 ∝ 1/D(z) and b_e sampled."""
+    observer term with b1 ∝ 1/D(z) and b_e sampled; b1, b_e, s from a tracer table (the
+    engine's ``tracer_table`` against the tracer entry's)."""
     obs = variant == "observer_evolving"
+    evolution = ({"bias_evolution": "inverse_growth"} if obs else
+                 {"tracer_table": "t.txt"} if variant == "table" else {})
+    if variant == "table":        # invented redshift dependence over the shell (z 0.8-1.6)
+        z = np.linspace(0.7, 1.7, 6)
+        np.savetxt(tmp_path / "t.txt", np.column_stack([z, 1.0 + 0.6 * z, 1.0 + 0.5 * z,
+                                                        0.2 + 0.1 * z]),
+                   header="columns: z b1 b_e s")
     single = {"run": "one", "survey": {"redshift": 1.2, "nbar": 3.0e-4, "geometry": SHELL},
               "tracer": {"b1": 1.8, "fnl": 0.0, "p": 1.0, "b_e": 1.5, "s": 0.25},
-              "engine": dict(ENGINE, **({"bias_evolution": "inverse_growth"} if obs else {})),
+              "engine": dict(ENGINE, **evolution),
               "effects": {"observer": obs, "integral_constraint": "radial" if variant == "radial"
                           else "global"},
               "data": {"mock": MOCK, "ells": [0, 2]},
@@ -74,7 +82,7 @@ def test_one_tracer_equals_single_tracer_curved_likelihood(tmp_path, variant):
                              "shot_noise": {"flat": [0, 3]}}}
     if obs:
         single["parameters"].update(b_e={"flat": [-5, 5]}, nu_obs={"gauss": [0, 1]})
-    made = _build(single)
+    made = _build(single, tmp_path)
     assert isinstance(made, CurvedLikelihood)
     made.data_full.save(tmp_path / "d.txt")
     save_covariance(tmp_path / "c.txt", made.covariance_full, made.data_full.ells,
@@ -84,9 +92,11 @@ def test_one_tracer_equals_single_tracer_curved_likelihood(tmp_path, variant):
     ref_raw["covariance"] = {"kind": "file", "file": "c.txt"}
     ref = _build(ref_raw, tmp_path)
     multi = {"run": "one", "survey": {"redshift": 1.2, "geometry": SHELL},
-             "tracers": [{"name": "g", "nbar": 3.0e-4, "b1": 1.8, "b_e": 1.5, "s": 0.25}],
+             "tracers": [{"name": "g", "nbar": 3.0e-4, "b1": 1.8, "b_e": 1.5, "s": 0.25,
+                          **({"tracer_table": "t.txt"} if variant == "table" else {})}],
              "spectra": [{"pair": ["g", "g"], "ells": [0, 2]}],
-             "engine": ref_raw["engine"], "effects": single["effects"],
+             "engine": ENGINE if variant == "table" else ref_raw["engine"],
+             "effects": single["effects"],
              "data": {"file": "d.txt"}, "covariance": {"kind": "file", "file": "c.txt"},
              "parameters": {"b1_g": {"flat": [0.5, 5]}, "fnl": {"flat": [-200, 200]},
                             "shot_noise_g": {"flat": [0, 3]}}}
@@ -94,6 +104,8 @@ def test_one_tracer_equals_single_tracer_curved_likelihood(tmp_path, variant):
         multi["parameters"].update(b_e_g={"flat": [-5, 5]}, nu_obs={"gauss": [0, 1]})
     lik = _build(multi, tmp_path)
     assert isinstance(lik, MultiLikelihood) and isinstance(lik.forward, CurvedMultiForwardModel)
+    assert lik.forward.bases["g"].evolution == {"observer_evolving": "inverse_growth",
+                                                 "table": "table"}.get(variant, "constant")
     rng = np.random.default_rng(4)
     theta = np.column_stack([rng.uniform(1.5, 2.1, 5), rng.uniform(-30, 30, 5),
                              rng.uniform(0.8, 1.2, 5)]
