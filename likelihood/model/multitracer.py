@@ -22,6 +22,10 @@ x^X = (1, b1_X, f_NL(b1_X − p_X), b_e,X, 𝒬_X)), hence
 
 T^XY_ab = M_XY[multipoles of Z^X_a Z^Y_b^* P_m] (a ≤ b symmetrised for autos). The direct path
 recomputes every spectrum from the tracers and must agree to 1e-10 (tests).
+
+With ``engine.kind: curved_sky`` the spectra come from the curved-sky engine instead
+(:mod:`likelihood.model.curved_multitracer`: same Spectrum records, templates, design and
+MultiLikelihood; the wide-angle odd multipoles included).
 """
 from __future__ import annotations
 
