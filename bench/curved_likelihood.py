@@ -2,7 +2,10 @@
 disk cache, the fast path (single and per walker), the direct engine run, and one evaluation
 when a cosmological parameter is sampled (the engine runs at every point).
 
-    PYTHONPATH=. python3 -P bench/curved_likelihood.py [CONFIG]   (default configs/demo_curved.yaml)
+    PYTHONPATH=. python3 -P bench/curved_likelihood.py [CONFIG] [--fast-only]
+        (default configs/demo_curved.yaml; configs/multi_curved.yaml: two tracers, three
+        spectra; --fast-only skips the direct and cosmology-varying runs, minutes for several
+        tracers)
 
 BLAS runs single-threaded (set before numpy loads; see bench/curved_sky.py for why).
 """
@@ -34,8 +37,9 @@ def per_call(fn, n, *args):
 def main():
     warnings.simplefilter("ignore")
     here = os.path.dirname(os.path.abspath(__file__))
-    path = sys.argv[1] if len(sys.argv) > 1 else os.path.join(here, "..", "configs",
-                                                               "demo_curved.yaml")
+    args = [a for a in sys.argv[1:] if a != "--fast-only"]
+    fast_only = "--fast-only" in sys.argv[1:]
+    path = args[0] if args else os.path.join(here, "..", "configs", "demo_curved.yaml")
     os.environ["XDG_CACHE_HOME"] = tempfile.mkdtemp(prefix="ergofit-bench-")
     cfg = load_config(path)
     t0 = time.perf_counter()
@@ -49,23 +53,29 @@ def main():
     batch = lik.start + 1e-2 * lik.start_scale * rng.standard_normal((64, lik.start.size))
     t_single = per_call(lik.log_prob, 5000, theta)
     t_batch = per_call(lik.log_prob, 2000, batch) / 64
-    t_direct = per_call(lik.log_likelihood_direct, 2, lik.theta_to_dict(theta))
-    with open(path) as fh:
-        raw = yaml.safe_load(fh)
-    raw.setdefault("parameters", {})["omega_c"] = {"flat": [0.08, 0.16], "start": 0.12,
-                                                   "scale": 1e-3}
-    lik_c = build(validate(raw, src=path, base_dir=os.path.dirname(os.path.abspath(path))))
-    t_cosmo = per_call(lik_c.log_prob, 2, lik_c.start.copy() * (1 + 1e-4))
     f = lik.forward
+    if hasattr(f, "bases"):                       # several tracers (model/curved_multitracer.py)
+        shape = (f"{len(f.spectra)} spectra; basis kernels per tracer "
+                 + ", ".join(f"{n}: {len(b.names)}" for n, b in f.bases.items()))
+    else:
+        shape = (f"{len(f.names)} basis kernels -> {len(f.names) * (len(f.names) + 1) // 2} "
+                 "pair templates + noise")
     print(f"config: {path}  ({lik.data.size} data points; terms {', '.join(f.terms)}; "
-          f"{f.ic} IC; {len(f.names)} basis kernels -> {len(f.names) * (len(f.names) + 1) // 2} "
-          "pair templates + noise)")
+          f"{f.engine.ic} IC; {shape})")
     print(f"templates, cold cache (build) : {t_cold:8.2f} s")
     print(f"build, warm cache            : {t_warm:8.2f} s")
     print(f"fast path, single evaluation : {t_single * 1e6:8.2f} us")
     print(f"fast path, per walker (64)   : {t_batch * 1e6:8.2f} us")
-    print(f"direct engine run, single    : {t_direct:8.2f} s")
-    print(f"cosmology-varying, single    : {t_cosmo:8.2f} s   (omega_c sampled)")
+    if not fast_only:
+        t_direct = per_call(lik.log_likelihood_direct, 2, lik.theta_to_dict(theta))
+        with open(path) as fh:
+            raw = yaml.safe_load(fh)
+        raw.setdefault("parameters", {})["omega_c"] = {"flat": [0.08, 0.16], "start": 0.12,
+                                                       "scale": 1e-3}
+        lik_c = build(validate(raw, src=path, base_dir=os.path.dirname(os.path.abspath(path))))
+        t_cosmo = per_call(lik_c.log_prob, 2, lik_c.start.copy() * (1 + 1e-4))
+        print(f"direct engine run, single    : {t_direct:8.2f} s")
+        print(f"cosmology-varying, single    : {t_cosmo:8.2f} s   (omega_c sampled)")
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
     print(f"peak memory {peak:.0f} MB, load average {os.getloadavg()[0]:.1f}")
 

@@ -30,6 +30,10 @@ the curved-sky route (likelihood.curved; docs/curved_sky.md, "Configuration").
                                                    #   with observer.field: potential
     (observer terms: curved_sky only, not in snapshot mode; likelihood.curved.observer_terms)
 
+Several tracers (``tracers``): each entry may set its own ``bias_evolution`` or
+``tracer_table`` (curved_sky only); without them a tracer takes the engine section's
+(check_tracer_evolution).
+
 Observer term (effects.observer): available with the none and global integral constraints, on the
 full sky or with an angular mask (cap or map); with the radial one it vanishes exactly (the
 field is isotropic about the observer, so each distance's mean inside the mask is the field) and
@@ -211,3 +215,36 @@ def check_engine(cfg, src):
                               "(shape: cap, shape: randoms, or shape: shell with mask: FILE); "
                               "remove it")
         cfg["engine"]["mask_tolerance"] = eng["mask_tolerance"]
+
+
+def check_tracer_evolution(cfg, src):
+    """Per-tracer redshift dependence of a config with ``tracers``: ``bias_evolution`` or
+    ``tracer_table`` in an entry (curved_sky only), else the engine section's; fills
+    ``bias_evolution`` (constant | inverse_growth | table) and ``tracer_table`` of every entry of
+    a curved-sky run."""
+    curved = is_curved(cfg)
+    eng = cfg["engine"]
+    for i, t in enumerate(cfg["tracers"]):
+        where = f"{src}: tracers[{i}]"
+        own = [k for k in ("bias_evolution", "tracer_table") if k in t]
+        if own and not curved:
+            raise ConfigError(f"{where}.{own[0]}: the redshift dependence of a tracer is modelled "
+                              "by engine.kind: curved_sky only; remove it or choose that engine")
+        if not curved:
+            continue
+        if len(own) == 2:
+            raise ConfigError(f"{where}: give bias_evolution or tracer_table, not both (the table "
+                              "sets the redshift dependence of b1)")
+        if "bias_evolution" in t and t["bias_evolution"] not in BIAS_EVOLUTION:
+            raise ConfigError(f"{where}.bias_evolution: expected one of "
+                              f"{', '.join(BIAS_EVOLUTION)}, got {t['bias_evolution']!r}")
+        if "tracer_table" in t:
+            table_path(t["tracer_table"], f"{where}.tracer_table")
+            if not os.path.isfile(cfg.resolve(t["tracer_table"])):
+                raise ConfigError(f"{where}.tracer_table: file '{t['tracer_table']}' not found "
+                                  f"(looked for {cfg.resolve(t['tracer_table'])})")
+            t["bias_evolution"] = "table"
+        elif "bias_evolution" not in t:
+            t["bias_evolution"] = eng["bias_evolution"]
+            if "tracer_table" in eng:
+                t["tracer_table"] = eng["tracer_table"]

@@ -5,6 +5,9 @@ Vocabulary (replaces the single ``tracer`` section, ``survey.nbar`` and ``data.e
     tracers:                       # one entry per population; names: a letter, then letters/digits
       - {name: bright, nbar: 1.0e-4, b1: 2.4, p: 1.0, b_e: 0.0, s: 0.0}
       - {name: faint,  nbar: 3.0e-4, b1: 1.3}
+                                   # engine.kind: curved_sky also takes, per tracer, the redshift
+                                   # dependence: bias_evolution: constant | inverse_growth, or
+                                   # tracer_table: FILE (default: the engine section's)
     spectra:                       # the spectra fitted, in the order of the data vector
       - {pair: [bright, bright], ells: [0, 2]}
       - {pair: [bright, faint],  ells: [0, 1, 2], k_max: 0.04}
@@ -36,7 +39,7 @@ BASE_INFO = {**{k: KNOWN[k] for k in ("b1", "b_e", "s", "shot_noise")},
 #: global parameters shared by the tracers
 SHARED = ("fnl", "nu_obs", "h", "omega_c", "omega_b", "n_s", "ln_1e10_As", "sigma8")
 
-TRACER_KEYS = ("name", "nbar", "b1", "p", "b_e", "s")
+TRACER_KEYS = ("name", "nbar", "b1", "p", "b_e", "s", "bias_evolution", "tracer_table")
 SPECTRUM_KEYS = ("pair", "ells", "k_min", "k_max", "shared_nbar")
 
 
@@ -71,6 +74,9 @@ def _tracer(entry, where):
            "p": _number(entry.get("p", 1.0), f"{where}.p", positive=True)}
     for key in ("b1", "b_e", "s"):
         out[key] = _number(entry.get(key, KNOWN[key].default), f"{where}.{key}")
+    for key in ("bias_evolution", "tracer_table"):      # curved_sky only (config/engine.py)
+        if key in entry:
+            out[key] = entry[key]
     return out
 
 

@@ -54,7 +54,7 @@ import numpy as np
 import yaml
 
 from ..errors import ConfigError
-from .engine import BIAS_EVOLUTION, ENGINES, check_engine, is_curved
+from .engine import BIAS_EVOLUTION, ENGINES, check_engine, check_tracer_evolution
 from .engine import motion_mode as engine_motion
 from .engine import resolution as engine_resolution
 from .engine import table_path as engine_table
@@ -568,10 +568,8 @@ def validate(raw, src="<memory>", base_dir="."):
     if multi:
         check_covariance_kind(cfg, src)
     check_engine(cfg, src)
-    if multi and is_curved(cfg):
-        raise ConfigError(f"{src}: engine.kind 'curved_sky' is not available with "
-                          "several tracers yet (the curved-sky engine fits one tracer); use "
-                          "engine.kind: plane_parallel or a single tracer section")
+    if multi:
+        check_tracer_evolution(cfg, src)
 
     if cfg["effects"]["observer"] and cfg["observer"]["field"] == "density" \
             and "smoothing" not in cfg["observer"]:

@@ -443,7 +443,10 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
     ``tracer_a``/``tracer_b``: :class:`TracerCoefficients` (b, b_e, s numbers or callables of
     z), or a sequence of :class:`BasisKernel` (then ``terms`` are ignored and the pairs are
     keyed by the basis names: the templates of a model linear in the basis amplitudes);
-    ``tracer_b`` None: auto spectrum of A. ``terms``: pieces from
+    ``tracer_b`` None: auto spectrum of A. ``shell.nbar``: the shot-noise template (an auto
+    spectrum's n̄; for a cross spectrum of overlapping populations n̄_A n̄_B/n̄_AB, n̄_AB the
+    density of the shared objects, whose Poisson noise is δ_D n̄_AB/(n̄_A n̄_B); None: no
+    noise, e.g. disjoint populations). ``terms``: pieces from
     likelihood.curved.TERMS. ``combine_pieces=True`` sums each tracer's pieces into one kernel
     first (the direct computation; pairs then has the single key ("total", "total")).
     ``edges``: k bin edges [h/Mpc]. Returns :class:`Templates` (units (Mpc/h)³).
@@ -539,7 +542,7 @@ def multipole_templates(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
             for ib, b in enumerate(names_b):
                 pairs[a, b] = binned[ia, ib]
     noise = None
-    if auto and shell.nbar is not None:
+    if shell.nbar is not None:       # a cross spectrum: the objects the two populations share
         noise = _noise(shell, r, wr, w, base, v, i2, k, wk, edges, ells, ic, jk)
     return Templates(ells, edges, pairs, noise, auto,
                      dict(j_max=j_max, n_q=q.size, n_r=r.size, n_k=k.size, q_max=float(q[-1]),
@@ -699,13 +702,23 @@ def radial_field_multipoles(shell, edges, r_tab, m_tab, ells=(0, 2, 4), ic="none
 
 
 def radial_field_templates(shell, edges, names, profiles, ells=(0, 2, 4), ic="none",
-                           resolution=EstimatorResolution(k_nodes=16)):
+                           resolution=EstimatorResolution(k_nodes=16), names_b=None,
+                           profiles_b=None):
     """Pair templates of the estimator applied to m = Σ_a x_a m_a, fields isotropic about the
     observer given as ``profiles`` (n_a, n_r) on the window nodes of ``resolution`` (those of
     :func:`monopole_profiles`): {(a, b): (n_ell, n_bins)} for a ≤ b in the order of ``names``,
-    with E[m] = Σ_{a≤b} x_a x_b T_ab (T_ab holds both orderings F_ℓ[a] F_0[b] + F_ℓ[b] F_0[a])."""
+    with E[m] = Σ_{a≤b} x_a x_b T_ab (T_ab holds both orderings F_ℓ[a] F_0[b] + F_ℓ[b] F_0[a]).
+    A cross spectrum (``names_b``, ``profiles_b``: the fields of tracer B, which carries F_0):
+    every pair, T_ab = F_ℓ[a] F_0^B[b]."""
     wk, fac, f = _radial_transforms(shell, edges, profiles, ells, ic, resolution)
     out = {}
+    if names_b is not None:
+        _, _, f_b = _radial_transforms(shell, edges, profiles_b, (0,), ic, resolution)
+        for a, na in enumerate(names):
+            for b, nb in enumerate(names_b):
+                t = np.array([fac[l] * f[l][a] * f_b[0][b] for l in ells])
+                out[na, nb] = _bin(t, wk, edges.size - 1)
+        return out
     for a, na in enumerate(names):
         for b in range(a, len(names)):
             t = np.array([fac[l] * (f[l][a] * f[0][b] + (f[l][b] * f[0][a] if b != a else 0.0))
@@ -750,7 +763,7 @@ def expected_multipoles(cosmo, shell, edges, tracer_a, terms_a=("density", "rsd"
                         tracer_b=None, terms_b=None, ells=(0, 2, 4), ic="none",
                         resolution=EstimatorResolution(), snapshot_z=None):
     """Direct computation (each tracer's pieces summed into one kernel first): (n_ell, n_bins)
-    signal, plus the shot noise if ``shell.nbar`` is given (auto spectra)."""
+    signal, plus the shot noise if ``shell.nbar`` is given (see multipole_templates)."""
     t = multipole_templates(cosmo, shell, edges, tracer_a, terms_a, tracer_b, terms_b, ells, ic,
                             resolution, combine_pieces=True, snapshot_z=snapshot_z)
     return t.combine({}, {})

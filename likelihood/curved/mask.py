@@ -401,7 +401,7 @@ def masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "r
     binned = {p: ns.bin(vals) for p, vals in acc.items()}
     names = {(ns.names_a[a], ns.names_b[b]): binned[a, b] for a, b in pairs}
     noise = None
-    if ns.auto and shell.nbar is not None:
+    if shell.nbar is not None:       # a cross spectrum: the objects the two populations share
         noise = _noise(ns, mask, ells, ic, i2, v, lfac, W, j_max)
     meta = dict(j_max=j_max, n_q=ns.q.size, n_r=nr, n_k=ns.k.size, q_max=float(ns.q[-1]),
                 ic=ic, snapshot_z=snapshot_z, k_band=k_band, l_top=l_top,
@@ -439,18 +439,20 @@ def masked_multipoles(cosmo, shell, mask, edges, tracer_a, terms_a=("density", "
                       resolution=EstimatorResolution(), tolerance=MASK_TOLERANCE,
                       snapshot_z=None):
     """Direct computation (each tracer's pieces summed into one kernel first): (n_ell, n_bins)
-    signal plus the shot noise if ``shell.nbar`` is given (auto spectra). See
-    :func:`masked_templates`."""
+    signal plus the shot noise if ``shell.nbar`` is given (a cross spectrum: that of its shared
+    objects, see likelihood.curved.estimator.multipole_templates). See :func:`masked_templates`."""
     t = masked_templates(cosmo, shell, mask, edges, tracer_a, terms_a, tracer_b, terms_b, ells,
                          ic, resolution, tolerance, combine_pieces=True, snapshot_z=snapshot_z)
     return t.combine({}, {})
 
 
 def masked_radial_field_templates(shell, mask, edges, names, profiles, ells=(0, 2, 4), ic="none",
-                                  resolution=EstimatorResolution(k_nodes=16)):
+                                  resolution=EstimatorResolution(k_nodes=16), names_b=None,
+                                  profiles_b=None):
     """Pair templates of the masked estimator applied to m = Σ_a x_a m_a, deterministic fields
     isotropic about the observer (the constrained-field mean field), as
-    likelihood.curved.estimator.radial_field_templates, which this equals for FULL_SKY (tests).
+    likelihood.curved.estimator.radial_field_templates, which this equals for FULL_SKY (tests);
+    ``names_b``, ``profiles_b``: the fields of tracer B of a cross spectrum (every pair a, b).
 
     Exact and cheap: such a field has only a_00(r) = √(4π) m(r), i.e. C_L = δ_L0 C_0 with
     C_0^{ab}(r1, r2) = 4π m_a(r1) m_b(r2), so C̃_J = M_J0 C_0 = W_J C_0/(4π) plus the integral
@@ -467,15 +469,19 @@ def masked_radial_field_templates(shell, mask, edges, names, profiles, ells=(0, 
     jk = spherical_jn_all(j_max + 5, k[:, None] * r[None, :])
     lfac = np.array([(2 * l + 1) * 4 * np.pi / i2 for l in ells])[:, None]
     m = np.atleast_2d(np.asarray(profiles, dtype=float))
+    cross = names_b is not None
+    m_b = np.atleast_2d(np.asarray(profiles_b, dtype=float)) if cross else m
+    pairs = ([(a, b) for a in range(len(names)) for b in range(len(names_b))] if cross else
+             [(a, b) for a in range(len(names)) for b in range(a, len(names))])
     out = {}
-    for a, na in enumerate(names):
-        for b in range(a, len(names)):
-            c0 = 4.0 * np.pi * np.outer(m[a], m[b])
-            if b != a:
-                c0 = c0 + c0.T
-            cj = coupled_spectra(c0[None], operators, v, ic)
-            t = sum(radial_projection(j, ells, cj[j], jk, base) for j in range(j_max + 1))
-            out[na, names[b]] = bin_average(lfac * t, wk, edges.size - 1)
+    for a, b in pairs:
+        c0 = 4.0 * np.pi * np.outer(m[a], m_b[b])
+        if not cross and b != a:
+            c0 = c0 + c0.T
+        cj = coupled_spectra(c0[None], operators, v, ic)
+        t = sum(radial_projection(j, ells, cj[j], jk, base) for j in range(j_max + 1))
+        out[names[a], (names_b if cross else names)[b]] = bin_average(lfac * t, wk,
+                                                                      edges.size - 1)
     return out
 
 

@@ -8,15 +8,16 @@ The number-count kernel of the engine (docs/curved_sky.md, section 2) is, at fix
 linear in a short vector of amplitudes x_a with parameter-free basis kernels W_a:
 
     W = W_1 + b1 W_b1 + v W_v + b_e W_be + s W_s,               (bias_evolution: constant)
-    W = W_1 + b1 W_b1 + (f_NL b1) W_fb + f_NL W_f + b_e W_be + s W_s   (inverse_growth)
+    W = W_1 + b1 W_b1 + (f_NL b1) W_fb + (f_NL p) W_fp + b_e W_be + s W_s   (inverse_growth)
 
 with W_1 the rsd, doppler, potential and integrated pieces at the held b_e, s (0 for a sampled
 one), W_b1 the density of unit bias b(z) = g(z) (g = 1, or D(z_eff)/D(z)), v = f_NL (b1 − p)
 and W_v the f_NL piece of unit amplitude; with an evolving bias f_NL (b1 g(z) − p) needs the
-two amplitudes f_NL b1 and f_NL. W_be = W(b_e = 1) − W(b_e = 0) over the doppler, potential and
-ISW pieces and W_s = W(s = 1) − W(s = 0) over those and lensing and time delay: all are affine in
-b_e and 𝒬 = 5s/2 with no product b_e 𝒬 (docs/projection.md eq. 6.2), so the differences are
-exact. The expected estimator is then Σ_{a≤b} x_a x_b T_ab + A_sn N − s_sub e₀/n̄ with T_ab the
+two amplitudes f_NL b1 and f_NL p (W_fp the f_NL piece of b = 0, p = 1, so p may be sampled).
+W_be = W(b_e = 1) − W(b_e = 0) over the doppler, potential and ISW pieces and
+W_s = W(s = 1) − W(s = 0) over those and lensing and time delay: all are affine in b_e and
+𝒬 = 5s/2 with no product b_e 𝒬 (docs/projection.md eq. 6.2), so the differences are exact.
+The expected estimator is then Σ_{a≤b} x_a x_b T_ab + A_sn N − s_sub e₀/n̄ with T_ab the
 engine's pair templates of the basis, N its shot-noise template (same window and integral
 constraint) and the flat 1/n̄ monopole subtraction as in the plane-parallel model; with
 ``effects.observer`` the constrained-field term adds (ν² − 1) Σ_{a≤b} x_a x_b O_ab, the mean
@@ -55,19 +56,18 @@ from ..curved.estimator import (BasisKernel, EstimatorResolution, Templates,
 from ..curved.mask import (MASK_TOLERANCE, Cap, masked_radial_field_templates,
                            masked_templates)
 from ..curved.observer_terms import CMB_DIPOLE_SPEED, MotionConditioning, observer_q_grid
-from ..curved.quadrature import composite_gl
 from ..curved.randoms_mask import RandomsMask
 from ..curved.selection import noise_level
 from ..io import cache_folder, open_atomic
 from ..observation.matrix import KBins
 from ..theory import tracer as tr
 from . import factories
-from .fiducial import COSMO_PARAMS, fiducial_values, held_values, make_tracer
 from .curved_window import check_resolvable, curved_window, z_of_distance
+from .fiducial import COSMO_PARAMS, fiducial_values, held_values, make_tracer
 from .likelihood import Likelihood
 
 #: bump when the engine's numbers change, so old cache entries are not reused
-CACHE_VERSION = "curved-templates-1"
+CACHE_VERSION = "curved-templates-2"
 #: pieces of the engine that depend on b_e, on s (through 𝒬), in engine order
 _BE_TERMS = ("doppler", "potential", "isw") + OBSERVER_EFFECTS
 _S_TERMS = ("doppler", "potential", "isw", "lensing", "time_delay") + OBSERVER_EFFECTS
@@ -151,12 +151,201 @@ def sky_fingerprint(sky):
             int(sky.lmax)]
 
 
+def tracer_table(cfg, cosmo, path, shell):
+    """The :class:`TracerTable` at ``path`` (relative to the config), checked to cover the
+    survey's ``shell``."""
+    z_lo, z_hi = (z_of_distance(cosmo, r, "survey.geometry.r_max")
+                  for r in (shell.r_min, shell.r_max))
+    return TracerTable(cfg.resolve(path), z_lo, z_hi)
+
+
+class TracerBasis:
+    """One tracer's basis kernels on the curved sky and their amplitudes (module docstring).
+
+    ``terms``: the engine's kernel pieces switched on; ``evolution``: constant, inverse_growth or
+    table (then ``table`` a :class:`TracerTable`); ``z``: the effective redshift at which b1,
+    b_e, s are quoted; ``held``: {"b_e", "s"} values when not sampled; ``lin_free``: the sampled
+    ones among b_e, s. The f_NL pieces: constant bias, one kernel of unit f_NL (b1 − p),
+    amplitude v = f_NL (b1 − p); evolving bias f_NL (b1 g(z) − p) = f_NL b1 g(z) − f_NL p, two
+    kernels (b = g, p = 0) and (b = 0, p = 1) with amplitudes f_NL b1 and f_NL p, so p enters
+    only the amplitudes (it may be sampled)."""
+
+    def __init__(self, terms, evolution, table, z, held, lin_free):
+        self.terms, self.evolution, self.table, self.z = tuple(terms), evolution, table, z
+        self.held = {k: float(held[k]) for k in ("b_e", "s")}
+        self.lin_free = list(lin_free)
+        self.names = [name for name, _ in self.spec(None)]
+
+    def spec(self, g):
+        """[(name, ((weight, TracerCoefficients, terms), ...))] of the basis kernels; ``g`` the
+        bias shape (None: constant, or a placeholder when only the names are wanted). Kernels
+        with no piece switched on are left out."""
+        on = set(self.terms)
+        unit = 1.0 if g is None else g
+        be0 = self.held_shape("b_e", 0.0 if "b_e" in self.lin_free else self.held["b_e"])
+        s0 = self.held_shape("s", 0.0 if "s" in self.lin_free else self.held["s"])
+        t1 = tuple(t for t in self.terms if t not in ("density", "fnl"))
+        spec = [("1", ((1.0, TracerCoefficients(0.0, be0, s0), t1),)),
+                ("b1", ((1.0, TracerCoefficients(unit), ("density",)),))]
+        if "fnl" in on:
+            if self.evolution == "constant":
+                spec.append(("v", ((1.0, TracerCoefficients(1.0, fnl=1.0, p=0.0), ("fnl",)),)))
+            else:
+                spec.append(("fnl_b1", ((1.0, TracerCoefficients(unit, fnl=1.0, p=0.0),
+                                         ("fnl",)),)))
+                spec.append(("fnl_p", ((1.0, TracerCoefficients(0.0, fnl=1.0, p=1.0),
+                                        ("fnl",)),)))
+        for name, terms, one in (("b_e", _BE_TERMS, dict(b_e=1.0)), ("s", _S_TERMS, dict(s=1.0))):
+            terms = tuple(t for t in terms if t in on)
+            if name in self.lin_free:
+                spec.append((name, ((1.0, TracerCoefficients(0.0, **one), terms),
+                                    (-1.0, TracerCoefficients(0.0), terms))))
+        return [(n, parts) for n, parts in spec if all(p[2] for p in parts)]
+
+    def held_shape(self, name, value):
+        """b_e or s of the kernel: the number, or value + the table's shape (a callable of z)."""
+        if self.table is None:
+            return value
+        shape = self.table.shape(name, self.z)
+        return lambda z: value + shape(z)
+
+    def amplitudes(self, values):
+        """The amplitudes x of the basis kernels, in the order of ``names``, for parameter values
+        (floats or arrays) keyed b1, fnl, p, b_e, s."""
+        b1, p = values["b1"], values["p"]
+        fnl = values.get("fnl", 0.0)
+        col = {"1": 1.0, "b1": b1, "v": fnl * (b1 - p), "fnl_b1": fnl * b1, "fnl_p": fnl * p}
+        return [values[n] if n in ("b_e", "s") else col[n] for n in self.names]
+
+    def basis(self, cosmo):
+        """The BasisKernels at ``cosmo``."""
+        g = bias_shape(self.evolution, cosmo, self.z, self.table)
+        return [BasisKernel(n, parts) for n, parts in self.spec(g)]
+
+    def coefficients(self, cosmo, t, fnl_on=True):
+        """The engine's TracerCoefficients of a :class:`~likelihood.theory.tracer.Tracer`."""
+        g = bias_shape(self.evolution, cosmo, self.z, self.table)
+        b = t.b1 if g is None else (lambda z: t.b1 * g(z))
+        return TracerCoefficients(b, self.held_shape("b_e", t.b_e), self.held_shape("s", t.s),
+                                  t.fnl if fnl_on else 0.0, t.p)
+
+    def fingerprint(self):
+        """What defines the basis in a cache key."""
+        return dict(names=self.names, lin_free=self.lin_free, held=self.held, z=self.z,
+                    evolution=self.evolution,
+                    table=None if self.table is None else self.table.data.tolist())
+
+
+def cosmology_fingerprint(cosmo):
+    """The cosmology in a cache key: its parameters and probes of its background and power, so
+    a changed table or code changes the key."""
+    zp, qp = np.array([0.3, 1.0, 3.0]), np.array([1e-3, 1e-2, 0.1])
+    return dict(cosmo=repr(cosmo), probes=[float(v) for v in np.concatenate([
+        cosmo.comoving_distance(zp), cosmo.growth_factor(zp, norm="today"),
+        cosmo.growth_rate(zp), cosmo.power(qp, 0.0)])])
+
+
+def template_key(spec):
+    """sha256 of a JSON-able dict of everything that defines a set of templates."""
+    return hashlib.sha256(json.dumps(dict(spec, version=CACHE_VERSION), sort_keys=True,
+                                     default=str).encode()).hexdigest()
+
+
+def cached_templates(cache_dir, spec, compute):
+    """Templates from the disk cache entry of ``spec`` (:func:`template_key`), or ``compute()``
+    written there (a warning if the cache is not writable)."""
+    key = template_key(spec)
+    folder = cache_folder(cache_dir)
+    path = os.path.join(folder, f"curved-templates-{key[:24]}.npz")
+    cached = _read_templates(path, key)
+    if cached is not None:
+        return cached
+    t = compute()
+    try:
+        os.makedirs(os.path.dirname(path), exist_ok=True)
+        _write_templates(path, key, t)
+    except OSError as exc:
+        warnings.warn(f"curved-sky template cache {os.path.dirname(path)}: not "
+                      f"writable ({exc}); continuing without cache", stacklevel=3)
+    return t
+
+
 class CurvedOperator:
     """What the likelihood and the reports read from an observation operator: the data bins
     and the integral constraint the engine applies (exact forms: docs/curved_sky.md)."""
 
     def __init__(self, bins, ic):
         self.bins, self.ic = bins, ic
+
+
+class CurvedSky:
+    """The curved-sky engine as a run sets it up: shell, angular mask, integral constraint,
+    kernel pieces, snapshot mode and resolution from the config (the window through
+    :func:`likelihood.model.curved_window.curved_window`, at the fiducial cosmology ``cosmo``);
+    :meth:`templates` runs the engine (full sky or masked) and re-issues its ResolutionWarnings
+    naming the config key. With a radial selection, a spectrum's shot noise follows its shape
+    n̄(r), scaled to the n̄ asked for (survey.nbar: the selection itself)."""
+
+    def __init__(self, cfg, cosmo):
+        eng, geo = cfg["engine"], cfg["survey"]["geometry"]
+        self.ic = cfg["effects"]["integral_constraint"]
+        self.terms = engine_terms(cfg)
+        self.snapshot_z = cfg["survey"]["redshift"] if eng["snapshot"] else None
+        self.resolution = EstimatorResolution(**eng["resolution"])
+        self.shell, self.sky, self.selection = curved_window(cfg, cosmo)
+        self.nbar = cfg["survey"]["nbar"]
+        self.fkp_p0 = geo.get("fkp_p0")
+        self.mask_tolerance = eng.get("mask_tolerance", MASK_TOLERANCE)
+
+    def fingerprint(self):
+        """What defines the engine's set-up in a cache key."""
+        out = dict(shell=[self.shell.r_min, self.shell.r_max], ic=self.ic, terms=self.terms,
+                   snapshot=self.snapshot_z, resolution=repr(self.resolution),
+                   sky=sky_fingerprint(self.sky),
+                   mask_tolerance=None if self.sky is None else self.mask_tolerance)
+        if self.selection is not None:          # (absent: the keys of uniform shells stay)
+            out["selection"] = [self.selection.fingerprint(), self.fkp_p0]
+        return out
+
+    def noise_shell(self, nbar):
+        """The shell whose n̄ gives the shot-noise template of density ``nbar`` (None: none)."""
+        if nbar is None or self.selection is None:
+            return replace(self.shell, nbar=nbar)
+        shape, scale = self.shell.nbar, float(nbar) / self.nbar
+        return self.shell if scale == 1.0 else replace(self.shell,
+                                                       nbar=lambda r: scale * shape(r))
+
+    def run(self, cosmo, edges, ells, tracer, terms, combine=False, snapshot_z=None,
+            tracer_b=None, nbar=None):
+        """The engine's Templates: the full-sky estimator (likelihood.curved.estimator.
+        multipole_templates) or, with an angular mask, the masked one (likelihood.curved.mask.
+        masked_templates, band-limit tolerance ``engine.mask_tolerance``). ``tracer_b``: the
+        second tracer of a cross spectrum; ``nbar``: the n̄ of its shot-noise template (an auto
+        spectrum's n̄, or n̄_X n̄_Y/n̄_XY of overlapping populations; None: no noise)."""
+        shell = self.noise_shell(nbar)
+        run = dict(tracer_b=tracer_b, ells=tuple(ells), ic=self.ic, resolution=self.resolution,
+                   combine_pieces=combine, snapshot_z=snapshot_z)
+        if self.sky is None:
+            return multipole_templates(cosmo, shell, edges, tracer, terms, **run)
+        return masked_templates(cosmo, shell, self.sky, edges, tracer, terms,
+                                tolerance=self.mask_tolerance, **run)
+
+    def templates(self, cosmo, edges, ells, tracer, combine, tracer_b=None, nbar=None):
+        """:meth:`run` with this run's terms and snapshot setting; its ResolutionWarnings are
+        re-issued naming the config key."""
+        with warnings.catch_warnings(record=True) as rec:
+            warnings.simplefilter("always", ResolutionWarning)
+            t = self.run(cosmo, edges, ells, tracer, self.terms, combine, self.snapshot_z,
+                         tracer_b=tracer_b, nbar=nbar)
+        for w in rec:
+            msg = str(w.message)
+            if issubclass(w.category, ResolutionWarning):
+                where = ("survey.geometry.nside or engine.mask_tolerance"
+                         if isinstance(self.sky, RandomsMask) else "survey.geometry.mask")
+                msg += (f" (config: {where})" if "raise lmax" in msg
+                        else " (config: engine.resolution)")
+            warnings.warn(msg, w.category, stacklevel=3)
+        return t
 
 
 class CurvedForwardModel:
@@ -170,25 +359,22 @@ class CurvedForwardModel:
     def __init__(self, cfg, srv, dv, mask, held, lin_free, cosmology, cosmo_keys, cosmo_free,
                  shot_noise_subtracted, cache_dir=None, observer=None):
         eng = cfg["engine"]
-        geo = cfg["survey"]["geometry"]
         self.survey = srv
         self.z, self.nbar, self.p, self.effects = srv.z, srv.nbar, srv.p, srv.effects
-        self.ic = cfg["effects"]["integral_constraint"]
-        self.terms = engine_terms(cfg)
-        self.snapshot_z = srv.z if eng["snapshot"] else None
-        self.evolution = eng["bias_evolution"]
-        self.table = None
         cosmo0 = cosmology({})
-        self.shell, self.sky, self.selection = curved_window(cfg, cosmo0)
-        self.fkp_p0 = geo.get("fkp_p0")
-        if "tracer_table" in eng:
-            z_lo, z_hi = (z_of_distance(cosmo0, r, "survey.geometry.r_max")
-                          for r in (self.shell.r_min, self.shell.r_max))
-            self.table = TracerTable(cfg.resolve(eng["tracer_table"]), z_lo, z_hi)
-        self.resolution = EstimatorResolution(**eng["resolution"])
+        self.engine = CurvedSky(cfg, cosmo0)
+        self.ic, self.terms, self.snapshot_z = self.engine.ic, self.engine.terms, \
+            self.engine.snapshot_z
+        self.resolution, self.shell, self.sky = (self.engine.resolution, self.engine.shell,
+                                                 self.engine.sky)
+        self.selection, self.fkp_p0 = self.engine.selection, self.engine.fkp_p0
+        self.mask_tolerance = self.engine.mask_tolerance
         check_resolvable(self.shell, dv.edges, self.resolution, self.sky is not None,
                          f"{cfg.path}: data")
-        self.mask_tolerance = eng.get("mask_tolerance", MASK_TOLERANCE)
+        self.evolution = eng["bias_evolution"]
+        self.table = None
+        if "tracer_table" in eng:
+            self.table = tracer_table(cfg, cosmo0, eng["tracer_table"], self.shell)
         self.edges, self.ells, self.n_bins = dv.edges, tuple(dv.ells), dv.edges.size - 1
         self.operator = CurvedOperator(KBins(dv.edges, dv.k_eff, dv.n_modes), self.ic)
         self.observer = observer
@@ -197,6 +383,7 @@ class CurvedForwardModel:
         self.mask = mask
         self.held = held
         self.lin_free = list(lin_free)
+        self.tb = TracerBasis(self.terms, self.evolution, self.table, self.z, held, lin_free)
         self.cosmology = cosmology
         self.cosmo_keys = list(cosmo_keys)
         self.disk_cache = not cosmo_free          # only the build cosmology is worth a file
@@ -207,133 +394,50 @@ class CurvedForwardModel:
             # in units of 1/n̄ (survey.nbar): the flat level the estimator subtracts is its
             # shot noise without IC, ∫r²w²/n̄ dr/∫r²w² dr (likelihood.curved.selection)
             self.monopole = self.monopole * self.nbar * noise_level(self.shell)
-        self.names = [name for name, _ in self._basis_spec(None)]
 
-    # --- basis ----------------------------------------------------------------------------------
-    def _basis_spec(self, g):
-        """[(name, ((weight, TracerCoefficients, terms), ...))] of the basis kernels; ``g`` the
-        bias shape (None: constant, or a placeholder when only the names are wanted). Kernels
-        with no piece switched on are left out."""
-        on = set(self.terms)
-        unit = 1.0 if g is None else g
-        be0 = self._held_shape("b_e", 0.0 if "b_e" in self.lin_free else self.held["b_e"])
-        s0 = self._held_shape("s", 0.0 if "s" in self.lin_free else self.held["s"])
-        t1 = tuple(t for t in self.terms if t not in ("density", "fnl"))
-        spec = [("1", ((1.0, TracerCoefficients(0.0, be0, s0), t1),)),
-                ("b1", ((1.0, TracerCoefficients(unit), ("density",)),))]
-        if "fnl" in on:
-            if self.evolution == "constant":
-                spec.append(("v", ((1.0, TracerCoefficients(1.0, fnl=1.0, p=0.0), ("fnl",)),)))
-            else:
-                spec.append(("fnl_b1", ((1.0, TracerCoefficients(unit, fnl=1.0, p=0.0),
-                                         ("fnl",)),)))
-                spec.append(("fnl", ((1.0, TracerCoefficients(0.0, fnl=1.0, p=self.p),
-                                      ("fnl",)),)))
-        for name, terms, one in (("b_e", _BE_TERMS, dict(b_e=1.0)), ("s", _S_TERMS, dict(s=1.0))):
-            terms = tuple(t for t in terms if t in on)
-            if name in self.lin_free:
-                spec.append((name, ((1.0, TracerCoefficients(0.0, **one), terms),
-                                    (-1.0, TracerCoefficients(0.0), terms))))
-        return [(n, parts) for n, parts in spec if all(p[2] for p in parts)]
-
-    def _held_shape(self, name, value):
-        """b_e or s of the kernel: the number, or value + the table's shape (a callable of z)."""
-        if self.table is None:
-            return value
-        shape = self.table.shape(name, self.z)
-        return lambda z: value + shape(z)
+    # --- basis (one tracer: TracerBasis) -------------------------------------------------------
+    @property
+    def names(self):
+        return self.tb.names
 
     def amplitudes(self, values):
         """The amplitudes x of the basis kernels (module docstring), in the order of
         ``names``, for parameter values (floats or arrays)."""
-        b1 = values["b1"]
-        fnl = values.get("fnl", 0.0)
-        col = {"1": 1.0, "b1": b1, "v": fnl * (b1 - self.p), "fnl_b1": fnl * b1, "fnl": fnl}
-        return [values[n] if n in ("b_e", "s") else col[n] for n in self.names]
+        return self.tb.amplitudes(dict(values, p=self.p))
 
     def coefficients(self, values):
         """(n, n_basis) amplitudes x of the basis kernels for the parameter values."""
-        cols = self.amplitudes(values)
-        n = max(np.size(c) for c in cols)
-        x = np.empty((n, len(cols)))
-        for j, c in enumerate(cols):
-            x[:, j] = c
-        return x
-
-    # --- templates ------------------------------------------------------------------------------
-    def engine_templates(self, cosmo, tracer, terms, combine=False, snapshot_z=None):
-        """The engine's Templates for this run's window: the full-sky estimator
-        (likelihood.curved.estimator.multipole_templates) or, with an angular mask, the masked
-        one (likelihood.curved.mask.masked_templates, band-limit tolerance
-        ``engine.mask_tolerance``)."""
-        run = dict(ells=self.ells, ic=self.ic, resolution=self.resolution,
-                   combine_pieces=combine, snapshot_z=snapshot_z)
-        if self.sky is None:
-            return multipole_templates(cosmo, self.shell, self.edges, tracer, terms, **run)
-        return masked_templates(cosmo, self.shell, self.sky, self.edges, tracer, terms,
-                                tolerance=self.mask_tolerance, **run)
-
-    def _engine(self, cosmo, tracer, combine):
-        """One engine run; its ResolutionWarnings are re-issued naming the config key."""
-        with warnings.catch_warnings(record=True) as rec:
-            warnings.simplefilter("always", ResolutionWarning)
-            t = self.engine_templates(cosmo, tracer, self.terms, combine, self.snapshot_z)
-        for w in rec:
-            msg = str(w.message)
-            if issubclass(w.category, ResolutionWarning):
-                where = ("survey.geometry.nside or engine.mask_tolerance"
-                         if isinstance(self.sky, RandomsMask)
-                         else "survey.geometry.mask")
-                msg += (f" (config: {where})" if "raise lmax" in msg
-                        else " (config: engine.resolution)")
-            warnings.warn(msg, w.category, stacklevel=3)
-        return t
-
-    def cache_key(self, cosmo):
-        """sha256 of everything the pair templates depend on (cosmology by its parameters and
-        probes of its background and power, so a changed table or code changes the key)."""
-        zp, qp = np.array([0.3, 1.0, 3.0]), np.array([1e-3, 1e-2, 0.1])
-        spec = dict(version=CACHE_VERSION, cosmo=repr(cosmo),
-                    probes=[float(v) for v in np.concatenate([
-                        cosmo.comoving_distance(zp), cosmo.growth_factor(zp, norm="today"),
-                        cosmo.growth_rate(zp), cosmo.power(qp, 0.0)])],
-                    shell=[self.shell.r_min, self.shell.r_max, self.nbar],
-                    edges=[float(e) for e in self.edges], ells=self.ells, ic=self.ic,
-                    terms=self.terms, names=self.names, lin_free=self.lin_free,
-                    held=[self.held["b_e"], self.held["s"]], p=self.p, z=self.z,
-                    evolution=self.evolution, snapshot=self.snapshot_z,
-                    table=None if self.table is None else self.table.data.tolist(),
-                    resolution=repr(self.resolution), sky=sky_fingerprint(self.sky),
-                    mask_tolerance=None if self.sky is None else self.mask_tolerance)
-        if self.selection is not None:          # (absent: the keys of uniform shells stay)
-            spec["selection"] = [self.selection.fingerprint(), self.fkp_p0]
-        return hashlib.sha256(json.dumps(spec, sort_keys=True).encode()).hexdigest()
+        return amplitude_matrix(self.amplitudes(values))
 
     def basis(self, cosmo):
         """The BasisKernels of the fast path at ``cosmo`` (module docstring)."""
-        g = bias_shape(self.evolution, cosmo, self.z, self.table)
-        return [BasisKernel(n, parts) for n, parts in self._basis_spec(g)]
+        return self.tb.basis(cosmo)
+
+    # --- templates ------------------------------------------------------------------------------
+    def engine_templates(self, cosmo, tracer, terms, combine=False, snapshot_z=None):
+        """The engine's Templates for this run's window and data bins (:meth:`CurvedSky.run`)."""
+        return self.engine.run(cosmo, self.edges, self.ells, tracer, terms, combine, snapshot_z,
+                               nbar=self.nbar)
+
+    def cache_spec(self, cosmo):
+        """Everything the pair templates depend on (the disk cache's key)."""
+        return dict(cosmology_fingerprint(cosmo), engine=self.engine.fingerprint(),
+                    basis=self.tb.fingerprint(), nbar=self.nbar, p=self.p,
+                    edges=[float(e) for e in self.edges], ells=self.ells)
+
+    def cache_key(self, cosmo):
+        """The disk cache's key of the pair templates at ``cosmo``."""
+        return template_key(self.cache_spec(cosmo))
 
     def pair_templates(self, cosmo):
         """The engine's :class:`~likelihood.curved.estimator.Templates` of the basis at
         ``cosmo`` (from the disk cache when this is the build cosmology)."""
-        path = None
-        if self.disk_cache:
-            key = self.cache_key(cosmo)
-            folder = cache_folder(self.cache_dir)
-            path = os.path.join(folder, f"curved-templates-{key[:24]}.npz")
-            cached = _read_templates(path, key)
-            if cached is not None:
-                return cached
-        t = self._engine(cosmo, self.basis(cosmo), combine=False)
-        if path is not None:
-            try:
-                os.makedirs(os.path.dirname(path), exist_ok=True)
-                _write_templates(path, key, t)
-            except OSError as exc:
-                warnings.warn(f"curved-sky template cache {os.path.dirname(path)}: not "
-                              f"writable ({exc}); continuing without cache", stacklevel=3)
-        return t
+        def compute():
+            return self.engine.templates(cosmo, self.edges, self.ells, self.basis(cosmo), False,
+                                         nbar=self.nbar)
+        if not self.disk_cache:
+            return compute()
+        return cached_templates(self.cache_dir, self.cache_spec(cosmo), compute)
 
     def templates(self, cosmo):
         """Template rows (masked) in the order of :meth:`design`: dict(pairs, pair_list,
@@ -365,29 +469,23 @@ class CurvedForwardModel:
     # --- direct path ----------------------------------------------------------------------------
     def tracer(self, cosmo, values, i=0):
         """The engine's TracerCoefficients of point ``i`` of ``values``."""
-        t = make_tracer(values, self.p, self.nbar, i)
-        g = bias_shape(self.evolution, cosmo, self.z, self.table)
-        b = t.b1 if g is None else (lambda z: t.b1 * g(z))
-        return TracerCoefficients(b, self._held_shape("b_e", t.b_e), self._held_shape("s", t.s),
-                                  t.fnl if "fnl" in self.effects else 0.0, self.p)
+        return self.tb.coefficients(cosmo, make_tracer(values, self.p, self.nbar, i),
+                                    "fnl" in self.effects)
 
     def full(self, values, cosmo_keys=None):
         """Full (unmasked) model vector(s) by a direct run of the engine at each point."""
         keys = self.cosmo_keys if cosmo_keys is None else cosmo_keys
         out = []
-        def at(v, i):
-            v = np.atleast_1d(v)
-            return float(v[i] if v.size > 1 else v[0])
         for i in range(len(np.atleast_1d(values["b1"]))):
-            cosmo = self.cosmology({k: at(values[k], i) for k in keys if k in values})
+            cosmo = self.cosmology({k: point(values[k], i) for k in keys if k in values})
             tracer = self.tracer(cosmo, values, i)
-            t = self._engine(cosmo, tracer, combine=True)
-            amp = at(values["shot_noise"], i)
+            t = self.engine.templates(cosmo, self.edges, self.ells, tracer, True, nbar=self.nbar)
+            amp = point(values["shot_noise"], i)
             model = t.combine({}, {}, noise=amp).ravel()
             if self.motion is not None:
                 model = model + sum(self.motion_part(cosmo, tracer).values()).ravel()
             if self.observer is not None:
-                model = model + (at(values["nu_obs"], i) ** 2 - 1.0) * \
+                model = model + (point(values["nu_obs"], i) ** 2 - 1.0) * \
                     self.observer.correction(cosmo, tracer, self.terms).ravel()
             out.append(model - self.sn_sub * self.monopole / self.nbar)
         return np.array(out)
@@ -409,10 +507,26 @@ class CurvedForwardModel:
                          effects=self.effects)
 
 
+def point(v, i):
+    """Float of point ``i`` of a value (a number, or an array of one or more points)."""
+    v = np.atleast_1d(v)
+    return float(v[i] if v.size > 1 else v[0])
+
+
+def amplitude_matrix(cols):
+    """(n, len(cols)) from a list of amplitude columns (floats or arrays of n points)."""
+    n = max(np.size(c) for c in cols)
+    x = np.empty((n, len(cols)))
+    for j, c in enumerate(cols):
+        x[:, j] = c
+    return x
+
+
 def _write_templates(path, key, t):
     arrays = {f"pair:{a}|{b}": v for (a, b), v in t.pairs.items()}
-    arrays["noise"] = t.noise
-    meta = json.dumps(dict(ells=list(t.ells), meta=t.meta), default=str)
+    if t.noise is not None:              # a cross spectrum of disjoint populations has none
+        arrays["noise"] = t.noise
+    meta = json.dumps(dict(ells=list(t.ells), auto=t.auto, meta=t.meta), default=str)
     open_atomic(path, lambda fh: np.savez(fh, key=np.array(key), edges=t.edges,
                                           meta=np.array(meta), **arrays), binary=True)
 
@@ -427,8 +541,9 @@ def _read_templates(path, key):
             meta = json.loads(str(f["meta"]))
             pairs = {tuple(n[5:].split("|")): np.array(f[n]) for n in f.files
                      if n.startswith("pair:")}
-            return Templates(tuple(meta["ells"]), np.array(f["edges"]), pairs,
-                             np.array(f["noise"]), True, meta["meta"])
+            noise = np.array(f["noise"]) if "noise" in f.files else None
+            return Templates(tuple(meta["ells"]), np.array(f["edges"]), pairs, noise,
+                             meta.get("auto", True), meta["meta"])
     except (OSError, ValueError, KeyError, EOFError):
         return None     # unreadable entry: rebuild and overwrite
 
@@ -449,46 +564,55 @@ class CurvedObserver:
     0.5 h/Mpc (checked against direct quadrature of ξ_gc to 1e-4 and, in snapshot mode,
     against the plane-parallel ObserverTerm's exact radial path to 1e-4: tests)."""
 
-    def __init__(self, cfg, model):
+    def __init__(self, cfg, engine, edges, ells):
         from ..observation.observer import K_IR_DEFAULT
         o = cfg["observer"]
         self.field, self.smoothing = o["field"], o.get("smoothing")
         self.k_ir = o.get("k_ir", K_IR_DEFAULT)
-        self.model = model
-        self.resolution = replace(model.resolution, k_nodes=max(16, model.resolution.k_nodes))
+        self.engine, self.edges, self.ells = engine, edges, tuple(ells)
+        self.resolution = replace(engine.resolution, k_nodes=max(16, engine.resolution.k_nodes))
 
     def _measure(self, cosmo):
         from ..observation.observer import constraint_kernel, sigma_c
-        q, wq = observer_q_grid(self.model.shell.r_max, self.k_ir, None)
+        q, wq = observer_q_grid(self.engine.shell.r_max, self.k_ir, None)
         c = constraint_kernel(cosmo, 0.0, q, self.field, self.smoothing)
         sig = sigma_c(cosmo, 0.0, self.field, self.smoothing, k_ir=self.k_ir)
         return q, wq * q * q * np.asarray(cosmo.power(q, 0.0)) * c / (2.0 * np.pi ** 2) / sig
 
     def _profiles(self, cosmo, tracer, terms):
-        m = self.model
         q, meas = self._measure(cosmo)
-        return monopole_profiles(cosmo, m.shell, m.edges, q, meas, tracer, terms,
-                                 self.resolution, m.snapshot_z)
+        return monopole_profiles(cosmo, self.engine.shell, self.edges, q, meas, tracer, terms,
+                                 self.resolution, self.engine.snapshot_z)
 
-    def _estimate(self, names, profiles):
+    def _estimate(self, names, profiles, names_b=None, profiles_b=None):
         """E_ℓ pair templates of the radial fields: full sky or through the run's mask
-        (likelihood.curved.mask.masked_radial_field_templates: exact, only L = 0 couples)."""
-        m = self.model
-        if m.sky is None:
-            return radial_field_templates(m.shell, m.edges, names, profiles, m.ells, m.ic,
-                                          self.resolution)
-        return masked_radial_field_templates(m.shell, m.sky, m.edges, names, profiles, m.ells,
-                                             m.ic, self.resolution)
+        (likelihood.curved.mask.masked_radial_field_templates: exact, only L = 0 couples);
+        ``names_b``, ``profiles_b``: tracer B of a cross spectrum."""
+        e = self.engine
+        cross = dict(names_b=names_b, profiles_b=profiles_b)
+        if e.sky is None:
+            return radial_field_templates(e.shell, self.edges, names, profiles, self.ells, e.ic,
+                                          self.resolution, **cross)
+        return masked_radial_field_templates(e.shell, e.sky, self.edges, names, profiles,
+                                             self.ells, e.ic, self.resolution, **cross)
 
-    def templates(self, cosmo, basis, names):
-        """{(a, b): (n_ell, n_bins)} observer templates of the basis kernels (a ≤ b)."""
+    def templates(self, cosmo, basis, names, basis_b=None):
+        """{(a, b): (n_ell, n_bins)} observer templates of the basis kernels (a ≤ b; a cross
+        spectrum with the basis ``basis_b`` of tracer B: every pair)."""
         _, got, prof = self._profiles(cosmo, basis, None)
-        return self._estimate(got, prof)
+        if basis_b is None:
+            return self._estimate(got, prof)
+        _, got_b, prof_b = self._profiles(cosmo, basis_b, None)
+        return self._estimate(got, prof, got_b, prof_b)
 
-    def correction(self, cosmo, tracer, terms):
-        """E_ℓ[m] (n_ell, n_bins) of one tracer (direct path)."""
+    def correction(self, cosmo, tracer, terms, tracer_b=None):
+        """E_ℓ[m] (n_ell, n_bins) of one tracer, or of the cross spectrum with ``tracer_b``
+        (direct path)."""
         _, _, prof = self._profiles(cosmo, tracer, terms)
-        return self._estimate(["m"], prof.sum(0)[None])["m", "m"]
+        if tracer_b is None:
+            return self._estimate(["m"], prof.sum(0)[None])["m", "m"]
+        _, _, prof_b = self._profiles(cosmo, tracer_b, terms)
+        return self._estimate(["m"], prof.sum(0)[None], ["m"], prof_b.sum(0)[None])["m", "m"]
 
 
 class CurvedLikelihood(Likelihood):
@@ -534,7 +658,7 @@ def forward_model(cfg, srv, params, dv, mask, fiducial):
         cosmo_keys=[k for k in COSMO_PARAMS if k in cosmo_free or k in cfg["fixed"]],
         cosmo_free=cosmo_free, shot_noise_subtracted=cfg["data"]["shot_noise_subtracted"])
     if srv.observer_on:
-        model.observer = CurvedObserver(cfg, model)
+        model.observer = CurvedObserver(cfg, model.engine, model.edges, model.ells)
     if cfg["effects"].get("observer_motion") == "conditioned":
         model.motion = MotionConditioning(cfg["observer"].get("speed", CMB_DIPOLE_SPEED))
     return model

@@ -22,6 +22,10 @@ x^X = (1, b1_X, f_NL(b1_X − p_X), b_e,X, 𝒬_X)), hence
 
 T^XY_ab = M_XY[multipoles of Z^X_a Z^Y_b^* P_m] (a ≤ b symmetrised for autos). The direct path
 recomputes every spectrum from the tracers and must agree to 1e-10 (tests).
+
+With ``engine.kind: curved_sky`` the spectra come from the curved-sky engine instead
+(:mod:`likelihood.model.curved_multitracer`: same Spectrum records, templates, design and
+MultiLikelihood; the wide-angle odd multipoles included).
 """
 from __future__ import annotations
 
@@ -30,6 +34,7 @@ import warnings
 
 import numpy as np
 
+from ..config.engine import is_curved
 from ..config.multitracer import parameter_table
 from ..data import DataVector, check_covariance, condition_number
 from ..errors import ConfigError, DataError
@@ -64,8 +69,10 @@ class Spectrum:
         self.monopole = np.repeat(np.array([l == 0 for l in part.ells], float), n_b)
         #: the flat 1/n̄ subtracted from a measured auto monopole (0 for crosses)
         self.sn_flat = self.monopole * noise_scale * sn_sub if self.auto else 0.0 * self.monopole
+        #: the plane-parallel operator's white-noise response (the curved-sky engine gives its
+        #: own noise template: model/curved_multitracer.py)
         self.noise_row = (operator.white_noise_response() * noise_scale
-                          if noise_name is not None else None)
+                          if noise_name is not None and isinstance(operator, WindowMatrix) else None)
 
     @property
     def label(self):
@@ -89,6 +96,10 @@ class MultiForwardModel:
         self.mask = np.concatenate([s.mask for s in spectra])
         self.sn_flat = np.concatenate([s.sn_flat for s in spectra])
         self.observer_on = spectra[0].observer is not None
+
+    def engine_line(self):
+        """One line for ``describe``."""
+        return "engine: plane-parallel (kernel at the effective redshift, window convolution)"
 
     # --- direct path ----------------------------------------------------------------------------
     def tracer(self, values, name, i=0):
@@ -202,6 +213,17 @@ class MultiForwardModel:
             cols += [(f"{par}_{n}", None) for par in self.lin_free[n]]
         return cols
 
+    def x_point(self, vals):
+        """The coefficient vector x of one point (``vals``: name → float; scalar fast path)."""
+        fnl = vals["fnl"]
+        return np.array([1.0 if name is None else (vals[name] if p is None else
+                                                   fnl * (vals[name] - vals[p]))
+                         for name, p in self._layout])
+
+    @functools.cached_property
+    def _layout(self):
+        return self.x_layout()
+
     def coefficients(self, values):
         """(n, Σ_X n_basis_X) coefficient vectors x^X of all tracers side by side."""
         layout = self.x_layout()
@@ -260,7 +282,6 @@ class MultiLikelihood(Likelihood):
         self._d_w = self._chol_inv @ (self.data + self._sn_shift)
         self._dd = float(self._d_w @ self._d_w)
         self._templates = self._whitened_templates(cosmo)
-        self._x_spec = forward.x_layout()     # scalar fast path: what feeds each x column
         self._setup_analytic(getattr(cfg, "_analytic", []))
 
     # --- analytic marginalisation over linear parameters ------------------------------------------
@@ -341,9 +362,7 @@ class MultiLikelihood(Likelihood):
                 lp -= 0.5 * ((v - mean[i]) * inv_sig[i]) ** 2
         vals = dict(self._fixed_floats)
         vals.update(zip(self.parameter_names, th))
-        fnl = vals["fnl"]
-        x = np.array([1.0 if name is None else (vals[name] if p is None else fnl * (vals[name] - vals[p]))
-                      for name, p in self._x_spec])
+        x = self.forward.x_point(vals)
         tpl = self._templates
         c = x[tpl["ia"]] * x[tpl["ib"]]
         noise = [vals[n] for n in tpl["noise_names"]]
@@ -442,6 +461,7 @@ class MultiLikelihood(Likelihood):
                                          f"p {t['p']:g})" for t in self.forward.tracers),
                  f"effects on: {', '.join(self.effects) or 'none'}; observer term: "
                  + (f"yes ({cfg['observer']['field']})" if self.observer_on else "no"),
+                 self.forward.engine_line(),
                  f"data: {self.data.size} points in {len(self.forward.spectra)} spectra"]
         for s in self.forward.spectra:
             k = s.part.k_eff[s.mask.reshape(len(s.part.ells), -1).any(0)]
@@ -580,6 +600,21 @@ def mock_covariance(cfg, layout, mask, take):
     return mc
 
 
+def warn_plane_parallel(srv, cosmo, spectra):
+    """Say where the plane-parallel kernel is stretched, and that odd multipoles of a cross
+    spectrum miss the wide-angle dipole (the curved-sky engine has it)."""
+    from . import factories as fac
+    for s in spectra:
+        fac.warn_regime(srv, cosmo, s.part, s.mask, srv.ic)
+        fitted = s.mask.reshape(len(s.part.ells), -1).any(1)
+        if not s.auto and any(f for l, f in zip(s.part.ells, fitted) if l % 2):
+            warnings.warn(f"spectrum {s.label}: odd multipoles fitted with the plane-parallel model; "
+                          "the wide-angle dipole ~ (b_X - b_Y) P/(k chi) (not included) is of the "
+                          "same order as the Doppler dipole at every k: use engine.kind: curved_sky "
+                          "or read the README's regime of validity", tr.PlaneParallelWarning,
+                          stacklevel=3)
+
+
 def build_multi(cfg):
     """The :class:`MultiLikelihood` of a validated multi-tracer config."""
     from . import factories as fac
@@ -589,23 +624,21 @@ def build_multi(cfg):
     srv = fac.survey(cfg, cosmo)
     fiducial = fiducial_values(cfg, known)          # defaults of the table: the tracers entries
     sv, file_sv, take = data_spectra(cfg, srv)
-    k_theory = theory_k_grid()
-    spectra = spectra_models(cfg, srv, sv, k_theory)
     cosmo_free = [n for n in params.names if n in COSMO_PARAMS]
-    forward = MultiForwardModel(
-        srv, cfg["tracers"], spectra, k_theory, held=held_values(fiducial, params.fixed),
-        lin_free={t["name"]: [p for p in ("b_e", "s") if params.is_free(f"{p}_{t['name']}")]
-                  for t in cfg["tracers"]},
-        cosmology=functools.partial(fac.cosmology, cfg),
-        cosmo_keys=[k for k in COSMO_PARAMS if k in cosmo_free or k in cfg["fixed"]])
-    for s in spectra:
-        fac.warn_regime(srv, cosmo, s.part, s.mask, srv.ic)
-        fitted = s.mask.reshape(len(s.part.ells), -1).any(1)
-        if not s.auto and any(f for l, f in zip(s.part.ells, fitted) if l % 2):
-            warnings.warn(f"spectrum {s.label}: odd multipoles fitted with the plane-parallel model; "
-                          "the wide-angle dipole ~ (b_X - b_Y) P/(k chi) (not included) is of the "
-                          "same order as the Doppler dipole at every k: read the README's regime of "
-                          "validity", tr.PlaneParallelWarning, stacklevel=2)
+    common = dict(held=held_values(fiducial, params.fixed),
+                  lin_free={t["name"]: [p for p in ("b_e", "s") if params.is_free(f"{p}_{t['name']}")]
+                            for t in cfg["tracers"]},
+                  cosmology=functools.partial(fac.cosmology, cfg),
+                  cosmo_keys=[k for k in COSMO_PARAMS if k in cosmo_free or k in cfg["fixed"]])
+    if is_curved(cfg):                               # engine.kind: curved_sky
+        from .curved_multitracer import forward_model
+        forward = forward_model(cfg, srv, sv, cosmo_free, **common)
+    else:
+        k_theory = theory_k_grid()
+        forward = MultiForwardModel(srv, cfg["tracers"], spectra_models(cfg, srv, sv, k_theory),
+                                    k_theory, **common)
+        warn_plane_parallel(srv, cosmo, forward.spectra)
+    spectra = forward.spectra
     kind, mock_cov = cfg["covariance"]["kind"], None
     if kind in ("file", "mocks"):
         if kind == "file":

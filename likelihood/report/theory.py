@@ -118,6 +118,10 @@ def spectra_theory_report(cfg, out_path, k=None, fnl=None):
         lines.append("  (f_NL = 0: the '+fNL' component equals the Newtonian one; show it with --fnl VALUE)")
     if cfg["effects"]["observer"]:
         lines.append("  (the observer term is not shown for several tracers)")
+    if is_curved(cfg):
+        lines.append("  (engine.kind: curved_sky: these are the plane-parallel kernel's multipoles; "
+                     "the curved-sky comparison term by term covers one tracer: the cross dipole's "
+                     "wide-angle part is in the fit's model, not here)")
     return lines
 
 

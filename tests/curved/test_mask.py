@@ -438,6 +438,21 @@ def test_masked_radial_field(cosmo):
                                              ic, res)
         for p in ref:
             assert np.max(np.abs(ref[p] - ours[p])) < 1e-10 * scale
+    # cross spectra (the fields of tracer B carry F_0; every pair, odd ℓ as Π_ℓ): masked with
+    # M = 1 equals full sky, and the symmetrised auto templates are T_ab + T_ba of the cross
+    # ones (T_aa = T_aa): F_ℓ[a] F_0[b] + F_ℓ[b] F_0[a] by definition
+    for ic in ("none", "global"):
+        two = dict(names_b=["a", "b"], profiles_b=prof)
+        cross = radial_field_templates(shell, edges, ["a", "b"], prof, (0, 1, 2), ic, res, **two)
+        ours = masked_radial_field_templates(shell, FULL_SKY, edges, ["a", "b"], prof, (0, 1, 2),
+                                             ic, res, **two)
+        auto = radial_field_templates(shell, edges, ["a", "b"], prof, (0, 1, 2), ic, res)
+        assert sorted(cross) == [("a", "a"), ("a", "b"), ("b", "a"), ("b", "b")]
+        for p in cross:
+            assert np.max(np.abs(cross[p] - ours[p])) < 1e-10 * scale
+        assert np.max(np.abs(auto["a", "b"] - cross["a", "b"] - cross["b", "a"])) < 1e-12 * scale
+        assert np.max(np.abs(auto["a", "a"] - cross["a", "a"])) < 1e-12 * scale
+        assert np.max(np.abs(cross["a", "b"][1] - cross["b", "a"][1])) > 1e-3 * scale
     # direct quadrature over the cap f_sky = 0.25 for the single profile m = exp(−r/800)
     f_sky = 0.25
     kc = 0.5 * (edges[0] + edges[1])

@@ -22,19 +22,16 @@ from likelihood.theory.cosmology import Cosmology
 B_A, B_B = 2.5, 1.0
 
 
-def _engine_and_expansion(r1, r2, edges):
-    cosmo = Cosmology.from_preset("planck2018", transfer="eh98_nowiggle")   # no BAO wiggles in n
+def shell_redshift(cosmo, r1, r2):
+    """(z at the pair-weighted distance r_eff of the shell r1..r2, 1/⟨x⟩ = ∫ r w² dr / ∫ r² w² dr)."""
     r_eff = 0.75 * (r2 ** 4 - r1 ** 4) / (r2 ** 3 - r1 ** 3)
-    inv_x = 0.5 * (r2 ** 2 - r1 ** 2) / ((r2 ** 3 - r1 ** 3) / 3.0)      # ∫ r w² dr / ∫ r² w² dr
-    z = _z_at(cosmo, r_eff)
+    inv_x = 0.5 * (r2 ** 2 - r1 ** 2) / ((r2 ** 3 - r1 ** 3) / 3.0)
+    return _z_at(cosmo, r_eff), inv_x
 
-    def cross(a, b):
-        return multipole_templates(cosmo, Shell(r1, r2), edges, TracerCoefficients(b=a),
-                                   ("density", "rsd"), tracer_b=TracerCoefficients(b=b),
-                                   terms_b=("density", "rsd"), ells=(1, 3), snapshot_z=z,
-                                   resolution=EstimatorResolution(q_range=1.5)).combine({})
 
-    engine = cross(B_A, B_B) - cross(B_B, B_A)
+def expansion(cosmo, z, inv_x, edges, b_a=B_A, b_b=B_B):
+    """(2, n_bins): Π_1^AB − Π_1^BA and Π_3^AB − Π_3^BA of the first-order expansion
+    (module docstring), mode-averaged over the bins with the estimator's k² weight."""
     f = float(cosmo.growth_rate(z))
     t, u = np.polynomial.legendre.leggauss(64)
     p1, p3 = [], []
@@ -47,8 +44,21 @@ def _engine_and_expansion(r1, r2, edges):
             / np.log((k + h) / (k - h))
         p1.append(np.sum(w * p * (n + 3) / k))
         p3.append(np.sum(w * p * (2 - n) / k))
-    amp = -0.8 * f * (B_A - B_B) * inv_x
-    return engine, amp * np.array([p1, p3])
+    return -0.8 * f * (b_a - b_b) * inv_x * np.array([p1, p3])
+
+
+def _engine_and_expansion(r1, r2, edges):
+    cosmo = Cosmology.from_preset("planck2018", transfer="eh98_nowiggle")   # no BAO wiggles in n
+    z, inv_x = shell_redshift(cosmo, r1, r2)
+
+    def cross(a, b):
+        return multipole_templates(cosmo, Shell(r1, r2), edges, TracerCoefficients(b=a),
+                                   ("density", "rsd"), tracer_b=TracerCoefficients(b=b),
+                                   terms_b=("density", "rsd"), ells=(1, 3), snapshot_z=z,
+                                   resolution=EstimatorResolution(q_range=1.5)).combine({})
+
+    engine = cross(B_A, B_B) - cross(B_B, B_A)
+    return engine, expansion(cosmo, z, inv_x, edges)
 
 
 def test_wide_angle_odd_multipoles_of_a_cross_spectrum():

@@ -218,8 +218,16 @@ def test_analytic_marginalisation_equals_numerical_integral(prior):
     Gaussian integral over linear parameters): the marginal log-likelihood difference between two
     points equals the log of the likelihood integrated over the amplitudes numerically (2-D
     trapezoid over a grid, the amplitudes sampled as ordinary parameters), to 1e-6."""
+    check_analytic_marginalisation(TWO, prior, np.linspace(0.7, 1.3, 241))
+
+
+def check_analytic_marginalisation(base, prior, grid, build=_build):
+    """The two-tracer config ``base`` with both shot-noise amplitudes sampled (prior ``prior``)
+    and marginalised analytically: the marginal ln L difference of two points against the
+    numerical 2-D integral over the amplitudes on ``grid`` (1e-6); the batch path equals the
+    single-point one."""
     spec = {"gauss": [1.0, 0.1]} if prior == "gauss" else {"flat": [-50.0, 50.0]}
-    sampled = copy.deepcopy(TWO)
+    sampled = copy.deepcopy(base)
     sampled["spectra"][1].pop("shared_nbar")
     sampled["data"]["mock"]["noise"] = True
     pars = {"fnl": {"flat": [-200, 200]}, "b1_bright": {"flat": [0.5, 5]},
@@ -229,9 +237,8 @@ def test_analytic_marginalisation_equals_numerical_integral(prior):
     marg = copy.deepcopy(sampled)
     for n in ("shot_noise_bright", "shot_noise_faint"):
         marg["parameters"][n]["analytic"] = True
-    ls, lm = _build(sampled), _build(marg)
+    ls, lm = build(sampled), build(marg)
     assert lm.parameter_names == ["fnl", "b1_bright", "b1_faint"] and lm.dof == ls.dof
-    grid = np.linspace(0.7, 1.3, 241)
     aa, bb = np.meshgrid(grid, grid, indexing="ij")
 
     def log_integral(th):
