@@ -24,12 +24,17 @@ included), C_J from :class:`~likelihood.curved.estimator.NodeSpectra` = (2/π)�
 (Heavens & Taylor 1995; Yoo & Desjacques 2013). Integral constraints act on a_00(r) only on the
 full sky: C_0 → P C_0 Pᵀ with P = 1 − 1vᵀ (global, v ∝ b) or C_0 → 0 (radial). k bins: the
 covariance of the bin averages Σ_n ω_bn R(k_bn) is the double sum over the Gauss nodes of
-both bins. Full sky only: an angular mask couples M ≠ M' and is refused.
+both bins. Unlike the expectation (smooth in k: 4 nodes per bin), the covariance of two k
+nodes oscillates like cos((k − k') r) over the shell, so the nodes per bin follow
+:func:`covariance_resolution` (Δk r_max/2 + 4). Full sky only: an angular mask couples M ≠ M' and is refused.
 
 Not included: the non-Gaussian (trispectrum) and Poisson-non-Gaussian parts; the observer's
 constrained field (the covariance is that of the field averaged over ν).
 """
 from __future__ import annotations
+
+import math
+from dataclasses import replace
 
 import numpy as np
 
@@ -38,7 +43,20 @@ from .bessel import spherical_jn_all
 from .estimator import (IC_KINDS, BasisKernel, EstimatorResolution, NodeSpectra,
                         projection_rows)
 
-__all__ = ["harmonic_covariance", "spectrum_list"]
+__all__ = ["harmonic_covariance", "spectrum_list", "covariance_resolution"]
+
+#: at most this many Gauss nodes per k bin (the rule asks for more only when Δk r_max > 120)
+MAX_K_NODES = 64
+
+
+def covariance_resolution(shell, edges, resolution=EstimatorResolution()):
+    """The estimator resolution with the Gauss nodes per k bin the covariance needs:
+    max(k_nodes, ⌈Δk r_max/2⌉ + 4), Δk the widest bin. The node-pair covariance oscillates
+    like cos((k − k') r), r ≤ r_max, so a bin of width Δk spans Δk r_max/(2π) periods; an
+    n-point Gauss rule is exact to degree 2n − 1 (measured: docs/curved_covariance.md)."""
+    width = float(np.max(np.diff(np.asarray(edges, dtype=float))))
+    n = max(int(resolution.k_nodes), int(math.ceil(0.5 * width * shell.r_max)) + 4)
+    return replace(resolution, k_nodes=min(n, MAX_K_NODES))
 
 
 def spectrum_list(spectra, names):
@@ -84,6 +102,7 @@ def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="no
 
     ``tracers``: {name: (TracerCoefficients, terms)} (the kernel at the fiducial parameters);
     ``spectra``: [((X, Y), ells), ...] (X carries the Legendre weight; odd ℓ as Π_ℓ);
+    ``resolution``: the estimator's (its k_nodes raised by :func:`covariance_resolution`);
     ``nbar``: {name: n̄ [(h/Mpc)³], number or callable of r} for the shot noise (None or a
     missing name: no noise); ``ic``: none / global / radial; ``edges``: k bin edges [h/Mpc].
     Returns the covariance of the data vector ordered spectrum by spectrum, then ℓ-major
@@ -102,7 +121,8 @@ def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="no
         except (TypeError, ValueError):
             raise ConfigError(f"tracers[{name!r}]: expected (TracerCoefficients, terms)") from None
         basis.append(BasisKernel(name, ((1.0, tc, tuple(terms)),)))
-    ns = NodeSpectra(cosmo, shell, edges, basis, resolution=resolution, snapshot_z=snapshot_z)
+    ns = NodeSpectra(cosmo, shell, edges, basis, resolution=covariance_resolution(
+        shell, edges, resolution), snapshot_z=snapshot_z)
     nt, nr = len(names), ns.r.size
     pairs = [(a, b) for a in range(nt) for b in range(a, nt)]
     c_l = ns.spectra(ns.j_max, pairs)

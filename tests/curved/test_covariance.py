@@ -10,7 +10,7 @@ import pytest
 from numpy.polynomial.legendre import leggauss, legval
 
 from likelihood.curved import TracerCoefficients
-from likelihood.curved.covariance import harmonic_covariance
+from likelihood.curved.covariance import covariance_resolution, harmonic_covariance
 from likelihood.curved.estimator import (BasisKernel, EstimatorResolution, NodeSpectra, Shell,
                                          multipole_templates)
 from likelihood.errors import ConfigError
@@ -19,13 +19,15 @@ from likelihood.theory.cosmology import Cosmology
 COSMO = Cosmology.from_preset("planck2018")
 
 
-def g_direct(ell, J, x, n_mu=128):
-    """g_ℓJ(x) = ½ ∫dμ L_J(μ) L_ℓ(μ) e^{−ixμ} by Gauss–Legendre quadrature: the coefficient
-    of L_J in L_ℓ(μ) e^{−ixμ} = Σ_J (2J+1) L_J(μ) g_ℓJ(x) (Legendre orthogonality; computed
-    here independently of the module's 3j sums)."""
-    mu, w = leggauss(n_mu)
-    lj, ll = legval(mu, [0] * J + [1]), legval(mu, [0] * ell + [1])
-    return 0.5 * np.sum(w * lj * ll * np.exp(-1j * np.outer(x, mu)), axis=1)
+_MU, _WMU = leggauss(128)
+
+
+def g_direct(ell, J, x):
+    """g_ℓJ(x) = ½ ∫dμ L_J(μ) L_ℓ(μ) e^{−ixμ} by 128-point Gauss–Legendre quadrature (x any
+    shape): the coefficient of L_J in L_ℓ(μ) e^{−ixμ} = Σ_J (2J+1) L_J(μ) g_ℓJ(x) (Legendre
+    orthogonality; computed here independently of the module's 3j sums)."""
+    lj, ll = legval(_MU, [0] * J + [1]), legval(_MU, [0] * ell + [1])
+    return np.exp(-1j * np.multiply.outer(x, _MU)) @ (0.5 * _WMU * lj * ll)
 
 
 def draw_multipoles(ns, c_l, noise, spectra, ics, n_real, seed):
@@ -57,7 +59,7 @@ def draw_multipoles(ns, c_l, noise, spectra, ics, n_real, seed):
         sign = (-1.0) ** np.arange(J, 0, -1)
         a = np.concatenate([np.conj(zm[:, ::-1]) * sign[None, :, None],
                             z0[:, None, :].astype(complex), zm], axis=1)   # M = −J..J
-        rows = {l: np.array([g_direct(l, J, kk * r) for kk in ns.k]) * b[None, :] for l in ells}
+        rows = {l: g_direct(l, J, np.outer(ns.k, r)) * b[None, :] for l in ells}
         variants = {"all": a} if J else {}
         if J == 0:
             for ic in ics:
@@ -103,21 +105,23 @@ SPECTRA = [(("A", "A"), (0, 2)), (("A", "B"), (0, 1, 2, 3)), (("B", "B"), (0, 2,
 
 def test_covariance_equals_monte_carlo_of_the_harmonic_coefficients():
     """Wick/Isserlis theorem (Isserlis 1918) applied to the estimator's harmonic form, checked
-    against the sample covariance of 1500 draws of Gaussian a_JM(r) with the covariance
+    against the sample covariance of 1000 draws of Gaussian a_JM(r) with the covariance
     C_J(r1, r2) of NodeSpectra (two tracers, auto and cross, even and odd ℓ, f_NL = 10,
     shot noise; the three integral constraints from the same draws). Every element within 5
     of its Monte-Carlo standard error, and the mean squared normalised deviation within
-    0.75–1.25 (its expected value is 1 when the formula is right). The sample mean agrees
+    0.75–1.25 (its expected value is 1 when the formula is right; measured max |z| 2.5–2.6,
+    mean z² 1.07–1.09). The sample mean agrees
     with the engine's expectation (multipole_templates) within 5 standard errors."""
     shell = Shell(400.0, 600.0)
     edges = np.array([0.004, 0.010, 0.016, 0.022])
     res = EstimatorResolution(j_factor=0.7, k_nodes=2)
     basis = [BasisKernel("A", ((1.0, A, TERMS_A),)), BasisKernel("B", ((1.0, B, TERMS_B),))]
-    ns = NodeSpectra(COSMO, shell, edges, basis, resolution=res)
+    ns = NodeSpectra(COSMO, shell, edges, basis,
+                     resolution=covariance_resolution(shell, edges, res))   # the same k nodes
     c_l = ns.spectra(ns.j_max, [(0, 0), (0, 1), (1, 1)])
     noise = [1.0 / (ns.wr * ns.r ** 2 * NBAR[n]) for n in "AB"]
     ics = ("none", "global", "radial")
-    n_real = 1500
+    n_real = 1000
     draws = draw_multipoles(ns, c_l, noise, SPECTRA, ics, n_real, seed=11)
     for ic in ics:
         cov = harmonic_covariance(COSMO, shell, edges, {"A": (A, TERMS_A), "B": (B, TERMS_B)},
@@ -137,3 +141,91 @@ def test_covariance_equals_monte_carlo_of_the_harmonic_coefficients():
         sl = slice(6, 6 + t.size)
         err = np.sqrt(np.diag(cov)[sl] / n_real)
         assert np.all(np.abs(x[:, sl].mean(0) - t) < 5 * err)
+
+
+def fkp_monopole_covariance(power, r0, r1, edges, n_per_bin=400):
+    """Feldman, Kaiser & Peacock (1994, §2.4) Gaussian covariance of the monopole of an
+    isotropic spectrum with the window's exact transform, independent of the harmonic route:
+    <F(k)F*(k')> ≈ P W₂(k − k') with W₂(q) = ∫ w² e^{−iq·x} d³x = 4π[(sin qr − qr cos qr)/q³]
+    between the shell's radii, so Cov(b, b') = (2/I₂²) ⟨⟨P(k)P(k')|W₂(k − k')|²⟩⟩ over the
+    3-d bins. The angle between k and k' is integrated analytically in q = |k − k'|
+    (∫dμ f = ∫ q f dq/(k k')); k, k' by the trapezoid rule (n_per_bin nodes per bin)."""
+    def w2(q):
+        f = lambda r: (np.sin(q * r) - q * r * np.cos(q * r)) / q ** 3
+        return 4 * np.pi * (f(r1) - f(r0))
+    i2 = 4 * np.pi * (r1 ** 3 - r0 ** 3) / 3
+    qg = np.concatenate([np.linspace(1e-7, 0.05, 200001), np.linspace(0.05, 2.0, 200001)[1:]])
+    integ = qg * w2(qg) ** 2
+    cum = np.concatenate([[0], np.cumsum(0.5 * (integ[1:] + integ[:-1]) * np.diff(qg))])
+    upper = cum[-1] - cum + integ[-1] * qg[-1] / 2          # + the q⁻³ tail beyond the grid
+    nb = edges.size - 1
+    ks = [np.linspace(edges[b], edges[b + 1], n_per_bin) for b in range(nb)]
+    vol = 4 * np.pi * (edges[1:] ** 3 - edges[:-1] ** 3) / 3
+    out = np.zeros((nb, nb))
+    for a in range(nb):
+        for b in range(nb):
+            k, kp = ks[a][:, None], ks[b][None, :]
+            mu_int = (np.interp(np.abs(k - kp), qg, upper) - np.interp(k + kp, qg, upper)) / (k * kp)
+            f = k ** 2 * kp ** 2 * power(k) * power(kp) * mu_int
+            val = np.trapezoid(np.trapezoid(f, ks[b], axis=1), ks[a])
+            out[a, b] = 2 / i2 ** 2 * 8 * np.pi ** 2 * val / (vol[a] * vol[b])
+    return out
+
+
+def test_large_volume_limit_isotropic_power_against_fkp(no_growth):
+    """Isotropic power (density only, D = 1) in a full-sky shell 1000–2000 Mpc/h, k Δr = 30–90:
+    the monopole covariance against the FKP (1994) form with the window's exact transform
+    (above): diagonal within 2 % (measured 0.7–1.3 %), adjacent bins within 1 % (measured
+    ≤ 0.3 %). And the diagonal-in-k Gaussian form of likelihood.data.gaussian_covariance
+    (Grieb et al. 2016, eq. 15, V = the shell volume) holds for the row sums (total covariance
+    of a bin with all others) of the interior bins: ℓ = 0 within 1 % (measured ≤ 0.4 %),
+    ℓ = 2 within 3 % (measured 1.3–2.5 %), ℓ = 0 × 2 below 1 % of √(C₀₀C₂₂). The diagonal
+    alone is 15 % lower: the sharp shell leaks ~1.5/(Δk Δr) of a bin's variance into its
+    neighbours (adjacent-bin correlation 0.07)."""
+    from likelihood.data import gaussian_covariance
+    from likelihood.observation.matrix import KBins
+    cosmo = no_growth(COSMO)
+    r0, r1, nbar = 1000.0, 2000.0, 1e-3
+    edges = np.arange(0.03, 0.0901, 0.01)
+    n = edges.size - 1
+    cov = harmonic_covariance(cosmo, Shell(r0, r1), edges,
+                              {"A": (TracerCoefficients(1.0), ("density",))},
+                              [(("A", "A"), (0, 2))], {"A": nbar}, ic="none")
+    ref = fkp_monopole_covariance(lambda k: cosmo.power(k, 0) + 1 / nbar, r0, r1, edges)
+    assert np.allclose(np.diag(cov[:n, :n]), np.diag(ref), rtol=0.02)
+    assert np.allclose(np.diag(cov[:n, :n], 1), np.diag(ref, 1), rtol=0.01)
+    kb = KBins.from_edges(edges, 4 * np.pi / 3 * (r1 ** 3 - r0 ** 3))
+    g = gaussian_covariance(kb.k_eff, cosmo.power(kb.k_eff, 0)[:, None], 1 / nbar, kb.n_modes,
+                            (0, 2))
+    inner = slice(1, n - 1)
+    rows0, rows2 = cov[:n, :n].sum(1), cov[n:, n:].sum(1)
+    assert np.allclose(rows0[inner], np.diag(g)[:n][inner], rtol=0.01)
+    assert np.allclose(rows2[inner], np.diag(g)[n:][inner], rtol=0.03)
+    cross = cov[:n, n:].sum(1) / np.sqrt(np.diag(g)[:n] * np.diag(g)[n:])
+    assert np.all(np.abs(cross[inner]) < 0.01)
+    assert np.all(np.diag(cov)[:n] / np.diag(g)[:n] < 0.9)
+
+
+def test_large_volume_limit_kaiser_against_gaussian_form():
+    """Kaiser (1987) redshift-space power in snapshot mode (b = 1.5, z = 0.5), shell
+    1000–2000 Mpc/h: the row sums of every ℓ, ℓ' block (ℓ = 0, 2, 4) of the interior bins
+    against the plane-parallel Gaussian form (Grieb et al. 2016, eq. 15; likelihood.data)
+    with the shell volume: within 5 % (measured ≤ 4 %, the remainder being leakage beyond the
+    neighbouring bins and wide-angle terms)."""
+    from likelihood.data import gaussian_covariance
+    from likelihood.observation.matrix import KBins
+    r0, r1, z, b, nbar = 1000.0, 2000.0, 0.5, 1.5, 1e-3
+    edges = np.arange(0.03, 0.0901, 0.01)
+    n = edges.size - 1
+    cov = harmonic_covariance(COSMO, Shell(r0, r1), edges,
+                              {"A": (TracerCoefficients(b), ("density", "rsd"))},
+                              [(("A", "A"), (0, 2, 4))], {"A": nbar}, ic="none", snapshot_z=z)
+    kb = KBins.from_edges(edges, 4 * np.pi / 3 * (r1 ** 3 - r0 ** 3))
+    f, p = float(COSMO.growth_rate(z)), COSMO.power(kb.k_eff, z)
+    g = gaussian_covariance(kb.k_eff, np.column_stack([b * b * p, 2 * b * f * p, f * f * p]),
+                            1 / nbar, kb.n_modes, (0, 2, 4))
+    for i in range(3):
+        for j in range(i, 3):
+            rows = cov[i * n:(i + 1) * n, j * n:(j + 1) * n].sum(1)[1:4]
+            want = np.diag(g[i * n:(i + 1) * n, j * n:(j + 1) * n])[1:4]
+            assert np.allclose(rows, want, rtol=0.05), (i, j, rows / want)
