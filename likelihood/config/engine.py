@@ -19,6 +19,10 @@ the curved-sky route (likelihood.curved; docs/curved_sky.md, "Configuration").
       lensing: true, isw: true, time_delay: true   # integrated terms: curved_sky only
                                                    #   (default on there, off in snapshot mode)
 
+Covariance: ``covariance.kind: harmonic`` (curved_sky, full sky only) is the Gaussian
+covariance of the estimator from the harmonic expansion at the fiducial parameters
+(likelihood.curved.covariance); refused with a cap or a map and with the plane-parallel engine.
+
 Observer term (effects.observer): available with the none and global integral constraints, on the
 full sky or with an angular mask (cap or map); with the radial one it vanishes exactly (the
 field is isotropic about the observer, so each distance's mean inside the mask is the field) and
@@ -107,6 +111,9 @@ def check_engine(cfg, src):
             raise ConfigError(f"{src}: survey.geometry.mask: a HEALPix mask is modelled by "
                               "engine.kind: curved_sky only; the plane-parallel engine takes a "
                               "window from randoms (shape: randoms)")
+        if cfg["covariance"]["kind"] == "harmonic":
+            raise ConfigError(f"{src}: covariance.kind: harmonic is the curved-sky covariance; "
+                              "it needs engine.kind: curved_sky (use gaussian, file or mocks)")
         cfg["engine"] = {}
         return
     geo = cfg["survey"]["geometry"]
@@ -124,6 +131,10 @@ def check_engine(cfg, src):
             raise ConfigError(f"{src}: survey.geometry.mask: a HEALPix mask needs healpy, the "
                               "optional extra 'healpix' (pip install \"ergofit[healpix]\")") \
                 from None
+    if masked and cfg["covariance"]["kind"] == "harmonic":
+        raise ConfigError(f"{src}: covariance.kind: harmonic is computed for the full sky only "
+                          "(an angular mask couples the harmonic orders); use shape: shell "
+                          "without a mask, or covariance.kind gaussian, file or mocks")
     if not eff["window"]:
         raise ConfigError(f"{src}: effects.window: false is not possible with engine.kind: "
                           "curved_sky (the survey's shell is the window it models); set it true")
