@@ -56,8 +56,11 @@ def main():
     ratio = np.diag(cov) / np.diag(simple.covariance_full)
     for i, l in enumerate(f.ells):
         r = ratio[i * nb:(i + 1) * nb]
+        block = cov[i * nb:(i + 1) * nb, i * nb:(i + 1) * nb]
+        rows = block[1:-1].sum(1) / np.diag(simple.covariance_full)[i * nb:(i + 1) * nb][1:-1]
         print(f"  l = {l}: variance harmonic/simple, first bins: "
-              + ", ".join(f"{x:.3f}" for x in r[:5]) + f"; median over bins {np.median(r):.3f}")
+              + ", ".join(f"{x:.3f}" for x in r[:5]) + f"; median over bins {np.median(r):.3f}; "
+              f"row sums of the interior bins / simple: {rows.min():.3f}-{rows.max():.3f}")
     out = {}
     for name, lik in (("simple (plane-parallel Gaussian, shell volume)", simple),
                       ("harmonic (curved sky)", harmonic)):

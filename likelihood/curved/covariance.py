@@ -96,8 +96,20 @@ def _noise_diag(nbar, name, ns):
     return 1.0 / (ns.wr * ns.r ** 2 * n)
 
 
+def _bin_nodes(ns, k_weights, nb):
+    """(k nodes (n_bins n,), weights (n_bins, n)): the Gauss nodes of ``ns`` or the caller's."""
+    if k_weights is None:
+        return ns.k, ns.wk
+    k, w = (np.asarray(a, dtype=float) for a in k_weights)
+    if k.ndim != 2 or k.shape != w.shape or k.shape[0] != nb or np.any(k <= 0) \
+            or np.any(w < 0) or np.any(w.sum(1) <= 0):
+        raise ConfigError(f"k_weights: expected (k, weights) of shape ({nb}, n), k > 0, "
+                          "weights >= 0 with a positive sum per bin")
+    return k.ravel(), w / w.sum(1, keepdims=True)
+
+
 def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="none",
-                        resolution=EstimatorResolution(), snapshot_z=None):
+                        resolution=EstimatorResolution(), snapshot_z=None, k_weights=None):
     """Gaussian covariance of the bin-averaged multipoles (module docstring).
 
     ``tracers``: {name: (TracerCoefficients, terms)} (the kernel at the fiducial parameters);
@@ -105,6 +117,9 @@ def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="no
     ``resolution``: the estimator's (its k_nodes raised by :func:`covariance_resolution`);
     ``nbar``: {name: n̄ [(h/Mpc)³], number or callable of r} for the shot noise (None or a
     missing name: no noise); ``ic``: none / global / radial; ``edges``: k bin edges [h/Mpc].
+    ``k_weights``: optional (k, weights), each (n_bins, n), replacing the Gauss nodes of the
+    bin averages (e.g. the distinct |k| of an FFT lattice in each bin and their mode counts,
+    to compare with a lattice estimator; weights normalised per bin).
     Returns the covariance of the data vector ordered spectrum by spectrum, then ℓ-major
     (n, n), (Mpc/h)⁶. Memory: 8 (J_max + 1) n_r² bytes per pair of tracers.
     """
@@ -130,8 +145,10 @@ def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="no
     v = ns.base / ns.base.sum()
     proj = np.eye(nr) - np.outer(np.ones(nr), v)
     ells = sorted({l for _, _, e in specs for l in e} | {0})
-    jk = spherical_jn_all(ns.j_max + max(ells) + 1, ns.k[:, None] * ns.r[None, :])
-    n_k = ns.k.size
+    nb = ns.edges.size - 1
+    k_nodes, wk = _bin_nodes(ns, k_weights, nb)
+    jk = spherical_jn_all(ns.j_max + max(ells) + 1, k_nodes[:, None] * ns.r[None, :])
+    n_k = k_nodes.size
     # node-level covariance blocks, per (spectrum s, ℓ of s, spectrum t, ℓ of t)
     blocks = {(s, la, t, lb): np.zeros((n_k, n_k)) for s, (_, _, ea) in enumerate(specs)
               for t, (_, _, eb) in enumerate(specs) if t >= s for la in ea for lb in eb}
@@ -160,10 +177,9 @@ def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="no
             blk += (2 * J + 1) * (M[X, Z][ia, :, ib] * M[Y, W][i0, :, i0]
                                   + M[X, W][ia, :, i0] * M[Y, Z][i0, :, ib])
     i2 = 4.0 * np.pi * float(np.sum(ns.wr * ns.r ** 2 * ns.weight ** 2))
-    nb = ns.edges.size - 1
-    avg = np.zeros((nb, n_k))                       # bin averages over the Gauss nodes
+    avg = np.zeros((nb, n_k))                       # bin averages over the k nodes
     for b in range(nb):
-        avg[b, b * (n_k // nb):(b + 1) * (n_k // nb)] = ns.wk[b]
+        avg[b, b * (n_k // nb):(b + 1) * (n_k // nb)] = wk[b]
     sizes = [len(e) * nb for _, _, e in specs]
     off = np.concatenate([[0], np.cumsum(sizes)])
     cov = np.zeros((off[-1], off[-1]))
