@@ -229,3 +229,65 @@ def test_large_volume_limit_kaiser_against_gaussian_form():
             rows = cov[i * n:(i + 1) * n, j * n:(j + 1) * n].sum(1)[1:4]
             want = np.diag(g[i * n:(i + 1) * n, j * n:(j + 1) * n])[1:4]
             assert np.allclose(rows, want, rtol=0.05), (i, j, rows / want)
+
+
+def lattice_bins(n_mesh, box, edges):
+    """The distinct |k| of the FFT lattice in each bin [lo, hi) and their mode counts (full
+    grid), padded to a common length with zero weights: the bin averages of the mocks'
+    estimator (likelihood.observation.estimator bins a mode by lo <= |k| < hi)."""
+    kf = 2 * np.pi / box
+    i = np.fft.fftfreq(n_mesh, 1.0 / n_mesh)
+    n2 = (i[:, None, None] ** 2 + i[None, :, None] ** 2 + i[None, None, :] ** 2).ravel()
+    kk = np.sqrt(n2) * kf
+    ks, ws = [], []
+    for lo, hi in zip(edges[:-1], edges[1:]):
+        u, c = np.unique(n2[(kk >= lo) & (kk < hi)], return_counts=True)
+        ks.append(np.sqrt(u) * kf)
+        ws.append(c.astype(float))
+    n = max(a.size for a in ks)
+    return (np.array([np.pad(a, (0, n - a.size), constant_values=a[-1]) for a in ks]),
+            np.array([np.pad(a, (0, n - a.size)) for a in ws]))
+
+
+def mock_variance_ratio(n_mocks, n_mesh=48, box=1600.0):
+    """Variance of the monopole and quadrupole of Gaussian FFT mocks of a full-sky shell
+    150–400 Mpc/h (likelihood.simulate.simulate_mocks: Kaiser field b = 1.5 at z = 0.1 with the
+    local line of sight, survey mean subtracted, i.e. the global integral constraint) over the
+    harmonic covariance of the snapshot engine with the lattice's |k| in each bin. The box is
+    4 r_max, so the periodic images are beyond the survey's pairs (Poisson summation) and the
+    lattice samples |F(k)|² at its Nyquist rate."""
+    from likelihood.numerics.mesh import Mesh
+    from likelihood.observation.window import ShellWindow
+    from likelihood.simulate.mocks import simulate_mocks
+    r0, r1, z, b = 150.0, 400.0, 0.1, 1.5
+    f = float(COSMO.growth_rate(z))
+    edges = np.arange(0.006, 0.0541, 0.008)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        _, mc = simulate_mocks(Mesh(n_mesh, box), lambda k: COSMO.power(k, z), b, None, f,
+                               ShellWindow(r0, r1), edges, (0, 2), n_mocks, seed=3)
+    cov = harmonic_covariance(COSMO, Shell(r0, r1), edges,
+                              {"A": (TracerCoefficients(b), ("density", "rsd"))},
+                              [(("A", "A"), (0, 2))], None, ic="global", snapshot_z=z,
+                              k_weights=lattice_bins(n_mesh, box, edges))
+    return np.diag(mc.covariance) / np.diag(cov)
+
+
+def test_diagonal_against_fft_mocks_short():
+    """Short version of the slow mock test below: 150 mocks (Monte-Carlo error 12 % per
+    element): every diagonal element within 45 % and their mean within 15 % (measured: mean
+    1.03, extremes 0.92 and 1.16)."""
+    ratio = mock_variance_ratio(150)
+    assert np.all(np.abs(ratio - 1) < 0.45), ratio
+    assert abs(ratio.mean() - 1) < 0.15, ratio
+
+
+@pytest.mark.slow
+def test_diagonal_against_fft_mocks():
+    """2000 FFT mocks (Monte-Carlo error 3.2 % per element): the diagonal of the monopole and
+    quadrupole covariance, the first three bins (k r_max = 2.4–12) included, within 10 % of the
+    mocks' scatter (measured on a 48³ mesh: 0.96–1.09; first three bins ℓ = 0: 1.037, 1.064,
+    1.025; ℓ = 2: 1.017, 1.000, 1.022). With the Gauss nodes of the continuous bins instead of
+    the lattice's |k| the first bins differ by up to 9 % (the README's binning caveat)."""
+    ratio = mock_variance_ratio(2000)
+    assert np.all(np.abs(ratio - 1) <= 0.10), ratio
