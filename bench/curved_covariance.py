@@ -31,12 +31,13 @@ def build_with(raw, path, kind):
     return build(validate(raw, src=path, base_dir=os.path.dirname(os.path.abspath(path))))
 
 
-def main():
+DEMO = os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "configs",
+                    "demo_curved.yaml")
+
+
+def main(path):
     warnings.simplefilter("ignore")
-    here = os.path.dirname(os.path.abspath(__file__))
-    path = sys.argv[1] if len(sys.argv) > 1 else os.path.join(here, "..", "configs",
-                                                               "demo_curved.yaml")
-    os.environ["XDG_CACHE_HOME"] = tempfile.mkdtemp(prefix="ergofit-bench-")
+    os.environ["XDG_CACHE_HOME"] = tempfile.mkdtemp(prefix="ergofit-bench-")   # cold cache
     with open(path) as fh:
         raw = yaml.safe_load(fh)
     simple = build_with(raw, path, "gaussian")          # also fills the template cache
@@ -79,4 +80,4 @@ def main():
 
 
 if __name__ == "__main__":
-    main()
+    main(sys.argv[1] if len(sys.argv) > 1 else DEMO)
