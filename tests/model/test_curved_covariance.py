@@ -34,6 +34,7 @@ def test_harmonic_covariance_built_cached_and_fiducial(write_config, tmp_path):
                  if f.startswith("curved-cov-")]
         assert len(files) == 1
         again = build(write_config(CURVED))
+        assert main(["check", write_config(CURVED)]) == 0       # the command line, from cache
         hot = build(write_config(merge(CURVED, {"data": {"mock": {"truth": {"fnl": 60.0}}}}), name="f.yaml"))
     cov = lik.covariance_full
     np.testing.assert_array_equal(cov, again.covariance_full)
