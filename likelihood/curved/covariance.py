@@ -26,7 +26,8 @@ full sky: C_0 → P C_0 Pᵀ with P = 1 − 1vᵀ (global, v ∝ b) or C_0 → 0
 covariance of the bin averages Σ_n ω_bn R(k_bn) is the double sum over the Gauss nodes of
 both bins. Unlike the expectation (smooth in k: 4 nodes per bin), the covariance of two k
 nodes oscillates like cos((k − k') r) over the shell, so the nodes per bin follow
-:func:`covariance_resolution` (Δk r_max/2 + 4). Full sky only: an angular mask couples M ≠ M' and is refused.
+:func:`covariance_resolution` (Δk r_max/2 + 4). Full sky only: an angular mask couples
+M ≠ M' and is refused.
 
 Not included: the non-Gaussian (trispectrum) and Poisson-non-Gaussian parts; the observer's
 constrained field (the covariance is that of the field averaged over ν).

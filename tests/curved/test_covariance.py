@@ -165,7 +165,8 @@ def fkp_monopole_covariance(power, r0, r1, edges, n_per_bin=400):
     for a in range(nb):
         for b in range(nb):
             k, kp = ks[a][:, None], ks[b][None, :]
-            mu_int = (np.interp(np.abs(k - kp), qg, upper) - np.interp(k + kp, qg, upper)) / (k * kp)
+            mu_int = (np.interp(np.abs(k - kp), qg, upper)
+                      - np.interp(k + kp, qg, upper)) / (k * kp)
             f = k ** 2 * kp ** 2 * power(k) * power(kp) * mu_int
             val = np.trapezoid(np.trapezoid(f, ks[b], axis=1), ks[a])
             out[a, b] = 2 / i2 ** 2 * 8 * np.pi ** 2 * val / (vol[a] * vol[b])

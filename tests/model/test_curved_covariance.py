@@ -35,7 +35,8 @@ def test_harmonic_covariance_built_cached_and_fiducial(write_config, tmp_path):
         assert len(files) == 1
         again = build(write_config(CURVED))
         assert main(["check", write_config(CURVED)]) == 0       # the command line, from cache
-        hot = build(write_config(merge(CURVED, {"data": {"mock": {"truth": {"fnl": 60.0}}}}), name="f.yaml"))
+        hot = build(write_config(merge(CURVED, {"data": {"mock": {"truth": {"fnl": 60.0}}}}),
+                                 name="f.yaml"))
     cov = lik.covariance_full
     np.testing.assert_array_equal(cov, again.covariance_full)
     assert np.allclose(cov, cov.T, rtol=0, atol=1e-12 * np.abs(cov).max())
