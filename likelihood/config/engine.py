@@ -34,6 +34,10 @@ Several tracers (``tracers``): each entry may set its own ``bias_evolution`` or
 ``tracer_table`` (curved_sky only); without them a tracer takes the engine section's
 (check_tracer_evolution).
 
+Covariance: ``covariance.kind: harmonic`` (curved_sky, full sky only) is the Gaussian
+covariance of the estimator from the harmonic expansion at the fiducial parameters
+(likelihood.curved.covariance); refused with a cap or a map and with the plane-parallel engine.
+
 Observer term (effects.observer): available with the none and global integral constraints, on the
 full sky or with an angular mask (cap or map); with the radial one it vanishes exactly (the
 field is isotropic about the observer, so each distance's mean inside the mask is the field) and
@@ -149,6 +153,9 @@ def check_engine(cfg, src):
             if key in cfg["survey"]["geometry"]:
                 raise ConfigError(f"{src}: survey.geometry.{key} applies to engine.kind: "
                                   "curved_sky only; remove it or choose the curved-sky engine")
+        if cfg["covariance"]["kind"] == "harmonic":
+            raise ConfigError(f"{src}: covariance.kind: harmonic is the curved-sky covariance; "
+                              "it needs engine.kind: curved_sky (use gaussian, file or mocks)")
         cfg["engine"] = {}
         return
     geo = cfg["survey"]["geometry"]
@@ -170,6 +177,16 @@ def check_engine(cfg, src):
             raise ConfigError(f"{src}: survey.geometry.{key}: a HEALPix mask needs healpy, the "
                               "optional extra 'healpix' (pip install \"ergofit[healpix]\")") \
                 from None
+    if cfg["covariance"]["kind"] == "harmonic" and ("selection" in geo or shape == "randoms"
+                                                    or cfg.get("tracers")):
+        what = "several tracers" if cfg.get("tracers") else "a radial selection"
+        raise ConfigError(f"{src}: covariance.kind: harmonic is computed for one tracer of "
+                          f"uniform density on a shell; not yet with {what} (use gaussian, "
+                          "file or mocks)")
+    if masked and cfg["covariance"]["kind"] == "harmonic":
+        raise ConfigError(f"{src}: covariance.kind: harmonic is computed for the full sky only "
+                          "(an angular mask couples the harmonic orders); use shape: shell "
+                          "without a mask, or covariance.kind gaussian, file or mocks")
     if not eff["window"]:
         raise ConfigError(f"{src}: effects.window: false is not possible with engine.kind: "
                           "curved_sky (the survey's shell is the window it models); set it true")

@@ -33,7 +33,7 @@ The vocabulary (all sections but ``survey`` optional)::
     observer:   {field: potential | density, smoothing, k_ir, nu_true, speed}
     data:       {file: FILE | mock: {seed, noise, truth: {...}, k_min, k_max, n_bins},
                  ells, k_min, k_max, shot_noise_subtracted}
-    covariance: {kind: gaussian | file | mocks, file: FILE, mocks: GLOB, method: hartlap | t}
+    covariance: {kind: gaussian | file | mocks | harmonic (curved_sky), file: FILE, mocks: GLOB, method: hartlap | t}
     parameters: {NAME: {flat: [lo, hi] | gauss: [mean, sigma] | fixed: x, start, scale, bounds}}
     sampling:   {walkers, max_steps, check_every, tau_factor, tau_rtol, seed, progress,
                  moves: {stretch | differential_evolution | de_snooker: weight},
@@ -337,7 +337,7 @@ SCHEMA = {
         "shot_noise_subtracted": (_bool, True),
     },
     "covariance": {
-        "kind": (_choice("gaussian", "file", "mocks"), "gaussian"),
+        "kind": (_choice("gaussian", "file", "mocks", "harmonic"), "gaussian"),
         "file": (_str, None),
         "mocks": (_str, None),
         "method": (_choice("hartlap", "t"), "hartlap"),

@@ -39,7 +39,7 @@ from .quadrature import composite_gl
 __all__ = ["EstimatorResolution", "Shell", "Templates", "BasisKernel", "multipole_templates",
            "monopole_profiles", "radial_field_templates", "radial_field_multipoles",
            "expected_multipoles", "wigner3j_zero_sq", "resolution_grids", "NodeSpectra",
-           "radial_projection", "bin_average"]
+           "radial_projection", "projection_rows", "bin_average"]
 
 IC_KINDS = ("none", "global", "radial")
 
@@ -773,14 +773,18 @@ def radial_projection(J, ells, c_j, jk, base):
     """(2J+1) Σ_ij G_ℓJ(k r_i) base_i c_J(r_i, r_j) base_j j_J(k r_j), (…, n_ell, n_k), for
     ``jk`` = j_L(k r_i) (L ≤ J + 4, n_k, n_r) and the radial measure ``base`` (see
     :meth:`NodeSpectra.project`)."""
-    coefs = _g_coefficients(J, ells)
-    right = jk[J] * base[None, :]                                        # (k, r)
-    z = c_j @ right.T                                                    # (..., r, k)
-    out = []
-    for l in ells:
-        left = sum(c * jk[L] for L, c in coefs[l].items()) * base[None, :]
-        out.append(np.einsum("kr,...rk->...k", left, z))
+    rows = projection_rows(J, ells, jk, base)
+    z = c_j @ (jk[J] * base[None, :]).T                                  # (..., r, k)
+    out = [np.einsum("kr,...rk->...k", rows[l], z) for l in ells]
     return (2 * J + 1) * np.stack(out, axis=-2)
+
+
+def projection_rows(J, ells, jk, base):
+    """{ℓ: (n_k, n_r)} rows G_ℓJ(k r_i) base_i of the order-J radial projection, G_ℓJ the real
+    form of g_ℓJ (module docstring): F_ℓ(k) = 4π Σ_JM Y_JM(k̂) (−i)^J i^{ℓ mod 2} Σ_i row_i
+    a_JM(r_i). ``jk`` = j_L(k r_i) for L ≤ J + max(ells) (n_k, n_r); G_0J = j_J."""
+    coefs = _g_coefficients(J, ells)
+    return {l: sum(c * jk[L] for L, c in coefs[l].items()) * base[None, :] for l in ells}
 
 
 class NodeSpectra:

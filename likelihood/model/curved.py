@@ -36,8 +36,10 @@ are recomputed at each build). When cosmological parameters are sampled the
 engine runs at every evaluation (seconds each; README, "The curved-sky engine").
 
 The Gaussian covariance (covariance.kind: gaussian) stays the plane-parallel one at the
-effective redshift (likelihood.data.gaussian_covariance); a covariance from mocks or a file is
-used as given.
+effective redshift (likelihood.data.gaussian_covariance); ``covariance.kind: harmonic`` is the
+curved-sky Gaussian covariance of the estimator at the fiducial parameters (full sky: window,
+integral constraint, light cone and fiducial f_NL included; likelihood.curved.covariance),
+cached on disk beside the templates; a covariance from mocks or a file is used as given.
 """
 from __future__ import annotations
 
@@ -499,6 +501,41 @@ class CurvedForwardModel:
         out, _ = self.motion.templates(cosmo, self.shell, self.edges, tracer, terms, self.ells,
                                        res)
         return out
+
+    def harmonic_covariance(self, cosmo, values):
+        """The curved-sky Gaussian covariance of the full data vector (ℓ-major) at the parameter
+        values ``values`` (the fiducial ones): the kernel of :meth:`tracer`, shot noise
+        shot_noise/n̄, the run's integral constraint and resolution (full sky only; the config
+        refuses a mask). Cached on disk (key: the templates' key and the values)."""
+        from ..curved.covariance import harmonic_covariance
+        vals = {k: float(np.atleast_1d(values[k])[0]) for k in ("b1", "fnl", "b_e", "s",
+                                                                 "shot_noise")}
+        path = None
+        if self.disk_cache:
+            key = hashlib.sha256(json.dumps([self.cache_key(cosmo), "covariance-1", vals],
+                                            sort_keys=True).encode()).hexdigest()
+            path = os.path.join(cache_folder(self.cache_dir), f"curved-cov-{key[:24]}.npz")
+            if os.path.isfile(path):
+                try:
+                    with np.load(path) as f:
+                        if str(f["key"]) == key:
+                            return np.array(f["cov"])
+                except (OSError, ValueError, KeyError, EOFError):
+                    pass            # unreadable entry: recompute and overwrite
+        tracer = self.tracer(cosmo, {k: np.atleast_1d(v) for k, v in vals.items()})
+        nbar = self.nbar / vals["shot_noise"] if vals["shot_noise"] > 0 else None
+        cov = harmonic_covariance(cosmo, self.shell, self.edges, {"g": (tracer, self.terms)},
+                                  [(("g", "g"), self.ells)], {"g": nbar}, self.ic,
+                                  self.resolution, self.snapshot_z)
+        if path is not None:
+            try:
+                os.makedirs(os.path.dirname(path), exist_ok=True)
+                open_atomic(path, lambda fh: np.savez(fh, key=np.array(key), cov=cov),
+                            binary=True)
+            except OSError as exc:
+                warnings.warn(f"curved-sky covariance cache {os.path.dirname(path)}: not "
+                              f"writable ({exc}); continuing without cache", stacklevel=3)
+        return cov
 
     def kernel(self, cosmo, values, k, i=0):
         """The plane-parallel kernel at the effective redshift (used only by the Gaussian

@@ -122,7 +122,8 @@ def forward_model(cfg, srv, params, operator, obs, dv, mask, fiducial):
 
 def covariance(cfg, dv, cosmo, forward, fiducial, mask=None):
     """(full covariance, :class:`~likelihood.data.MockCovariance` or None) of the ``covariance``
-    section: a file, mocks, or the analytic Gaussian covariance at the fiducial model.
+    section: a file, mocks, or the analytic Gaussian covariance at the fiducial model
+    (plane-parallel, or with ``kind: harmonic`` the curved-sky one of model/curved.py).
 
     Mocks: the inverse of a sample covariance of n_s mocks is unbiased (after the factor
     (n_s − n_d − 2)/(n_s − 1)) only for n_s > n_d + 2 (Hartlap, Simon & Schneider 2007, eq. 17),
@@ -143,6 +144,8 @@ def covariance(cfg, dv, cosmo, forward, fiducial, mask=None):
             raise DataError(f"{c['mocks']}: mock multipoles/k bins differ from the data vector")
         mc.require(n_used, f"{cfg.path}: covariance.mocks '{c['mocks']}'")
         return mc.covariance, mc
+    if c["kind"] == "harmonic":              # curved sky (model/curved.py)
+        return forward.harmonic_covariance(cosmo, fiducial), None
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", tr.PlaneParallelWarning)
         kern = forward.kernel(cosmo, fiducial, dv.k_eff)
