@@ -36,7 +36,9 @@ Several tracers (``tracers``): each entry may set its own ``bias_evolution`` or
 
 Covariance: ``covariance.kind: harmonic`` (curved_sky, full sky only) is the Gaussian
 covariance of the estimator from the harmonic expansion at the fiducial parameters
-(likelihood.curved.covariance); refused with a cap or a map and with the plane-parallel engine.
+(likelihood.curved.covariance), for one tracer or several (``tracers``); refused with a cap or a
+map, a radial selection, the shared noise of overlapping tracers (``shared_nbar``) and with the
+plane-parallel engine.
 
 Observer term (effects.observer): available with the none and global integral constraints, on the
 full sky or with an angular mask (cap or map); with the radial one it vanishes exactly (the
@@ -177,12 +179,15 @@ def check_engine(cfg, src):
             raise ConfigError(f"{src}: survey.geometry.{key}: a HEALPix mask needs healpy, the "
                               "optional extra 'healpix' (pip install \"ergofit[healpix]\")") \
                 from None
-    if cfg["covariance"]["kind"] == "harmonic" and ("selection" in geo or shape == "randoms"
-                                                    or cfg.get("tracers")):
-        what = "several tracers" if cfg.get("tracers") else "a radial selection"
-        raise ConfigError(f"{src}: covariance.kind: harmonic is computed for one tracer of "
-                          f"uniform density on a shell; not yet with {what} (use gaussian, "
+    if cfg["covariance"]["kind"] == "harmonic" and ("selection" in geo or shape == "randoms"):
+        raise ConfigError(f"{src}: covariance.kind: harmonic is computed for tracers of uniform "
+                          "density on a shell; not yet with a radial selection (use gaussian, "
                           "file or mocks)")
+    shared = [s["pair"] for s in cfg.get("spectra") or [] if "shared_nbar" in s]
+    if cfg["covariance"]["kind"] == "harmonic" and shared:
+        raise ConfigError(f"{src}: covariance.kind: harmonic does not include the shared noise "
+                          f"of overlapping populations yet (shared_nbar of {shared[0][0]} x "
+                          f"{shared[0][1]}); use gaussian, file or mocks")
     if masked and cfg["covariance"]["kind"] == "harmonic":
         raise ConfigError(f"{src}: covariance.kind: harmonic is computed for the full sky only "
                           "(an angular mask couples the harmonic orders); use shape: shell "

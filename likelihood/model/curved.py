@@ -272,6 +272,28 @@ def cached_templates(cache_dir, spec, compute):
     return t
 
 
+def cached_covariance(cache_dir, spec, compute):
+    """A covariance matrix from the disk cache entry of ``spec`` (a JSON-able list of what
+    defines it), or ``compute()`` written there atomically (a warning if not writable)."""
+    key = hashlib.sha256(json.dumps(spec, sort_keys=True).encode()).hexdigest()
+    path = os.path.join(cache_folder(cache_dir), f"curved-cov-{key[:24]}.npz")
+    if os.path.isfile(path):
+        try:
+            with np.load(path) as f:
+                if str(f["key"]) == key:
+                    return np.array(f["cov"])
+        except (OSError, ValueError, KeyError, EOFError):
+            pass            # unreadable entry: recompute and overwrite
+    cov = compute()
+    try:
+        os.makedirs(os.path.dirname(path), exist_ok=True)
+        open_atomic(path, lambda fh: np.savez(fh, key=np.array(key), cov=cov), binary=True)
+    except OSError as exc:
+        warnings.warn(f"curved-sky covariance cache {os.path.dirname(path)}: not "
+                      f"writable ({exc}); continuing without cache", stacklevel=3)
+    return cov
+
+
 class CurvedOperator:
     """What the likelihood and the reports read from an observation operator: the data bins
     and the integral constraint the engine applies (exact forms: docs/curved_sky.md)."""
@@ -510,32 +532,17 @@ class CurvedForwardModel:
         from ..curved.covariance import harmonic_covariance
         vals = {k: float(np.atleast_1d(values[k])[0]) for k in ("b1", "fnl", "b_e", "s",
                                                                  "shot_noise")}
-        path = None
-        if self.disk_cache:
-            key = hashlib.sha256(json.dumps([self.cache_key(cosmo), "covariance-1", vals],
-                                            sort_keys=True).encode()).hexdigest()
-            path = os.path.join(cache_folder(self.cache_dir), f"curved-cov-{key[:24]}.npz")
-            if os.path.isfile(path):
-                try:
-                    with np.load(path) as f:
-                        if str(f["key"]) == key:
-                            return np.array(f["cov"])
-                except (OSError, ValueError, KeyError, EOFError):
-                    pass            # unreadable entry: recompute and overwrite
-        tracer = self.tracer(cosmo, {k: np.atleast_1d(v) for k, v in vals.items()})
-        nbar = self.nbar / vals["shot_noise"] if vals["shot_noise"] > 0 else None
-        cov = harmonic_covariance(cosmo, self.shell, self.edges, {"g": (tracer, self.terms)},
-                                  [(("g", "g"), self.ells)], {"g": nbar}, self.ic,
-                                  self.resolution, self.snapshot_z)
-        if path is not None:
-            try:
-                os.makedirs(os.path.dirname(path), exist_ok=True)
-                open_atomic(path, lambda fh: np.savez(fh, key=np.array(key), cov=cov),
-                            binary=True)
-            except OSError as exc:
-                warnings.warn(f"curved-sky covariance cache {os.path.dirname(path)}: not "
-                              f"writable ({exc}); continuing without cache", stacklevel=3)
-        return cov
+
+        def compute():
+            tracer = self.tracer(cosmo, {k: np.atleast_1d(v) for k, v in vals.items()})
+            nbar = self.nbar / vals["shot_noise"] if vals["shot_noise"] > 0 else None
+            return harmonic_covariance(cosmo, self.shell, self.edges, {"g": (tracer, self.terms)},
+                                       [(("g", "g"), self.ells)], {"g": nbar}, self.ic,
+                                       self.resolution, self.snapshot_z)
+        if not self.disk_cache:
+            return compute()
+        return cached_covariance(self.cache_dir, [self.cache_key(cosmo), "covariance-1", vals],
+                                 compute)
 
     def kernel(self, cosmo, values, k, i=0):
         """The plane-parallel kernel at the effective redshift (used only by the Gaussian

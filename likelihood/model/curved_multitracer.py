@@ -25,7 +25,11 @@ as in the plane-parallel path. Templates are cached on disk per spectrum (like t
 ones); the direct path reruns the engine with each tracer's coefficients and agrees to 1e-10.
 
 The Gaussian covariance (covariance.kind: gaussian) stays the plane-parallel multi-tracer one at
-the effective redshift (likelihood.covariance); mocks or a file are used as given.
+the effective redshift (likelihood.covariance); ``covariance.kind: harmonic`` is the curved-sky
+Gaussian covariance of the estimator of every spectrum (autos, crosses with their odd ℓ, and all
+their cross-covariances) at the fiducial parameters of each tracer
+(:meth:`CurvedMultiForwardModel.harmonic_covariance`; full sky, uniform density, common k bins,
+no shared noise); mocks or a file are used as given.
 """
 from __future__ import annotations
 
@@ -34,8 +38,9 @@ import functools
 import numpy as np
 
 from .curved import (CurvedObserver, CurvedOperator, CurvedSky, TracerBasis, amplitude_matrix,
-                     cached_templates, cosmology_fingerprint, point, tracer_table, warn_regime)
-from ..errors import ConfigError
+                     cached_covariance, cached_templates, cosmology_fingerprint, point,
+                     template_key, tracer_table, warn_regime)
+from ..errors import ConfigError, DataError
 from ..observation.matrix import KBins
 from .multitracer import MultiForwardModel, Spectrum
 
@@ -163,6 +168,41 @@ class CurvedMultiForwardModel(MultiForwardModel):
         return dict(M=np.array(rows + obs_rows + noise_rows), ia=np.array(ia), ib=np.array(ib),
                     n_pairs=len(rows), noise_names=noise_names, sigma8=cosmo.sigma8,
                     growth=cosmo.growth_factor(self.z) / cosmo.growth_factor(0.0))
+
+    # --- covariance -----------------------------------------------------------------------------
+    def harmonic_covariance(self, cosmo, values):
+        """The curved-sky Gaussian covariance (likelihood.curved.covariance.harmonic_covariance,
+        Wick's theorem on the a_JM: docs/curved_covariance.md) of the full data vector, spectrum
+        by spectrum in the config's order, ℓ-major within each, at the parameter values
+        ``values`` (the fiducial ones): each tracer's kernel from :meth:`coefficients_of` (its b1,
+        b_e, s, p, redshift dependence, the shared f_NL), the Poisson noise of tracer X with
+        n̄_X/shot_noise_X, the run's integral constraint and resolution. Cached on disk.
+        Needs the same k bins for every spectrum (DataError); the config refuses shared noise."""
+        from ..curved.covariance import harmonic_covariance
+        edges = self.spectra[0].part.edges
+        for s in self.spectra:
+            if not np.array_equal(s.part.edges, edges):
+                raise DataError(f"{s.part.source}: covariance.kind: harmonic needs the same k bins "
+                                f"for every spectrum ({s.label} differs); give a covariance file")
+        keys = ["fnl"] + [f"{b}_{n}" for n in self.names
+                          for b in ("b1", "p", "b_e", "s", "shot_noise")]
+        vals = {k: float(np.atleast_1d(values[k])[0]) for k in keys}
+        spectra = [(s.pair, tuple(s.part.ells)) for s in self.spectra]
+
+        def compute():
+            tc = {n: (self.coefficients_of(cosmo, vals, n), self.terms) for n in self.names}
+            amp = {n: vals[f"shot_noise_{n}"] for n in self.names}
+            nbar = {n: self.nbar[n] / amp[n] if amp[n] > 0 else None for n in self.names}
+            return harmonic_covariance(cosmo, self.engine.shell, edges, tc, spectra, nbar,
+                                       self.engine.ic, self.engine.resolution,
+                                       self.engine.snapshot_z)
+        if not self.disk_cache:
+            return compute()
+        spec = dict(cosmology_fingerprint(cosmo), engine=self.engine.fingerprint(),
+                    bases={n: self.bases[n].fingerprint() for n in self.names}, nbar=self.nbar,
+                    edges=[float(e) for e in edges], spectra=spectra)
+        return cached_covariance(self.cache_dir, [template_key(spec), "multi-covariance-1", vals],
+                                 compute)
 
     # --- direct path ----------------------------------------------------------------------------
     def coefficients_of(self, cosmo, values, name, i=0):

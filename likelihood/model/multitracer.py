@@ -648,6 +648,8 @@ def build_multi(cfg):
             cov = mock_cov.covariance
         if take is not None:
             cov = cov[np.ix_(take, take)]            # the blocks of the spectra fitted
+    elif kind == "harmonic":                         # curved sky (model/curved_multitracer.py)
+        cov = forward.harmonic_covariance(cosmo, fiducial)
     else:                                            # gaussian (validated)
         cov = analytic_covariance(sv, cosmo, forward, fiducial)
     if cfg["data"].get("mock") is not None:
