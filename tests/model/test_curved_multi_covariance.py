@@ -1,0 +1,114 @@
+"""covariance.kind: harmonic with several tracers on the curved sky
+(CurvedMultiForwardModel.harmonic_covariance): the one-tracer limit against the single-tracer
+harmonic covariance, the two-tracer blocks against a direct call of the library function (itself
+checked against a Monte Carlo of the a_JM: tests/curved/test_covariance.py), the disk cache and
+the command line, and the settings it refuses in one line."""
+import copy
+import os
+import warnings
+
+import numpy as np
+import pytest
+import yaml
+
+from likelihood.cli.commands import main
+from likelihood.config import load_config
+from likelihood.curved import TracerCoefficients
+from likelihood.curved.covariance import harmonic_covariance
+from likelihood.errors import ConfigError
+from tests.model.test_curved_multitracer import ENGINE, MOCK, SHELL, TWO, _build
+
+#: two tracers without shared noise (the harmonic covariance does not include it)
+HARM = copy.deepcopy(TWO)
+HARM["spectra"][1].pop("shared_nbar")
+HARM["spectra"][1]["k_max"] = 0.012                 # a masked bin in the cross spectrum
+HARM["parameters"].pop("shot_noise_bright_faint")
+HARM["parameters"]["shot_noise_faint"] = {"fixed": 1.6}
+HARM["covariance"] = {"kind": "harmonic"}
+HARM["effects"] = {"observer": False, "lensing": False, "isw": False, "time_delay": False}
+HARM["parameters"].pop("nu_obs")            # (integrated and observer terms off: a fast build)
+
+
+@pytest.fixture(autouse=True)
+def _cache_in_tmp(tmp_path, monkeypatch):
+    monkeypatch.setenv("XDG_CACHE_HOME", os.fspath(tmp_path / "cache"))
+
+
+def test_one_tracer_equals_single_tracer_harmonic_covariance():
+    """One tracer under ``tracers`` gives the single-tracer harmonic covariance of the
+    equivalent single-tracer config to 1e-10 (same fiducial b1, b_e, s, f_NL = the mock truth,
+    bias ∝ 1/D(z), shot-noise amplitude 1.3)."""
+    common = {"engine": dict(ENGINE, bias_evolution="inverse_growth"),
+              "effects": {"integral_constraint": "global"}, "covariance": {"kind": "harmonic"}}
+    single = dict(common, run="one", survey={"redshift": 1.2, "nbar": 3.0e-4, "geometry": SHELL},
+                  tracer={"b1": 1.8, "fnl": 0.0, "p": 1.0, "b_e": 1.5, "s": 0.25},
+                  data={"mock": MOCK, "ells": [0, 2]},
+                  parameters={"b1": {"flat": [0.5, 5]}, "fnl": {"flat": [-200, 200]},
+                              "shot_noise": {"fixed": 1.3}})
+    multi = dict(common, run="one", survey={"redshift": 1.2, "geometry": SHELL},
+                 tracers=[{"name": "g", "nbar": 3.0e-4, "b1": 1.8, "b_e": 1.5, "s": 0.25}],
+                 spectra=[{"pair": ["g", "g"], "ells": [0, 2]}], data={"mock": MOCK},
+                 parameters={"b1_g": {"flat": [0.5, 5]}, "fnl": {"flat": [-200, 200]},
+                             "shot_noise_g": {"fixed": 1.3}})
+    ref, lik = _build(single), _build(multi)
+    assert lik.covariance_full.shape == ref.covariance_full.shape == (6, 6)
+    np.testing.assert_allclose(lik.covariance_full, ref.covariance_full, rtol=1e-10, atol=0)
+
+
+def test_two_tracer_blocks_against_the_library(tmp_path, capsys):
+    """Every block (auto–auto, auto–cross with the cross's odd ℓ, cross–cross) equals a direct
+    call of likelihood.curved.covariance.harmonic_covariance with each tracer's kernel written
+    out by hand at its fiducial values: bright b1 = 2.4 constant, faint b1(z) = 1.5 D(z_eff)/D(z)
+    (inverse_growth), f_NL = 10 (the mock truth), shot noise 1/n̄ of bright and 1.6/n̄ of faint
+    (its fixed amplitude); the data mask (k_max of the cross) selects the fitted rows;
+    ``ergofit check`` of the config then runs from the disk cache (exit 0)."""
+    lik = _build(HARM)
+    f = lik.forward
+    cosmo = lik.cosmo
+    d_eff = float(cosmo.growth_factor(1.2, norm="today"))
+    faint_b = lambda z: 1.5 * d_eff / np.asarray(cosmo.growth_factor(z, norm="today"))  # noqa: E731
+    tracers = {"bright": (TracerCoefficients(2.4, 1.0, 0.4, 10.0, 1.0), f.terms),
+               "faint": (TracerCoefficients(faint_b, 1.75, 0.175, 10.0, 1.0), f.terms)}
+    spectra = [(("bright", "bright"), (0, 2)), (("bright", "faint"), (0, 1, 2, 3)),
+               (("faint", "faint"), (0, 2))]
+    edges = lik.data_full.parts[0].edges
+    ref = harmonic_covariance(cosmo, f.engine.shell, edges, tracers, spectra,
+                              {"bright": 1.0e-4, "faint": 2.0e-4 / 1.6}, "global",
+                              f.engine.resolution, None)
+    assert ref.shape == lik.covariance_full.shape == (24, 24)
+    np.testing.assert_allclose(lik.covariance_full, ref, rtol=1e-10,
+                               atol=1e-12 * np.abs(ref).max())
+    # the cross dipole correlates with the auto monopoles (the a_JM are shared): a real block
+    assert np.abs(ref[:3, 9:12]).max() > 1e-3 * np.sqrt(ref[0, 0] * ref[9, 9])
+    mask = lik.mask
+    assert mask.sum() == 20                                  # 4 ℓ of the cross lose one bin
+    np.testing.assert_array_equal(lik.covariance, lik.covariance_full[np.ix_(mask, mask)])
+    with warnings.catch_warnings():        # the command line, from the disk cache
+        warnings.simplefilter("ignore")
+        assert main(["check", _write(tmp_path, HARM)]) == 0
+    assert "harmonic" in capsys.readouterr().out
+    files = os.listdir(tmp_path / "cache" / "ergofit")
+    assert sum(n.startswith("curved-cov-") for n in files) == 1
+
+
+def _write(tmp_path, raw):
+    path = tmp_path / "two.yaml"
+    path.write_text(yaml.safe_dump(dict(raw, output={"folder": os.fspath(tmp_path / "out")}),
+                                   sort_keys=False))
+    return os.fspath(path)
+
+
+@pytest.mark.parametrize("change, words", [
+    (lambda r: r["spectra"][1].update(shared_nbar=2.0e-5), "shared noise"),
+    (lambda r: r["survey"]["geometry"].update(shape="cap", fsky=0.5), "full sky only"),
+])
+def test_refused_in_one_line(tmp_path, capsys, change, words):
+    raw = copy.deepcopy(HARM)
+    change(raw)
+    path = _write(tmp_path, raw)
+    with pytest.raises(ConfigError) as exc:
+        load_config(path)
+    assert words in str(exc.value) and "\n" not in str(exc.value)
+    assert main(["check", path]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "covariance.kind: harmonic" in err[0]
