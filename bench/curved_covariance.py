@@ -1,7 +1,9 @@
 """The curved-sky Gaussian covariance of the estimator (covariance.kind: harmonic) against the
 plane-parallel Gaussian form (covariance.kind: gaussian) on a curved-sky config: the time to
 compute it (cold disk cache), its diagonal against the simple form in the first bins, and the
-Fisher error σ(f_NL) with each covariance (the other sampled parameters marginalised).
+Fisher error σ(f_NL) with each covariance (the other sampled parameters marginalised). A config
+with several tracers (e.g. configs/multi_curved.yaml) compares every spectrum's blocks with the
+plane-parallel multi-tracer Gaussian form (likelihood.covariance).
 
     PYTHONPATH=. python3 -P bench/curved_covariance.py [CONFIG]   (default configs/demo_curved.yaml)
 
@@ -49,24 +51,39 @@ def main(path):
     t_warm = time.perf_counter() - t0
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
     f = simple.forward
-    nb = f.n_bins
-    print(f"config: {path}; shell {f.shell.r_min:g}-{f.shell.r_max:g} Mpc/h, {f.ic} integral "
-          f"constraint, terms {', '.join(f.terms)}; {len(f.ells)} multipoles x {nb} bins")
+    multi = hasattr(f, "spectra")
+    if multi:      # blocks (label, n_bins) of the data vector: spectrum by spectrum, ℓ-major
+        shell = f.engine.shell
+        blocks = [(f"{s.label} l = {l}", s.part.n_bins) for s in f.spectra for l in s.part.ells]
+        what = f"{len(f.spectra)} spectra of {len(f.names)} tracers"
+    else:
+        shell = f.shell
+        blocks = [(f"l = {l}", f.n_bins) for l in f.ells]
+        what = f"{len(f.ells)} multipoles x {f.n_bins} bins"
+    print(f"config: {path}; shell {shell.r_min:g}-{shell.r_max:g} Mpc/h, {f.engine.ic if multi else f.ic} "
+          f"integral constraint, terms {', '.join(f.terms)}; {what}, {cov.shape[0]} points")
     print(f"harmonic covariance: {t_cov:.1f} s (cold), build with it from the cache "
           f"{t_warm:.1f} s; peak memory {peak:.0f} MB")
-    ratio = np.diag(cov) / np.diag(simple.covariance_full)
-    for i, l in enumerate(f.ells):
-        r = ratio[i * nb:(i + 1) * nb]
-        block = cov[i * nb:(i + 1) * nb, i * nb:(i + 1) * nb]
-        rows = block[1:-1].sum(1) / np.diag(simple.covariance_full)[i * nb:(i + 1) * nb][1:-1]
-        print(f"  l = {l}: variance harmonic/simple, first bins: "
+    var_simple = np.diag(simple.covariance_full)
+    ratio = np.diag(cov) / var_simple
+    start = 0
+    for label, nb in blocks:
+        sl = slice(start, start + nb)
+        start += nb
+        r = ratio[sl]
+        rows = cov[sl, sl][1:-1].sum(1) / var_simple[sl][1:-1]
+        print(f"  {label}: variance harmonic/simple, first bins: "
               + ", ".join(f"{x:.3f}" for x in r[:5]) + f"; median over bins {np.median(r):.3f}; "
               f"row sums of the interior bins / simple: {rows.min():.3f}-{rows.max():.3f}")
     h = harmonic
-    diag_only = type(h)(h.config, params=h.params, cosmo=h.cosmo, survey=h.survey,
-                        data_full=h.data_full, mask=h.mask, forward=h.forward,
-                        covariance_full=np.diag(np.diag(cov)), mock_cov=None,
-                        fiducial=h.fiducial)
+    if multi:
+        diag_only = type(h)(h.config, h.params, h.cosmo, h.survey, h.data_full, h.forward,
+                            np.diag(np.diag(cov)), h.fiducial, h.known)
+    else:
+        diag_only = type(h)(h.config, params=h.params, cosmo=h.cosmo, survey=h.survey,
+                            data_full=h.data_full, mask=h.mask, forward=h.forward,
+                            covariance_full=np.diag(np.diag(cov)), mock_cov=None,
+                            fiducial=h.fiducial)
     out = {}
     for name, lik in (("simple (plane-parallel Gaussian, shell volume)", simple),
                       ("harmonic (curved sky)", harmonic),

@@ -37,8 +37,7 @@ Several tracers (``tracers``): each entry may set its own ``bias_evolution`` or
 Covariance: ``covariance.kind: harmonic`` (curved_sky, full sky only) is the Gaussian
 covariance of the estimator from the harmonic expansion at the fiducial parameters
 (likelihood.curved.covariance), for one tracer or several (``tracers``); refused with a cap or a
-map, a radial selection, the shared noise of overlapping tracers (``shared_nbar``) and with the
-plane-parallel engine.
+map, a radial selection and with the plane-parallel engine.
 
 Observer term (effects.observer): available with the none and global integral constraints, on the
 full sky or with an angular mask (cap or map); with the radial one it vanishes exactly (the
@@ -183,11 +182,6 @@ def check_engine(cfg, src):
         raise ConfigError(f"{src}: covariance.kind: harmonic is computed for tracers of uniform "
                           "density on a shell; not yet with a radial selection (use gaussian, "
                           "file or mocks)")
-    shared = [s["pair"] for s in cfg.get("spectra") or [] if "shared_nbar" in s]
-    if cfg["covariance"]["kind"] == "harmonic" and shared:
-        raise ConfigError(f"{src}: covariance.kind: harmonic does not include the shared noise "
-                          f"of overlapping populations yet (shared_nbar of {shared[0][0]} x "
-                          f"{shared[0][1]}); use gaussian, file or mocks")
     if masked and cfg["covariance"]["kind"] == "harmonic":
         raise ConfigError(f"{src}: covariance.kind: harmonic is computed for the full sky only "
                           "(an angular mask couples the harmonic orders); use shape: shell "

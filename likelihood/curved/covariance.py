@@ -19,8 +19,10 @@ M sums giving 2J + 1 in both pairings,
     M^XZ_ℓℓ'(k, k') = Σ_ij G_ℓJ(k r_i) b_i C^XZ_J(r_i, r_j) b_j G_ℓ'J(k' r_j),
 
 with C_J including the Poisson shot noise δ_XZ δ_D(r1 − r2)/(r1² n̄_X) (on the radial
-quadrature δ_ij/(ω_i r_i² n̄_i); a shared-noise term of overlapping populations is not
-included), C_J from :class:`~likelihood.curved.estimator.NodeSpectra` = (2/π)∫q²dq P W_J W_J
+quadrature δ_ij/(ω_i r_i² n̄_i)) and, for overlapping populations X ≠ Z sharing n̄_XZ objects per
+volume, N_XZ δ_D(r1 − r2)/r1² with N_XZ = n̄_XZ/(n̄_X n̄_Z) (the Poisson noise of the shared
+objects, common practice in the Gaussian multi-tracer covariance, e.g. the plane-parallel form of
+likelihood.covariance), C_J from :class:`~likelihood.curved.estimator.NodeSpectra` = (2/π)∫q²dq P W_J W_J
 (Heavens & Taylor 1995; Yoo & Desjacques 2013). Integral constraints act on a_00(r) only on the
 full sky: C_0 → P C_0 Pᵀ with P = 1 − 1vᵀ (global, v ∝ b) or C_0 → 0 (radial). k bins: the
 covariance of the bin averages Σ_n ω_bn R(k_bn) is the double sum over the Gauss nodes of
@@ -110,14 +112,17 @@ def _bin_nodes(ns, k_weights, nb):
 
 
 def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="none",
-                        resolution=EstimatorResolution(), snapshot_z=None, k_weights=None):
+                        resolution=EstimatorResolution(), snapshot_z=None, k_weights=None,
+                        cross_noise=None):
     """Gaussian covariance of the bin-averaged multipoles (module docstring).
 
     ``tracers``: {name: (TracerCoefficients, terms)} (the kernel at the fiducial parameters);
     ``spectra``: [((X, Y), ells), ...] (X carries the Legendre weight; odd ℓ as Π_ℓ);
     ``resolution``: the estimator's (its k_nodes raised by :func:`covariance_resolution`);
     ``nbar``: {name: n̄ [(h/Mpc)³], number or callable of r} for the shot noise (None or a
-    missing name: no noise); ``ic``: none / global / radial; ``edges``: k bin edges [h/Mpc].
+    missing name: no noise); ``cross_noise``: {(X, Y): N_XY [(Mpc/h)³]} the shared noise
+    n̄_XY/(n̄_X n̄_Y) of overlapping populations X ≠ Y (absent pairs: disjoint);
+    ``ic``: none / global / radial; ``edges``: k bin edges [h/Mpc].
     ``k_weights``: optional (k, weights), each (n_bins, n), replacing the Gauss nodes of the
     bin averages (e.g. the distinct |k| of an FFT lattice in each bin and their mode counts,
     to compare with a lattice estimator; weights normalised per bin).
@@ -143,6 +148,12 @@ def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="no
     pairs = [(a, b) for a in range(nt) for b in range(a, nt)]
     c_l = ns.spectra(ns.j_max, pairs)
     noise = [_noise_diag(nbar, n, ns) for n in names]
+    for (x, y), amp in (cross_noise or {}).items():
+        if x not in names or y not in names or x == y or not np.isfinite(amp) or amp < 0:
+            raise ConfigError(f"cross_noise[({x!r}, {y!r})] = {amp!r}: expected two different "
+                              f"tracers among {names} and a finite value >= 0")
+    shared = {(names.index(x), names.index(y)): float(amp)
+              for (x, y), amp in (cross_noise or {}).items()}
     v = ns.base / ns.base.sum()
     proj = np.eye(nr) - np.outer(np.ones(nr), v)
     ells = sorted({l for _, _, e in specs for l in e} | {0})
@@ -164,6 +175,9 @@ def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="no
             c = c_l[a, b][J]
             if a == b and noise[a] is not None:
                 c = c + np.diag(noise[a])
+            amp = shared.get((a, b), shared.get((b, a), 0.0))
+            if a != b and amp > 0:
+                c = c + np.diag(amp / (ns.wr * ns.r ** 2))
             if J == 0 and ic == "global":
                 c = proj @ c @ proj.T
             m = (L @ c @ L.T).reshape(len(ells), n_k, len(ells), n_k)

@@ -28,8 +28,8 @@ The Gaussian covariance (covariance.kind: gaussian) stays the plane-parallel mul
 the effective redshift (likelihood.covariance); ``covariance.kind: harmonic`` is the curved-sky
 Gaussian covariance of the estimator of every spectrum (autos, crosses with their odd ℓ, and all
 their cross-covariances) at the fiducial parameters of each tracer
-(:meth:`CurvedMultiForwardModel.harmonic_covariance`; full sky, uniform density, common k bins,
-no shared noise); mocks or a file are used as given.
+(:meth:`CurvedMultiForwardModel.harmonic_covariance`; full sky, uniform density, common k bins;
+the shared noise of overlapping populations included); mocks or a file are used as given.
 """
 from __future__ import annotations
 
@@ -176,8 +176,9 @@ class CurvedMultiForwardModel(MultiForwardModel):
         by spectrum in the config's order, ℓ-major within each, at the parameter values
         ``values`` (the fiducial ones): each tracer's kernel from :meth:`coefficients_of` (its b1,
         b_e, s, p, redshift dependence, the shared f_NL), the Poisson noise of tracer X with
-        n̄_X/shot_noise_X, the run's integral constraint and resolution. Cached on disk.
-        Needs the same k bins for every spectrum (DataError); the config refuses shared noise."""
+        n̄_X/shot_noise_X, the shared noise shot_noise_X_Y n̄_XY/(n̄_X n̄_Y) of overlapping
+        populations (``shared_nbar``), the run's integral constraint and resolution. Cached on
+        disk. Needs the same k bins for every spectrum (DataError)."""
         from ..curved.covariance import harmonic_covariance
         edges = self.spectra[0].part.edges
         for s in self.spectra:
@@ -186,6 +187,7 @@ class CurvedMultiForwardModel(MultiForwardModel):
                                 f"for every spectrum ({s.label} differs); give a covariance file")
         keys = ["fnl"] + [f"{b}_{n}" for n in self.names
                           for b in ("b1", "p", "b_e", "s", "shot_noise")]
+        keys += [s.noise_name for s in self.spectra if s.noise_name and not s.auto]
         vals = {k: float(np.atleast_1d(values[k])[0]) for k in keys}
         spectra = [(s.pair, tuple(s.part.ells)) for s in self.spectra]
 
@@ -193,9 +195,11 @@ class CurvedMultiForwardModel(MultiForwardModel):
             tc = {n: (self.coefficients_of(cosmo, vals, n), self.terms) for n in self.names}
             amp = {n: vals[f"shot_noise_{n}"] for n in self.names}
             nbar = {n: self.nbar[n] / amp[n] if amp[n] > 0 else None for n in self.names}
+            shared = {s.pair: vals[s.noise_name] * s.noise_scale for s in self.spectra
+                      if s.noise_name and not s.auto}
             return harmonic_covariance(cosmo, self.engine.shell, edges, tc, spectra, nbar,
                                        self.engine.ic, self.engine.resolution,
-                                       self.engine.snapshot_z)
+                                       self.engine.snapshot_z, cross_noise=shared)
         if not self.disk_cache:
             return compute()
         spec = dict(cosmology_fingerprint(cosmo), engine=self.engine.fingerprint(),

@@ -292,3 +292,28 @@ def test_diagonal_against_fft_mocks():
     the lattice's |k| the first bins differ by up to 9 % (the README's binning caveat)."""
     ratio = mock_variance_ratio(2000)
     assert np.all(np.abs(ratio - 1) <= 0.10), ratio
+
+
+def test_shared_noise_of_identical_populations_equals_the_auto_covariance():
+    """Limit (exact): a population B that is the same catalogue as A (same kernel, n̄_B = n̄_A,
+    every object shared: n̄_AB = n̄_A, so N_AB = 1/n̄_A) is the same field, so every even-ℓ
+    block of the cross spectrum A×B equals the auto spectrum A×A's, and the covariance with
+    the shared noise left out is smaller. (The shared Poisson noise of overlapping populations
+    in C^AB_J: module docstring; common practice.)"""
+    shell = Shell(400.0, 600.0)
+    edges = np.array([0.004, 0.010, 0.016])
+    res = EstimatorResolution(j_factor=0.7, k_nodes=2)
+    nbar = {"A": 1e-3, "B": 1e-3}
+    tr = {"A": (A, TERMS_A), "B": (A, TERMS_A)}
+    spectra = [(("A", "A"), (0, 2)), (("A", "B"), (0, 2))]
+    cov = harmonic_covariance(COSMO, shell, edges, tr, spectra, nbar, "global", res,
+                              cross_noise={("A", "B"): 1.0 / nbar["A"]})
+    n = 4                                             # 2 multipoles x 2 bins per spectrum
+    aa, ab, xx = cov[:n, :n], cov[n:, n:], cov[:n, n:]
+    np.testing.assert_allclose(ab, aa, rtol=1e-10, atol=0)
+    np.testing.assert_allclose(xx, aa, rtol=1e-10, atol=0)
+    none = harmonic_covariance(COSMO, shell, edges, tr, spectra, nbar, "global", res)
+    assert np.all(np.diag(none)[n:] < np.diag(aa))
+    with pytest.raises(ConfigError, match="cross_noise"):
+        harmonic_covariance(COSMO, shell, edges, tr, spectra, nbar, "global", res,
+                            cross_noise={("A", "C"): 1.0})
