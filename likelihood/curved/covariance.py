@@ -26,7 +26,7 @@ likelihood.covariance), C_J from :class:`~likelihood.curved.estimator.NodeSpectr
 (Heavens & Taylor 1995; Yoo & Desjacques 2013). Integral constraints act on a_00(r) only on the
 full sky: C_0 → P C_0 Pᵀ with P = 1 − 1vᵀ (global, v ∝ b) or C_0 → 0 (radial). k bins: the
 covariance of the bin averages Σ_n ω_bn R(k_bn) is the double sum over the Gauss nodes of
-both bins. Unlike the expectation (smooth in k: 4 nodes per bin), the covariance of two k
+both bins (spectra on different bins: each on its own nodes). Unlike the expectation (smooth in k: 4 nodes per bin), the covariance of two k
 nodes oscillates like cos((k − k') r) over the shell, so the nodes per bin follow
 :func:`covariance_resolution` (Δk r_max/2 + 4). Full sky only: an angular mask couples
 M ≠ M' and is refused.
@@ -44,7 +44,7 @@ import numpy as np
 from ..errors import ConfigError
 from .bessel import spherical_jn_all
 from .estimator import (IC_KINDS, BasisKernel, EstimatorResolution, NodeSpectra,
-                        projection_rows)
+                        projection_rows, resolution_grids)
 
 __all__ = ["harmonic_covariance", "spectrum_list", "covariance_resolution"]
 
@@ -99,6 +99,22 @@ def _noise_diag(nbar, name, ns):
     return 1.0 / (ns.wr * ns.r ** 2 * n)
 
 
+def _edge_sets(edges, n_spectra):
+    """One array of k bin edges per spectrum from ``edges`` (one array for all, or a list)."""
+    try:
+        one = np.asarray(edges, dtype=float)
+    except ValueError:
+        one = None                              # ragged: a list of arrays
+    if one is not None and one.ndim == 1:
+        return [one] * n_spectra
+    sets = [np.asarray(e, dtype=float) for e in edges]
+    if len(sets) != n_spectra or any(e.ndim != 1 or e.size < 2 or e[0] <= 0
+                                     or np.any(np.diff(e) <= 0) for e in sets):
+        raise ConfigError(f"edges: expected one array of increasing positive k bin edges, or "
+                          f"one per spectrum ({n_spectra})")
+    return sets
+
+
 def _bin_nodes(ns, k_weights, nb):
     """(k nodes (n_bins n,), weights (n_bins, n)): the Gauss nodes of ``ns`` or the caller's."""
     if k_weights is None:
@@ -120,9 +136,11 @@ def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="no
     ``spectra``: [((X, Y), ells), ...] (X carries the Legendre weight; odd ℓ as Π_ℓ);
     ``resolution``: the estimator's (its k_nodes raised by :func:`covariance_resolution`);
     ``nbar``: {name: n̄ [(h/Mpc)³], number or callable of r} for the shot noise (None or a
-    missing name: no noise); ``cross_noise``: {(X, Y): N_XY [(Mpc/h)³]} the shared noise
+    missing name: no noise); ``edges``: the k bin edges [h/Mpc], one array for every spectrum
+    or a list with one per spectrum (spectra on different bins; then no ``k_weights``);
+    ``cross_noise``: {(X, Y): N_XY [(Mpc/h)³]} the shared noise
     n̄_XY/(n̄_X n̄_Y) of overlapping populations X ≠ Y (absent pairs: disjoint);
-    ``ic``: none / global / radial; ``edges``: k bin edges [h/Mpc].
+    ``ic``: none / global / radial.
     ``k_weights``: optional (k, weights), each (n_bins, n), replacing the Gauss nodes of the
     bin averages (e.g. the distinct |k| of an FFT lattice in each bin and their mode counts,
     to compare with a lattice estimator; weights normalised per bin).
@@ -142,8 +160,18 @@ def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="no
         except (TypeError, ValueError):
             raise ConfigError(f"tracers[{name!r}]: expected (TracerCoefficients, terms)") from None
         basis.append(BasisKernel(name, ((1.0, tc, tuple(terms)),)))
-    ns = NodeSpectra(cosmo, shell, edges, basis, resolution=covariance_resolution(
-        shell, edges, resolution), snapshot_z=snapshot_z)
+    sets = _edge_sets(edges, len(specs))
+    groups = []                                 # the distinct edge sets, in order of use
+    for e in sets:
+        if not any(np.array_equal(e, g) for g in groups):
+            groups.append(e)
+    group_of = [next(i for i, g in enumerate(groups) if np.array_equal(e, g)) for e in sets]
+    if len(groups) > 1 and k_weights is not None:
+        raise ConfigError("k_weights: only with one set of k bins for every spectrum")
+    res_cov = max((covariance_resolution(shell, g, resolution) for g in groups),
+                  key=lambda r: r.k_nodes)
+    span = groups[0] if len(groups) == 1 else np.unique(np.concatenate(groups))
+    ns = NodeSpectra(cosmo, shell, span, basis, resolution=res_cov, snapshot_z=snapshot_z)
     nt, nr = len(names), ns.r.size
     pairs = [(a, b) for a in range(nt) for b in range(a, nt)]
     c_l = ns.spectra(ns.j_max, pairs)
@@ -157,8 +185,11 @@ def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="no
     v = ns.base / ns.base.sum()
     proj = np.eye(nr) - np.outer(np.ones(nr), v)
     ells = sorted({l for _, _, e in specs for l in e} | {0})
-    nb = ns.edges.size - 1
-    k_nodes, wk = _bin_nodes(ns, k_weights, nb)
+    if len(groups) == 1:
+        nodes = [_bin_nodes(ns, k_weights, groups[0].size - 1)]
+    else:    # each set's Gauss nodes, by the rule of the NodeSpectra grids (same k_max, J_max)
+        nodes = [resolution_grids(shell, g, res_cov)[3] for g in groups]
+    k_nodes = np.concatenate([k for k, _ in nodes])
     jk = spherical_jn_all(ns.j_max + max(ells) + 1, k_nodes[:, None] * ns.r[None, :])
     n_k = k_nodes.size
     # node-level covariance blocks, per (spectrum s, ℓ of s, spectrum t, ℓ of t)
@@ -192,17 +223,22 @@ def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="no
             blk += (2 * J + 1) * (M[X, Z][ia, :, ib] * M[Y, W][i0, :, i0]
                                   + M[X, W][ia, :, i0] * M[Y, Z][i0, :, ib])
     i2 = 4.0 * np.pi * float(np.sum(ns.wr * ns.r ** 2 * ns.weight ** 2))
-    avg = np.zeros((nb, n_k))                       # bin averages over the k nodes
-    for b in range(nb):
-        avg[b, b * (n_k // nb):(b + 1) * (n_k // nb)] = wk[b]
-    sizes = [len(e) * nb for _, _, e in specs]
-    off = np.concatenate([[0], np.cumsum(sizes)])
+    avg, start = [], 0                      # bin averages over each edge set's k nodes
+    for k, wk in nodes:
+        nb, per = wk.shape[0], k.size // wk.shape[0]
+        a = np.zeros((nb, n_k))
+        for b in range(nb):
+            a[b, start + b * per:start + (b + 1) * per] = wk[b]
+        avg.append(a)
+        start += k.size
+    nbs = [sets[s].size - 1 for s in range(len(specs))]
+    off = np.concatenate([[0], np.cumsum([len(e) * n for (_, _, e), n in zip(specs, nbs)])])
     cov = np.zeros((off[-1], off[-1]))
     for (s, la, t, lb), blk in blocks.items():
         fac = (2 * la + 1) * (2 * lb + 1) * (4.0 * np.pi / i2) ** 2
-        r0 = off[s] + specs[s][2].index(la) * nb
-        c0 = off[t] + specs[t][2].index(lb) * nb
-        val = fac * avg @ blk @ avg.T
-        cov[r0:r0 + nb, c0:c0 + nb] = val
-        cov[c0:c0 + nb, r0:r0 + nb] = val.T
+        r0 = off[s] + specs[s][2].index(la) * nbs[s]
+        c0 = off[t] + specs[t][2].index(lb) * nbs[t]
+        val = fac * avg[group_of[s]] @ blk @ avg[group_of[t]].T
+        cov[r0:r0 + nbs[s], c0:c0 + nbs[t]] = val
+        cov[c0:c0 + nbs[t], r0:r0 + nbs[s]] = val.T
     return cov

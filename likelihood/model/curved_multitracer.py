@@ -28,8 +28,8 @@ The Gaussian covariance (covariance.kind: gaussian) stays the plane-parallel mul
 the effective redshift (likelihood.covariance); ``covariance.kind: harmonic`` is the curved-sky
 Gaussian covariance of the estimator of every spectrum (autos, crosses with their odd ℓ, and all
 their cross-covariances) at the fiducial parameters of each tracer
-(:meth:`CurvedMultiForwardModel.harmonic_covariance`; full sky, uniform density, common k bins;
-the shared noise of overlapping populations included); mocks or a file are used as given.
+(:meth:`CurvedMultiForwardModel.harmonic_covariance`; full sky, uniform density; each spectrum
+on its own k bins; the shared noise of overlapping populations included); mocks or a file are used as given.
 """
 from __future__ import annotations
 
@@ -40,7 +40,7 @@ import numpy as np
 from .curved import (CurvedObserver, CurvedOperator, CurvedSky, TracerBasis, amplitude_matrix,
                      cached_covariance, cached_templates, cosmology_fingerprint, point,
                      template_key, tracer_table, warn_regime)
-from ..errors import ConfigError, DataError
+from ..errors import ConfigError
 from ..observation.matrix import KBins
 from .multitracer import MultiForwardModel, Spectrum
 
@@ -177,14 +177,10 @@ class CurvedMultiForwardModel(MultiForwardModel):
         ``values`` (the fiducial ones): each tracer's kernel from :meth:`coefficients_of` (its b1,
         b_e, s, p, redshift dependence, the shared f_NL), the Poisson noise of tracer X with
         n̄_X/shot_noise_X, the shared noise shot_noise_X_Y n̄_XY/(n̄_X n̄_Y) of overlapping
-        populations (``shared_nbar``), the run's integral constraint and resolution. Cached on
-        disk. Needs the same k bins for every spectrum (DataError)."""
+        populations (``shared_nbar``), each spectrum's own k bins, the run's integral constraint
+        and resolution. Cached on disk."""
         from ..curved.covariance import harmonic_covariance
-        edges = self.spectra[0].part.edges
-        for s in self.spectra:
-            if not np.array_equal(s.part.edges, edges):
-                raise DataError(f"{s.part.source}: covariance.kind: harmonic needs the same k bins "
-                                f"for every spectrum ({s.label} differs); give a covariance file")
+        edges = [s.part.edges for s in self.spectra]
         keys = ["fnl"] + [f"{b}_{n}" for n in self.names
                           for b in ("b1", "p", "b_e", "s", "shot_noise")]
         keys += [s.noise_name for s in self.spectra if s.noise_name and not s.auto]
@@ -204,7 +200,7 @@ class CurvedMultiForwardModel(MultiForwardModel):
             return compute()
         spec = dict(cosmology_fingerprint(cosmo), engine=self.engine.fingerprint(),
                     bases={n: self.bases[n].fingerprint() for n in self.names}, nbar=self.nbar,
-                    edges=[float(e) for e in edges], spectra=spectra)
+                    edges=[[float(e) for e in es] for es in edges], spectra=spectra)
         return cached_covariance(self.cache_dir, [template_key(spec), "multi-covariance-1", vals],
                                  compute)
 

@@ -317,3 +317,25 @@ def test_shared_noise_of_identical_populations_equals_the_auto_covariance():
     with pytest.raises(ConfigError, match="cross_noise"):
         harmonic_covariance(COSMO, shell, edges, tr, spectra, nbar, "global", res,
                             cross_noise={("A", "C"): 1.0})
+
+
+def test_spectra_on_their_own_k_bins_equal_the_common_bins_rows():
+    """Spectra on different k bins (a list of edges, one per spectrum): when the cross
+    spectrum's bins are a subset of the autos' (same width, same k_max, hence the same Gauss
+    nodes and J_max), every element equals the corresponding element of the covariance with
+    common bins (internal consistency of the bin averages; the common-bin form is checked
+    against the Monte Carlo above)."""
+    shell = Shell(400.0, 600.0)
+    edges = np.array([0.004, 0.010, 0.016, 0.022])
+    res = EstimatorResolution(j_factor=0.7, k_nodes=2)
+    tr = {"A": (A, TERMS_A), "B": (B, TERMS_B)}
+    spectra = [(("A", "A"), (0, 2)), (("A", "B"), (0, 1)), (("B", "B"), (0,))]
+    common = harmonic_covariance(COSMO, shell, edges, tr, spectra, NBAR, "global", res)
+    own = harmonic_covariance(COSMO, shell, [edges, edges[1:], edges], tr, spectra, NBAR,
+                              "global", res)
+    keep = np.r_[0:6, 7:9, 10:12, 12:15]          # AB: bins 2, 3 of ℓ = 0 and of ℓ = 1
+    assert own.shape == (13, 13)
+    np.testing.assert_allclose(own, common[np.ix_(keep, keep)], rtol=1e-10,
+                               atol=1e-13 * np.abs(common).max())
+    with pytest.raises(ConfigError, match="one per spectrum"):
+        harmonic_covariance(COSMO, shell, [edges, edges], tr, spectra, NBAR, "global", res)

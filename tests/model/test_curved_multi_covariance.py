@@ -15,7 +15,9 @@ from likelihood.cli.commands import main
 from likelihood.config import load_config
 from likelihood.curved import TracerCoefficients
 from likelihood.curved.covariance import harmonic_covariance
+from likelihood.data import DataVector
 from likelihood.errors import ConfigError
+from likelihood.spectra import SpectraVector
 from tests.model.test_curved_multitracer import ENGINE, MOCK, SHELL, TWO, _build
 
 #: two overlapping tracers (shared_nbar = 2e-5), fixed noise amplitudes of faint and the shared
@@ -90,6 +92,28 @@ def test_two_tracer_blocks_against_the_library(tmp_path, capsys):
     assert "harmonic" in capsys.readouterr().out
     files = os.listdir(tmp_path / "cache" / "ergofit")
     assert sum(n.startswith("curved-cov-") for n in files) == 1
+
+
+def test_spectra_on_their_own_k_bins(tmp_path):
+    """A data file whose cross spectrum has fewer k bins (the autos' last two): the covariance
+    equals the rows and columns of those bins in the common-bin covariance (same Gauss nodes
+    and J_max: the library's own-bins path, in the data vector's order)."""
+    raw = copy.deepcopy(HARM)
+    raw["spectra"][1].pop("k_max")
+    raw["data"]["mock"]["truth"] = {"fnl": 0.0}      # the fiducial f_NL of a data file
+    common = _build(raw)
+    sv = common.data_full
+    p = sv.parts[1]
+    parts = list(sv.parts)
+    parts[1] = DataVector(p.ells, p.edges[1:], p.k_eff[1:], p.n_modes[1:], p.values[:, 1:])
+    SpectraVector(sv.tracers, sv.pairs, parts).save(tmp_path / "d.txt")
+    raw["data"] = {"file": "d.txt"}
+    own = _build(raw, tmp_path)
+    keep = np.r_[0:6, 7:9, 10:12, 13:15, 16:18, 18:24]
+    assert own.covariance_full.shape == (20, 20)
+    np.testing.assert_allclose(own.covariance_full,
+                               common.covariance_full[np.ix_(keep, keep)], rtol=1e-10,
+                               atol=1e-13 * np.abs(common.covariance_full).max())
 
 
 def _write(tmp_path, raw):
