@@ -60,8 +60,9 @@ def main(path):
         shell = f.shell
         blocks = [(f"l = {l}", f.n_bins) for l in f.ells]
         what = f"{len(f.ells)} multipoles x {f.n_bins} bins"
-    print(f"config: {path}; shell {shell.r_min:g}-{shell.r_max:g} Mpc/h, {f.engine.ic if multi else f.ic} "
-          f"integral constraint, terms {', '.join(f.terms)}; {what}, {cov.shape[0]} points")
+    ic = f.engine.ic if multi else f.ic
+    print(f"config: {path}; shell {shell.r_min:g}-{shell.r_max:g} Mpc/h, {ic} integral "
+          f"constraint, terms {', '.join(f.terms)}; {what}, {cov.shape[0]} points")
     print(f"harmonic covariance: {t_cov:.1f} s (cold), build with it from the cache "
           f"{t_warm:.1f} s; peak memory {peak:.0f} MB")
     var_simple = np.diag(simple.covariance_full)

@@ -19,17 +19,17 @@ M sums giving 2J + 1 in both pairings,
     M^XZ_ℓℓ'(k, k') = Σ_ij G_ℓJ(k r_i) b_i C^XZ_J(r_i, r_j) b_j G_ℓ'J(k' r_j),
 
 with C_J including the Poisson shot noise δ_XZ δ_D(r1 − r2)/(r1² n̄_X) (on the radial
-quadrature δ_ij/(ω_i r_i² n̄_i)) and, for overlapping populations X ≠ Z sharing n̄_XZ objects per
-volume, N_XZ δ_D(r1 − r2)/r1² with N_XZ = n̄_XZ/(n̄_X n̄_Z) (the Poisson noise of the shared
-objects, common practice in the Gaussian multi-tracer covariance, e.g. the plane-parallel form of
-likelihood.covariance), C_J from :class:`~likelihood.curved.estimator.NodeSpectra` = (2/π)∫q²dq P W_J W_J
-(Heavens & Taylor 1995; Yoo & Desjacques 2013). Integral constraints act on a_00(r) only on the
-full sky: C_0 → P C_0 Pᵀ with P = 1 − 1vᵀ (global, v ∝ b) or C_0 → 0 (radial). k bins: the
-covariance of the bin averages Σ_n ω_bn R(k_bn) is the double sum over the Gauss nodes of
-both bins (spectra on different bins: each on its own nodes). Unlike the expectation (smooth in k: 4 nodes per bin), the covariance of two k
-nodes oscillates like cos((k − k') r) over the shell, so the nodes per bin follow
-:func:`covariance_resolution` (Δk r_max/2 + 4). Full sky only: an angular mask couples
-M ≠ M' and is refused.
+quadrature δ_ij/(ω_i r_i² n̄_i)) and, for overlapping populations X ≠ Z sharing n̄_XZ objects
+per volume, N_XZ δ_D(r1 − r2)/r1² with N_XZ = n̄_XZ/(n̄_X n̄_Z) (the Poisson noise of the shared
+objects, common practice in the Gaussian multi-tracer covariance, e.g. the plane-parallel form
+of likelihood.covariance), C_J from :class:`~likelihood.curved.estimator.NodeSpectra` =
+(2/π)∫q²dq P W_J W_J (Heavens & Taylor 1995; Yoo & Desjacques 2013). Integral constraints act
+on a_00(r) only on the full sky: C_0 → P C_0 Pᵀ with P = 1 − 1vᵀ (global, v ∝ b) or C_0 → 0
+(radial). k bins: the covariance of the bin averages Σ_n ω_bn R(k_bn) is the double sum over
+the Gauss nodes of both bins (spectra on different bins: each on its own nodes). Unlike the
+expectation (smooth in k: 4 nodes per bin), the covariance of two k nodes oscillates like
+cos((k − k') r) over the shell, so the nodes per bin follow :func:`covariance_resolution`
+(Δk r_max/2 + 4). Full sky only: an angular mask couples M ≠ M' and is refused.
 
 Not included: the non-Gaussian (trispectrum) and Poisson-non-Gaussian parts; the observer's
 constrained field (the covariance is that of the field averaged over ν).
@@ -138,8 +138,8 @@ def harmonic_covariance(cosmo, shell, edges, tracers, spectra, nbar=None, ic="no
     ``nbar``: {name: n̄ [(h/Mpc)³], number or callable of r} for the shot noise (None or a
     missing name: no noise); ``edges``: the k bin edges [h/Mpc], one array for every spectrum
     or a list with one per spectrum (spectra on different bins; then no ``k_weights``);
-    ``cross_noise``: {(X, Y): N_XY [(Mpc/h)³]} the shared noise
-    n̄_XY/(n̄_X n̄_Y) of overlapping populations X ≠ Y (absent pairs: disjoint);
+    ``cross_noise``: {(X, Y): N_XY [(Mpc/h)³]} the shared noise n̄_XY/(n̄_X n̄_Y) of
+    overlapping populations X ≠ Y (absent pairs: disjoint);
     ``ic``: none / global / radial.
     ``k_weights``: optional (k, weights), each (n_bins, n), replacing the Gauss nodes of the
     bin averages (e.g. the distinct |k| of an FFT lattice in each bin and their mode counts,

@@ -29,7 +29,8 @@ the effective redshift (likelihood.covariance); ``covariance.kind: harmonic`` is
 Gaussian covariance of the estimator of every spectrum (autos, crosses with their odd ℓ, and all
 their cross-covariances) at the fiducial parameters of each tracer
 (:meth:`CurvedMultiForwardModel.harmonic_covariance`; full sky, uniform density; each spectrum
-on its own k bins; the shared noise of overlapping populations included); mocks or a file are used as given.
+on its own k bins; the shared noise of overlapping populations included); mocks or a file are
+used as given.
 """
 from __future__ import annotations
 
