@@ -314,6 +314,9 @@ def _split_scan(cfg, scan):
     """True for the bias-split scan of a multi-tracer config; other pairings refused in one line."""
     if not scan:
         return False
+    if "samples" in cfg:
+        raise ConfigError(f"{cfg.path}: forecast.scan is not available with samples; scan one "
+                          "sample's own config")
     several = "tracers" in cfg
     if scan["quantity"] == "bias_split" and not several:
         raise ConfigError(f"{cfg.path}: forecast.scan quantity bias_split needs a config with two "

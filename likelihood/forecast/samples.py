@@ -37,9 +37,6 @@ def samples_forecast(cfg, neglect=None, parameters=None, priors=None, step_rtol=
     """
     from .bias import bias_forecast
     fs = forecast_settings(cfg)
-    if fs["scan"]:
-        raise ConfigError(f"{cfg.path}: forecast.scan is not available with samples; scan one "
-                          "sample's own config")
     neglect = list(fs["neglect"] if neglect is None else neglect)
     parameters = fs["parameters"] if parameters is None else parameters
     priors = dict(fs["priors"] if priors is None else priors)
