@@ -328,8 +328,8 @@ def make_parser():
     s.add_argument("--out", help="output folder (default: <output folder of the config>/forecast)")
     s.add_argument("--check-mcmc", action="store_true",
                    help="also run a short MCMC on the noiseless truth mock (one or several "
-                   "tracers; not with samples) and compare its widths and shifts with the "
-                   "Fisher forecast")
+                   "tracers or samples) and compare its widths and shifts with the Fisher "
+                   "forecast")
     s.add_argument("--mpi", action="store_true", help="run a scan's points on MPI ranks")
     s.add_argument("--processes", type=_positive_int, default=0,
                    help="run a scan's points on a process pool of this size")

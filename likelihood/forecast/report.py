@@ -255,9 +255,6 @@ def run_forecast(config, out_dir=None, check_mcmc=False, pool=None, scan=True):
     cfg = config if isinstance(config, Config) else load_config(config)
     fs = forecast_settings(cfg)
     split = _split_scan(cfg, fs["scan"])
-    if check_mcmc and "samples" in cfg:
-        raise ConfigError(f"{cfg.path}: --check-mcmc is not available with samples; run it on "
-                          "each sample's own config")
     out_dir = out_dir or os.path.join(cfg.output_folder, "forecast")
     ensure_folder(out_dir, "choose another with --out")
     bias = bias_forecast(cfg)

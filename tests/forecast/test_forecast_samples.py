@@ -13,7 +13,8 @@ import pytest
 import yaml
 
 from likelihood.cli import main
-from likelihood.forecast import bias_forecast
+from likelihood.forecast import bias_forecast, mcmc_check
+from likelihood.sampling import SamplerSettings
 
 SHELL = {"shape": "shell", "r_min": 1200.0, "r_max": 1900.0}
 
@@ -129,8 +130,8 @@ def test_two_different_samples_sum_the_plain_fisher_matrices(tmp_path):
 
 
 def test_forecast_command_with_samples(tmp_path, capsys):
-    """End to end: exit 0, per-sample and combined numbers in fisher.json and forecast.md;
-    --check-mcmc and a scan are refused in one line with exit code 2."""
+    """End to end: exit 0, per-sample and combined numbers in fisher.json and forecast.md; a
+    scan is refused in one line with exit code 2."""
     top = _top(observer=False)
     raw = _with_samples(top, {"a": _sample("lrgA"), "b": _sample("elgB", b1=1.4, seed=9)})
     path = tmp_path / "s.yaml"
@@ -148,11 +149,34 @@ def test_forecast_command_with_samples(tmp_path, capsys):
     assert "Each sample alone (fnl)" in md and "| all combined |" in md
     assert os.path.isfile(out / "ellipses.png")
 
-    assert main(["forecast", str(path), "--out", str(out), "--check-mcmc"]) == 2
-    err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and "--check-mcmc is not available with samples" in err[0]
     raw["forecast"]["scan"] = {"quantity": "nbar", "values": [1e-4, 2e-4]}
     path.write_text(yaml.safe_dump(raw, sort_keys=False))
     assert main(["forecast", str(path), "--out", str(out)]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "forecast.scan is not available with samples" in err[0]
+
+
+def test_check_mcmc_with_samples_agrees_with_the_combined_fisher_shift(tmp_path):
+    """Neglecting the window in two different samples shifts f_NL by ~2.4 σ at first order; a
+    chain of the analysis model over both samples' noiseless truth mocks (the sum of their
+    likelihoods) finds the same shift within 0.2 σ and the Fisher width within 10 % (measured:
+    Δ = 18.26 against 18.80, width ratio 1.02) — the chain is an independent estimate of the
+    posterior the summed Fisher matrix approximates."""
+    top = _top(observer=False)
+    top["forecast"]["neglect"] = ["window"]
+    far = _sample("elgB", z=1.2, b1=1.4, seed=9,
+                  geometry={"shape": "shell", "r_min": 1950.0, "r_max": 3100.0})
+    res = _forecast(tmp_path, _with_samples(top, {"a": _sample("lrgA"), "b": far}), "s.yaml")
+    assert res.value("ratio") > 1.5                         # a shift well away from zero
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        m = mcmc_check(res, str(tmp_path / "check"),
+                       settings=SamplerSettings(n_walkers=16, max_steps=2000, check_every=200,
+                                                tau_factor=50, tau_rtol=0.05, seed=3,
+                                                progress=False))
+    for name in ("a", "b"):
+        assert os.path.isfile(tmp_path / "check" / name / "truth_mock.npz")
+    e = m["parameters"]["fnl"]
+    assert abs(e["shift_difference_over_sigma"]) < 0.2 and m["agree"]
+    assert 0.9 < e["width_ratio"] < 1.1
+    assert sorted(m["parameters"]) == sorted(res.fisher.names)

@@ -277,8 +277,6 @@ MULTI_CASES = [
 ] + [
     ("theory-samples", _as_samples("south", {"bright": "b2", "faint": "f2"}), "theory",
      "ergofit theory works on one sample"),
-    ("forecast-samples-mcmc", _as_samples("south", {"bright": "b2", "faint": "f2"}),
-     "forecast --check-mcmc", "--check-mcmc is not available with samples"),
     ("forecast-samples-scan", lambda c: (_as_samples("south", {"bright": "b2", "faint": "f2"})(c),
                                          c.update(forecast={"scan": {"quantity": "nbar",
                                                                      "values": [1e-4, 2e-4]}})),
