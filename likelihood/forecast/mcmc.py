@@ -113,7 +113,7 @@ def _samples_config(bias, folder):
     """The samples config of the check: each sample's analysis config on its own truth mock (in
     ``folder/NAME/``), the shared sections of the first, the parameters of all."""
     from ..config.samples import SAMPLE_KEYS, SHARED_SECTIONS
-    cfg, entries, params, fiducial = bias.config, [], {}, {}
+    cfg, entries, params, fiducial, top = bias.config, [], {}, {}, None
     for name, b in bias.samples.items():
         sub = os.path.join(folder, name)
         os.makedirs(sub, exist_ok=True)
@@ -122,7 +122,8 @@ def _samples_config(bias, folder):
         entries.append({"name": name, **{k: raw[k] for k in SAMPLE_KEYS[1:] if k in raw}})
         params.update(raw["parameters"])
         fiducial.update(fid)
-    top = {k: raw[k] for k in SHARED_SECTIONS if k in raw}
+        if top is None:
+            top = {k: raw[k] for k in SHARED_SECTIONS if k in raw}
     top.update(run=cfg["run"], samples=entries, parameters=params)
     mcfg = validate(top, src=f"{cfg.path} [MCMC check on the truth mocks]", base_dir=cfg.base_dir)
     return mcfg, fiducial
