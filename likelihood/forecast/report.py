@@ -16,7 +16,7 @@ from ..io import ensure_folder, open_atomic, plain_data, write_text
 from .bias import bias_forecast, forecast_settings
 from .mcmc import mcmc_check
 from .multitracer import config_split_scan, split_scan_tables
-from .scans import bias_scan
+from .scans import bias_scan, no_scan_with_samples
 from ..errors import ConfigError
 
 def _g(x, digits=4):
@@ -311,9 +311,7 @@ def _split_scan(cfg, scan):
     """True for the bias-split scan of a multi-tracer config; other pairings refused in one line."""
     if not scan:
         return False
-    if "samples" in cfg:
-        raise ConfigError(f"{cfg.path}: forecast.scan is not available with samples; scan one "
-                          "sample's own config")
+    no_scan_with_samples(cfg)
     several = "tracers" in cfg
     if scan["quantity"] == "bias_split" and not several:
         raise ConfigError(f"{cfg.path}: forecast.scan quantity bias_split needs a config with two "
