@@ -263,7 +263,7 @@ def cmd_forecast(args):
     """``ergofit forecast CONFIG [--out DIR] [--check-mcmc] [--mpi] [--processes N]``."""
     from ..config import load_config
     from ..forecast import forecast_lines, forecast_settings, run_forecast
-    cfg = _one_sample(load_config(args.config), "forecast")
+    cfg = load_config(args.config)
     processes = int(getattr(args, "processes", 0) or 0)
     if processes > 0 and not forecast_settings(cfg)["scan"]:
         processes = 0                          # nothing to spread over a pool
@@ -328,7 +328,8 @@ def make_parser():
     s.add_argument("--out", help="output folder (default: <output folder of the config>/forecast)")
     s.add_argument("--check-mcmc", action="store_true",
                    help="also run a short MCMC on the noiseless truth mock (one or several "
-                   "tracers) and compare its widths and shifts with the Fisher forecast")
+                   "tracers or samples) and compare its widths and shifts with the Fisher "
+                   "forecast")
     s.add_argument("--mpi", action="store_true", help="run a scan's points on MPI ranks")
     s.add_argument("--processes", type=_positive_int, default=0,
                    help="run a scan's points on a process pool of this size")

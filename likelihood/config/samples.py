@@ -18,7 +18,8 @@ independent: the log-likelihood is the sum of theirs. They share ``cosmology``, 
 ``observer``, ``sampling`` and the global parameters (``fnl``, ``nu_obs``, cosmology); the
 nuisance parameters stay per sample because tracer names must differ between samples
 (``b1_brightN``, ``b1_brightS``). The top level keeps ``run``, ``cosmology``, ``effects``,
-``observer``, ``parameters``, ``sampling`` and ``output``.
+``observer``, ``parameters``, ``sampling``, ``output`` and ``forecast`` (neglected effects and
+forecast parameters of the whole run; ``ergofit forecast`` sums the samples' Fisher matrices).
 """
 from __future__ import annotations
 
@@ -31,7 +32,7 @@ from .parameters import parse_parameter, suggest
 
 SAMPLE_KEYS = ("name", "survey", "tracers", "spectra", "data", "covariance")
 SHARED_SECTIONS = ("cosmology", "effects", "observer", "sampling")
-TOP_KEYS = ("run", "samples", "parameters", "output", *SHARED_SECTIONS)
+TOP_KEYS = ("run", "samples", "parameters", "output", "forecast", *SHARED_SECTIONS)
 
 
 def _own_names(sample):
@@ -114,6 +115,7 @@ def validate_samples(raw, src, base_dir, validate, run):
     for k in SHARED_SECTIONS:
         cfg[k] = copy.deepcopy(first[k])
     cfg["output"] = _section(raw, "output", src)
+    cfg["forecast"] = _section(raw, "forecast", src)     # the run's forecast (likelihood.forecast.samples)
     known = {}
     for sc in subs:
         known.update(_table(sc))

@@ -79,22 +79,31 @@ ranks. What changes with the scanned quantity:
   start of a sampled parameter).
 * ``nbar``: survey.nbar. ``k_min``: data.k_min (same k bins, fewer of them used).
 
-Public API: :class:`Fisher`, :func:`fisher_from_derivatives`, :func:`derivative`,
-:func:`likelihood_fisher`, :class:`BiasForecast`, :func:`bias_forecast`, :func:`analysis_config`,
+Several samples
+---------------
+A config with ``samples`` is forecast sample by sample and combined as independent data: the
+Fisher matrices and bias vectors add on the union of the parameters (:mod:`.samples`,
+:func:`combine_independent`); the result's ``samples`` holds each sample's forecast alone.
+
+Public API: :class:`Fisher`, :func:`combine_independent`, :func:`samples_forecast`,
+:func:`fisher_from_derivatives`, :func:`derivative`, :func:`likelihood_fisher`, :class:`BiasForecast`, :func:`bias_forecast`, :func:`analysis_config`,
 :func:`scan_config`, :class:`ScanResult`, :func:`bias_scan`, :func:`mcmc_check`,
 :func:`run_forecast`, :func:`forecast_lines`, :func:`config_to_raw`, :func:`forecast_settings`;
 output helpers :func:`plot_ellipses`, :func:`plot_scan`, :func:`scan_tables`,
 :func:`forecast_markdown`. Speed figures: ``python bench/forecast.py``.
 """
 from .bias import DEFAULTS, BiasForecast, bias_forecast, forecast_settings
-from .fisher import Fisher, derivative, fisher_from_derivatives, likelihood_fisher
+from .fisher import (Fisher, combine_independent, derivative, fisher_from_derivatives,
+                     likelihood_fisher)
 from .mcmc import mcmc_check
 from .report import (forecast_lines, forecast_markdown, plot_ellipses, plot_scan, ranges_text,
                      run_forecast, scan_tables)
+from .samples import samples_forecast
 from .scans import ScanResult, bias_scan
 from ..config.variants import analysis_config, config_to_raw, scan_config
 
-__all__ = ["Fisher", "fisher_from_derivatives", "derivative", "likelihood_fisher", "BiasForecast",
+__all__ = ["Fisher", "combine_independent", "samples_forecast", "fisher_from_derivatives",
+           "derivative", "likelihood_fisher", "BiasForecast",
            "bias_forecast", "analysis_config", "scan_config", "ScanResult", "bias_scan",
            "mcmc_check", "run_forecast", "config_to_raw", "forecast_settings", "forecast_lines",
            "plot_ellipses", "plot_scan", "ranges_text", "scan_tables", "forecast_markdown",

@@ -58,7 +58,10 @@ class BiasForecast:
     fnl_eff_neglected / fnl_eff_projection: f_NL mimicked at k → 0 by the neglected projection
     terms / by all projection terms of the truth model (:func:`likelihood.theory.tracer.effective_fnl`;
     None when undefined, e.g. b1 = p); info: survey and model description; warnings: unique
-    warnings raised while building the models; analysis_config: the analysis Config.
+    warnings raised while building the models; analysis_config: the analysis Config (None for a
+    config with samples: each sample has its own); samples: for a config with ``samples``, the
+    forecast of each sample alone {name: BiasForecast} (this object is then their combination,
+    :mod:`likelihood.forecast.samples`), else None.
     """
 
     fisher: Fisher
@@ -72,8 +75,9 @@ class BiasForecast:
     fnl_eff_projection: float | None
     info: dict
     warnings: list
-    analysis_config: Config
+    analysis_config: Config | None
     config: Config
+    samples: dict | None = None
 
     @property
     def delta_over_sigma(self):
@@ -125,6 +129,9 @@ def bias_forecast(config, neglect=None, parameters=None, priors=None, step_rtol=
     """
     from ..model import build
     cfg = config if isinstance(config, Config) else load_config(config)
+    if "samples" in cfg:
+        from .samples import samples_forecast
+        return samples_forecast(cfg, neglect, parameters, priors, step_rtol)
     fs = forecast_settings(cfg)
     neglect = list(fs["neglect"] if neglect is None else neglect)
     parameters = fs["parameters"] if parameters is None else parameters

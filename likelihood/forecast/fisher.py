@@ -165,6 +165,11 @@ def fisher_from_derivatives(derivs, chol, names, labels=None, fiducial=None, pri
         raise ErgofitError(f"precision_scale = {precision_scale}: expected > 0")
     fid = np.zeros(len(names)) if fiducial is None else np.asarray(fiducial, float)
     W = solve_triangular(L, D.T, lower=True) * math.sqrt(precision_scale)     # (n_data, n_par)
+    return _assemble(W, L, names, labels, fid, priors, precision_scale, steps)
+
+
+def _assemble(W, L, names, labels, fid, priors, precision_scale, steps):
+    """Fisher of whitened derivatives W (n_data, n_par): F = WᵀW plus the Gaussian priors."""
     F0 = W.T @ W
     F0 = 0.5 * (F0 + F0.T)
     F = F0.copy()
@@ -182,6 +187,49 @@ def fisher_from_derivatives(derivs, chol, names, labels=None, fiducial=None, pri
     return Fisher(names=names, labels=list(labels) if labels else list(names), fiducial=fid,
                   matrix=F, data_matrix=F0, whitened=W, prior_pull=pull, priors=priors,
                   chol=L, precision_scale=float(precision_scale), steps=list(steps or []))
+
+
+def combine_independent(fishers, names):
+    """Fisher matrix of independent data sets on the union ``names`` of their parameters.
+
+    The log-likelihood of independent data is the sum of theirs, so its Fisher matrix is the sum
+    of theirs (Tegmark, Taylor & Heavens 1997, ApJ 480, 22, eq. 15 applied to a block-diagonal
+    covariance): F = Σ_s E_s F_s E_sᵀ, E_s placing data set s's parameters in ``names``; a
+    parameter shared by several data sets adds, one of a single data set stays in its block.
+    The Gaussian priors are counted once (they are the same for every data set that has the
+    parameter; different means or widths raise an error). The result keeps the stacked whitened
+    derivatives and a block-diagonal Cholesky factor (each with its own Hartlap factor folded
+    in), so :meth:`Fisher.bias` of the stacked model error is F⁻¹ Σ_s B_s + the prior pull.
+    Shared parameters must have one fiducial value.
+    """
+    from scipy.linalg import block_diag
+    names = list(names)
+    fid, labels, priors = {}, {}, {}
+    blocks = []
+    for f in fishers:
+        for n, x, lab in zip(f.names, f.fiducial, f.labels):
+            if n not in names:
+                raise ErgofitError(f"combining Fisher matrices: '{n}' is not among {', '.join(names)}")
+            if n in fid and not math.isclose(fid[n], x, rel_tol=1e-12, abs_tol=1e-12):
+                raise ErgofitError(f"combining Fisher matrices: the shared parameter '{n}' has "
+                                   f"two fiducial values ({fid[n]:g} and {x:g}); give every sample "
+                                   f"the same one (data.mock.truth, parameters.{n}.start)")
+            fid[n], labels[n] = float(x), lab
+        for n, pr in f.priors.items():
+            if n in priors and not np.allclose(priors[n], pr, rtol=1e-12, atol=0):
+                raise ErgofitError(f"combining Fisher matrices: two different Gaussian priors on "
+                                   f"'{n}' ({priors[n]} and {pr}); a shared parameter has one prior")
+            priors[n] = tuple(pr)
+        W = np.zeros((f.whitened.shape[0], len(names)))
+        W[:, [names.index(n) for n in f.names]] = f.whitened
+        blocks.append(W)
+    missing = [n for n in names if n not in fid]
+    if missing:
+        raise ErgofitError(f"combining Fisher matrices: no data set constrains {', '.join(missing)}")
+    L = block_diag(*[f.chol / math.sqrt(f.precision_scale) for f in fishers])
+    return _assemble(np.vstack(blocks), L, names, [labels[n] for n in names],
+                     np.array([fid[n] for n in names]), priors, 1.0,
+                     [s for f in fishers for s in f.steps])
 
 
 def derivative(model, point, name, step, chol, rtol=1e-3, max_halvings=_MAX_HALVINGS,

@@ -1,5 +1,7 @@
 """MCMC check of a bias forecast on the noiseless truth mock (one tracer, or several: the mock is
-then a labelled spectra file holding each spectrum's fitted multipoles and k bins)."""
+then a labelled spectra file holding each spectrum's fitted multipoles and k bins; several
+samples: each sample's truth mock in its own subfolder, the chain over the sum of the samples'
+likelihoods compared with the combined Fisher forecast)."""
 from __future__ import annotations
 
 import os
@@ -82,6 +84,8 @@ def _mcmc_config(bias, folder):
     ``folder``), the analysis model's fiducial values)."""
     from ..model import build
     from ..model.fiducial import COSMO_PARAMS
+    if bias.samples:
+        return _samples_config(bias, folder)
     acfg = bias.analysis_config
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -103,6 +107,26 @@ def _mcmc_config(bias, folder):
     raw["forecast"] = {}
     cfg = validate(raw, src=f"{acfg.path} [MCMC check on the truth mock]", base_dir=acfg.base_dir)
     return cfg, {n: float(v) for n, v in alik.fiducial.items()}
+
+
+def _samples_config(bias, folder):
+    """The samples config of the check: each sample's analysis config on its own truth mock (in
+    ``folder/NAME/``), the shared sections of the first, the parameters of all."""
+    from ..config.samples import SAMPLE_KEYS, SHARED_SECTIONS
+    cfg, entries, params, fiducial, top = bias.config, [], {}, {}, None
+    for name, b in bias.samples.items():
+        sub = os.path.join(folder, name)
+        os.makedirs(sub, exist_ok=True)
+        scfg, fid = _mcmc_config(b, sub)
+        raw = config_to_raw(scfg)
+        entries.append({"name": name, **{k: raw[k] for k in SAMPLE_KEYS[1:] if k in raw}})
+        params.update(raw["parameters"])
+        fiducial.update(fid)
+        if top is None:
+            top = {k: raw[k] for k in SHARED_SECTIONS if k in raw}
+    top.update(run=cfg["run"], samples=entries, parameters=params)
+    mcfg = validate(top, src=f"{cfg.path} [MCMC check on the truth mocks]", base_dir=cfg.base_dir)
+    return mcfg, fiducial
 
 
 def _single_raw(bias, alik, folder, used):

@@ -16,7 +16,7 @@ from ..io import ensure_folder, open_atomic, plain_data, write_text
 from .bias import bias_forecast, forecast_settings
 from .mcmc import mcmc_check
 from .multitracer import config_split_scan, split_scan_tables
-from .scans import bias_scan
+from .scans import bias_scan, no_scan_with_samples
 from ..errors import ConfigError
 
 def _g(x, digits=4):
@@ -133,23 +133,57 @@ def scan_tables(scan):
     return buf.getvalue(), "\n".join(md) + "\n"
 
 
+def _survey_lines(info):
+    """Survey, data vector and truth model of one forecast (one sample)."""
+    return [f"- Survey: z = {info['redshift']:g}, n̄ = {info['nbar']:g} h³/Mpc³, geometry "
+            f"{info['geometry']['shape']}, volume {info['volume']:.3g} (Mpc/h)³.",
+            f"- Data vector: {info['n_data']} points, multipoles {info['ells']}, k in "
+            f"[{info['k_range'][0]:.4g}, {info['k_range'][1]:.4g}] h/Mpc.",
+            f"- Truth model: effects {', '.join(info['truth_model']['effects']) or 'none'}; window "
+            f"{'on' if info['truth_model']['window'] else 'off'}; integral constraint "
+            f"{info['truth_model']['integral_constraint']}; observer term "
+            f"{'on' if info['truth_model']['observer'] else 'off'}."]
+
+
+def _headline(bias):
+    """The parameter compared sample by sample: fnl, else the first one every sample has."""
+    return next((n for n in ["fnl"] + list(bias.fisher.names)
+                 if all(n in b.fisher.names for b in bias.samples.values())), None)
+
+
+def _samples_table(bias):
+    """Each sample's forecast alone next to the combination, for :func:`_headline`."""
+    name = _headline(bias)
+    if name is None:
+        return []
+    rows = [(n, b) for n, b in bias.samples.items()] + [("all combined", bias)]
+    lines = ["", f"### Each sample alone ({name})", "",
+             f"| sample | data points | σ({name}) | Δ{name} | Δ/σ | χ² of the neglected effect |",
+             "|---|---:|---:|---:|---:|---:|"]
+    for label, b in rows:
+        lines.append(f"| {label} | {b.info['n_data']} | {b.value('sigma', name):.3g} | "
+                     f"{b.value('delta', name):+.3g} | {b.value('ratio', name):+.2f} | "
+                     f"{b.chi2_total:.3g} |")
+    return lines
+
+
 def forecast_markdown(bias, scan=None, mcmc=None, files=()):
     """Human report (Markdown) of a forecast."""
     f, info = bias.fisher, bias.info
     lines = [f"# Fisher forecast and f_NL bias: {info['run']}", "",
-             f"Config `{info['config']}` (hash {info['config_hash']}).", "",
-             f"- Survey: z = {info['redshift']:g}, n̄ = {info['nbar']:g} h³/Mpc³, geometry "
-             f"{info['geometry']['shape']}, volume {info['volume']:.3g} (Mpc/h)³.",
-             f"- Data vector: {info['n_data']} points, multipoles {info['ells']}, k in "
-             f"[{info['k_range'][0]:.4g}, {info['k_range'][1]:.4g}] h/Mpc.",
-             f"- Truth model: effects {', '.join(info['truth_model']['effects']) or 'none'}; window "
-             f"{'on' if info['truth_model']['window'] else 'off'}; integral constraint "
-             f"{info['truth_model']['integral_constraint']}; observer term "
-             f"{'on' if info['truth_model']['observer'] else 'off'}.",
-             f"- Analysis model neglects: {neglect_text(bias.neglect)}.", "",
-             "## Errors and shifts", "",
-             "| parameter | fiducial | σ marginalised | σ conditional | Δ (bias) | Δ/σ |",
-             "|---|---:|---:|---:|---:|---:|"]
+             f"Config `{info['config']}` (hash {info['config_hash']}).", ""]
+    if bias.samples:
+        lines += [f"{len(bias.samples)} independent samples: the Fisher matrix is the sum of the "
+                  "samples' (shared parameters add, each sample's nuisance parameters stay in its "
+                  "block, Gaussian priors counted once) and the shift is F⁻¹ Σ_s B_s.", ""]
+        for name, b in bias.samples.items():
+            lines += [f"Sample **{name}**:", ""] + _survey_lines(b.info) + [""]
+    else:
+        lines += _survey_lines(info)
+    lines += [f"- Analysis model neglects: {neglect_text(bias.neglect)}.", "",
+              "## Errors and shifts" + (" (all samples combined)" if bias.samples else ""), "",
+              "| parameter | fiducial | σ marginalised | σ conditional | Δ (bias) | Δ/σ |",
+              "|---|---:|---:|---:|---:|---:|"]
     for i, n in enumerate(f.names):
         lines.append(f"| {n} | {f.fiducial[i]:.4g} | {f.errors[i]:.3g} | "
                      f"{f.conditional_errors[i]:.3g} | {bias.delta[i]:+.3g} | "
@@ -161,10 +195,13 @@ def forecast_markdown(bias, scan=None, mcmc=None, files=()):
     if f.priors:
         lines += ["", "Gaussian priors in the Fisher matrix: " + ", ".join(
             f"{n} ~ N({m:g}, {s:g})" for n, (m, s) in f.priors.items()) + "."]
-    lines += ["", f"f_NL mimicked at k → 0 by the neglected projection terms: "
-              f"{_g(bias.fnl_eff_neglected, 3)}; by all projection terms of the truth model: "
-              f"{_g(bias.fnl_eff_projection, 3)} (leading k⁻² term of the monopole only).",
-              f"χ² of the neglected effect at the fiducial point: {bias.chi2_total:.3g}; left after "
+    if bias.samples:
+        lines += _samples_table(bias) + [""]
+    else:
+        lines += ["", f"f_NL mimicked at k → 0 by the neglected projection terms: "
+                  f"{_g(bias.fnl_eff_neglected, 3)}; by all projection terms of the truth model: "
+                  f"{_g(bias.fnl_eff_projection, 3)} (leading k⁻² term of the monopole only)."]
+    lines += [f"χ² of the neglected effect at the fiducial point: {bias.chi2_total:.3g}; left after "
               f"the parameters shift: {bias.chi2_residual:.3g} (for {info['n_data']} data points)."]
     if mcmc is not None:
         lines += ["", "## MCMC check (analysis model on the noiseless truth mock)", "",
@@ -246,8 +283,10 @@ def run_forecast(config, out_dir=None, check_mcmc=False, pool=None, scan=True):
         files.append("mcmc_check/")
     doc = {"run": cfg["run"], "config": cfg.path, "config_hash": cfg.hash,
            **bias.fisher.to_dict(), "bias": bias.to_dict(),
-           "survey": {k: bias.info[k] for k in ("redshift", "nbar", "geometry", "volume", "n_data",
-                                                 "ells", "k_range")},
+           "survey": _survey_doc(bias.info),
+           "samples": None if not bias.samples else {
+               name: {**b.fisher.to_dict(), "bias": b.to_dict(), "survey": _survey_doc(b.info)}
+               for name, b in bias.samples.items()},
            "truth_model": bias.info["truth_model"], "analysis_model": bias.info["analysis_model"],
            "scan": None if scan_res is None else {"quantity": scan_res.quantity,
                                                   "threshold": scan_res.threshold,
@@ -263,10 +302,16 @@ def run_forecast(config, out_dir=None, check_mcmc=False, pool=None, scan=True):
             "files": [os.path.join(out_dir, f) for f in files]}
 
 
+def _survey_doc(info):
+    return {k: info[k] for k in ("redshift", "nbar", "geometry", "volume", "n_data", "ells",
+                                 "k_range", "samples") if k in info}
+
+
 def _split_scan(cfg, scan):
     """True for the bias-split scan of a multi-tracer config; other pairings refused in one line."""
     if not scan:
         return False
+    no_scan_with_samples(cfg)
     several = "tracers" in cfg
     if scan["quantity"] == "bias_split" and not several:
         raise ConfigError(f"{cfg.path}: forecast.scan quantity bias_split needs a config with two "
@@ -289,6 +334,10 @@ def forecast_lines(cfg, res):
     for i, n in enumerate(f.names):
         lines.append(f"  {n:<10s} fiducial {f.fiducial[i]:<9.4g} sigma {f.errors[i]:<9.3g} "
                      f"shift {bias.delta[i]:+9.3g} ({bias.delta_over_sigma[i]:+.2f} sigma)")
+    head = _headline(bias) if bias.samples else None
+    for name, b in (bias.samples or {}).items() if head else ():
+        lines.append(f"  sample {name} alone: {head} sigma {b.value('sigma', head):.3g} "
+                     f"shift {b.value('delta', head):+.3g} ({b.value('ratio', head):+.2f} sigma)")
     if res["scan"] is not None:
         where = ranges_text(res["scan"])
         lines.append(f"scan over {res['scan'].quantity}: |shift(f_NL)| > {res['scan'].threshold:g} sigma "

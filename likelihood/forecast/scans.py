@@ -60,6 +60,13 @@ def _scan_point(payload):
     return row, notes + res.warnings
 
 
+def no_scan_with_samples(cfg):
+    """Refuse a scan of a config with samples in one line (scan a sample's own config)."""
+    if "samples" in cfg:
+        raise ConfigError(f"{cfg.path}: forecast.scan is not available with samples; scan one "
+                          "sample's own config")
+
+
 def bias_scan(config, scan=None, neglect=None, parameters=None, priors=None, step_rtol=None,
               threshold=None, pool=None):
     """Bias forecast over a grid (the config's ``forecast.scan`` unless ``scan`` is given).
@@ -70,6 +77,7 @@ def bias_scan(config, scan=None, neglect=None, parameters=None, priors=None, ste
     """
     from ..config.schema import forecast_scan
     cfg = config if isinstance(config, Config) else load_config(config)
+    no_scan_with_samples(cfg)
     fs = forecast_settings(cfg)
     if scan is not None:
         scan = forecast_scan(scan, f"{cfg.path}: forecast.scan")

@@ -277,8 +277,10 @@ MULTI_CASES = [
 ] + [
     ("theory-samples", _as_samples("south", {"bright": "b2", "faint": "f2"}), "theory",
      "ergofit theory works on one sample"),
-    ("forecast-samples", _as_samples("south", {"bright": "b2", "faint": "f2"}), "forecast",
-     "ergofit forecast works on one sample"),
+    ("forecast-samples-scan", lambda c: (_as_samples("south", {"bright": "b2", "faint": "f2"})(c),
+                                         c.update(forecast={"scan": {"quantity": "nbar",
+                                                                     "values": [1e-4, 2e-4]}})),
+     "forecast", "forecast.scan is not available with samples"),
     ("forecast-scan-quantity", lambda c: c.update(forecast={"scan": {"quantity": "nbar",
                                                                      "values": [1e-4, 2e-4]}}),
      "forecast", "forecast.scan quantity nbar is for one tracer; with several tracers scan "
