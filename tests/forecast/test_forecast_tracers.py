@@ -169,6 +169,7 @@ def test_bias_split_scan_of_a_two_tracer_config(tmp_path, capsys):
     assert "| 2 |" in (out / "scan.md").read_text()
 
 
+@pytest.mark.slow        # two chains (15 s); the Fisher-against-chain check stays in the default suite
 def test_two_tracer_gain_over_one_tracer_as_forecast(tmp_path):
     """Issue 13 check: the two-tracer posterior on f_NL is tighter than the bright-only one (same
     data file, configs/multi_demo_bright.yaml) by the factor the Fisher forecast predicts, within

@@ -255,8 +255,10 @@ CAP = {"survey": {"geometry": {"shape": "cap", "r_min": 1950.0, "r_max": 3140.0,
 
 @pytest.mark.parametrize("extra", [
     {},                                                                        # global IC
-    {"effects": {"integral_constraint": "radial"}, **FREE_BE_S},
-    {"effects": {"integral_constraint": "none"}, "engine": {"snapshot": True}},
+    pytest.param({"effects": {"integral_constraint": "radial"}, **FREE_BE_S},
+                 marks=pytest.mark.slow),                      # (full-sky version: default)
+    pytest.param({"effects": {"integral_constraint": "none"}, "engine": {"snapshot": True}},
+                 marks=pytest.mark.slow),
     {"effects": {"observer": True}, "observer": {"nu_true": 1.5},                 # observer term
      "parameters": {"b1": {"flat": [0.5, 5.0], "start": 2.0},
                     "fnl": {"flat": [-50, 50], "start": 1.0},
