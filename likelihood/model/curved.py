@@ -211,13 +211,27 @@ class TracerBasis:
         shape = self.table.shape(name, self.z)
         return lambda z: value + shape(z)
 
-    def amplitudes(self, values):
+    def amplitudes(self, values, p=None):
         """The amplitudes x of the basis kernels, in the order of ``names``, for parameter values
-        (floats or arrays) keyed b1, fnl, p, b_e, s."""
-        b1, p = values["b1"], values["p"]
-        fnl = values.get("fnl", 0.0)
-        col = {"1": 1.0, "b1": b1, "v": fnl * (b1 - p), "fnl_b1": fnl * b1, "fnl_p": fnl * p}
-        return [values[n] if n in ("b_e", "s") else col[n] for n in self.names]
+        (floats or arrays) keyed b1, fnl, p (or ``p`` given), b_e, s. Plain branches, no
+        containers: this runs once per likelihood call on the single-point path."""
+        b1, fnl = values["b1"], values.get("fnl", 0.0)
+        p = values["p"] if p is None else p
+        out = []
+        for n in self.names:
+            if n == "1":
+                out.append(1.0)
+            elif n == "b1":
+                out.append(b1)
+            elif n == "v":
+                out.append(fnl * (b1 - p))
+            elif n == "fnl_b1":
+                out.append(fnl * b1)
+            elif n == "fnl_p":
+                out.append(fnl * p)
+            else:                                   # b_e, s
+                out.append(values[n])
+        return out
 
     def basis(self, cosmo):
         """The BasisKernels at ``cosmo``."""
@@ -427,7 +441,7 @@ class CurvedForwardModel:
     def amplitudes(self, values):
         """The amplitudes x of the basis kernels (module docstring), in the order of
         ``names``, for parameter values (floats or arrays)."""
-        return self.tb.amplitudes(dict(values, p=self.p))
+        return self.tb.amplitudes(values, self.p)
 
     def coefficients(self, values):
         """(n, n_basis) amplitudes x of the basis kernels for the parameter values."""
@@ -665,7 +679,8 @@ class CurvedLikelihood(Likelihood):
     one), and the plane-parallel effective f_NL is not reported."""
 
     def _amplitudes(self, vals):
-        return self.forward.amplitudes(vals)
+        f = self.forward
+        return f.tb.amplitudes(vals, f.p)
 
     @property
     def derived_names(self):
