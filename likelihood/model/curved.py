@@ -267,45 +267,36 @@ def template_key(spec):
                                      default=str).encode()).hexdigest()
 
 
+def _disk_cached(cache_dir, prefix, key, read, write, compute, what):
+    """``read(path, key)`` of the cache entry ``prefix-<key>.npz``, or ``compute()`` written there
+    by ``write(path, key, value)`` (a warning naming ``what`` if the cache is not writable)."""
+    path = os.path.join(cache_folder(cache_dir), f"{prefix}-{key[:24]}.npz")
+    cached = read(path, key)
+    if cached is not None:
+        return cached
+    value = compute()
+    try:
+        os.makedirs(os.path.dirname(path), exist_ok=True)
+        write(path, key, value)
+    except OSError as exc:
+        warnings.warn(f"curved-sky {what} cache {os.path.dirname(path)}: not "
+                      f"writable ({exc}); continuing without cache", stacklevel=4)
+    return value
+
+
 def cached_templates(cache_dir, spec, compute):
     """Templates from the disk cache entry of ``spec`` (:func:`template_key`), or ``compute()``
     written there (a warning if the cache is not writable)."""
-    key = template_key(spec)
-    folder = cache_folder(cache_dir)
-    path = os.path.join(folder, f"curved-templates-{key[:24]}.npz")
-    cached = _read_templates(path, key)
-    if cached is not None:
-        return cached
-    t = compute()
-    try:
-        os.makedirs(os.path.dirname(path), exist_ok=True)
-        _write_templates(path, key, t)
-    except OSError as exc:
-        warnings.warn(f"curved-sky template cache {os.path.dirname(path)}: not "
-                      f"writable ({exc}); continuing without cache", stacklevel=3)
-    return t
+    return _disk_cached(cache_dir, "curved-templates", template_key(spec), _read_templates,
+                        _write_templates, compute, "template")
 
 
 def cached_covariance(cache_dir, spec, compute):
     """A covariance matrix from the disk cache entry of ``spec`` (a JSON-able list of what
     defines it), or ``compute()`` written there atomically (a warning if not writable)."""
     key = hashlib.sha256(json.dumps(spec, sort_keys=True).encode()).hexdigest()
-    path = os.path.join(cache_folder(cache_dir), f"curved-cov-{key[:24]}.npz")
-    if os.path.isfile(path):
-        try:
-            with np.load(path) as f:
-                if str(f["key"]) == key:
-                    return np.array(f["cov"])
-        except (OSError, ValueError, KeyError, EOFError):
-            pass            # unreadable entry: recompute and overwrite
-    cov = compute()
-    try:
-        os.makedirs(os.path.dirname(path), exist_ok=True)
-        open_atomic(path, lambda fh: np.savez(fh, key=np.array(key), cov=cov), binary=True)
-    except OSError as exc:
-        warnings.warn(f"curved-sky covariance cache {os.path.dirname(path)}: not "
-                      f"writable ({exc}); continuing without cache", stacklevel=3)
-    return cov
+    return _disk_cached(cache_dir, "curved-cov", key, _read_covariance, _write_covariance,
+                        compute, "covariance")
 
 
 class CurvedOperator:
@@ -587,6 +578,20 @@ def _write_templates(path, key, t):
     meta = json.dumps(dict(ells=list(t.ells), auto=t.auto, meta=t.meta), default=str)
     open_atomic(path, lambda fh: np.savez(fh, key=np.array(key), edges=t.edges,
                                           meta=np.array(meta), **arrays), binary=True)
+
+
+def _write_covariance(path, key, cov):
+    open_atomic(path, lambda fh: np.savez(fh, key=np.array(key), cov=cov), binary=True)
+
+
+def _read_covariance(path, key):
+    if not os.path.isfile(path):
+        return None
+    try:
+        with np.load(path) as f:
+            return np.array(f["cov"]) if str(f["key"]) == key else None
+    except (OSError, ValueError, KeyError, EOFError):
+        return None     # unreadable entry: recompute and overwrite
 
 
 def _read_templates(path, key):
