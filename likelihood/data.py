@@ -243,22 +243,30 @@ def save_covariance(path, cov, ells, n_bins):
         open_atomic(path, write)
 
 
-def load_covariance(path):
-    """Read a covariance (text with the documented header, or ``.npz``); returns (cov, ells)."""
-    path = input_file(path, "covariance")
+def read_covariance_file(path, npz_meta, header_meta):
+    """(cov, meta) of a covariance file: ``.npz`` holding 'covariance' (meta = ``npz_meta(z)``
+    of the open archive) or text whose first line is the covariance header (meta =
+    ``header_meta(header)`` of its parsed header lines); one-line DataError naming the file
+    otherwise. The matrix itself is not checked here."""
     if path.endswith(".npz"):
         try:
             with np.load(path) as z:
-                cov = np.array(z["covariance"], float)
-                ells = tuple(int(l) for l in z["ells"]) if "ells" in z else None
+                return np.array(z["covariance"], float), npz_meta(z)
         except (OSError, ValueError, KeyError) as exc:
             raise DataError(f"{path}: not a valid .npz covariance (needs 'covariance'): {exc}") from None
-    else:
-        first, header = read_header(path)
-        if first != COV_HEADER:
-            raise DataError(f"{path}: first line must be '{COV_HEADER}'")
-        ells = _parse_ells(path, header)
-        cov = load_table(path)
+    first, header = read_header(path)
+    if first != COV_HEADER:
+        raise DataError(f"{path}: first line must be '{COV_HEADER}'")
+    meta = header_meta(header)
+    return load_table(path), meta
+
+
+def load_covariance(path):
+    """Read a covariance (text with the documented header, or ``.npz``); returns (cov, ells)."""
+    path = input_file(path, "covariance")
+    cov, ells = read_covariance_file(
+        path, lambda z: tuple(int(l) for l in z["ells"]) if "ells" in z else None,
+        lambda header: _parse_ells(path, header))
     check_covariance(cov, source=path)
     return cov, ells
 

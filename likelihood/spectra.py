@@ -37,7 +37,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .data import (COV_HEADER, DATA_HEADER, DataVector, MockCovariance, check_covariance,
-                   load_table, mock_data_files, read_header)
+                   mock_data_files, read_covariance_file, read_header)
 from .errors import DataError
 from .io import input_file, open_atomic, read_comment_header
 
@@ -292,22 +292,16 @@ def load_spectra_covariance(path, sv):
     """Read the covariance of the multi-tracer vector ``sv``; its spectra (pairs, ells) and size
     must match the data's."""
     path = input_file(path, "covariance")
-    if path.endswith(".npz"):
-        try:
-            with np.load(path) as z:
-                cov = np.array(z["covariance"], float)
-                specs = None
-                if "pairs" in z:
-                    specs = [(tuple(str(t) for t in p), tuple(int(l) for l in z[f"ells_{i}"]))
-                             for i, p in enumerate(z["pairs"])]
-        except (OSError, ValueError, KeyError) as exc:
-            raise DataError(f"{path}: not a valid .npz covariance (needs 'covariance'): {exc}") from None
-    else:
-        first, header = read_header(path)
-        if first != COV_HEADER:
-            raise DataError(f"{path}: first line must be '{COV_HEADER}'")
-        specs = [_parse_spectrum_line(path, s) for s in header.get("spectrum", [])] or None
-        cov = load_table(path)
+
+    def npz_specs(z):
+        if "pairs" not in z:
+            return None
+        return [(tuple(str(t) for t in p), tuple(int(l) for l in z[f"ells_{i}"]))
+                for i, p in enumerate(z["pairs"])]
+
+    cov, specs = read_covariance_file(
+        path, npz_specs,
+        lambda header: [_parse_spectrum_line(path, s) for s in header.get("spectrum", [])] or None)
     mine = [(tuple(p), tuple(d.ells)) for p, d in zip(sv.pairs, sv.parts)]
     if specs is not None and specs != mine:
         raise DataError(f"{path}: covariance spectra {[(pair_label(p), list(e)) for p, e in specs]} "
