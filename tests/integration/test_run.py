@@ -137,18 +137,26 @@ def test_resume_with_more_steps(write_config, tmp_path):
     assert summ["n_steps"] == 300
 
 
-def test_run_folder_is_portable(tmp_path, monkeypatch):
-    """The stored config references copies of its input files inside the run folder, so a moved
-    folder still summarises, with the same config hash (issue 15, item 6)."""
+def _short_copy(tmp_path, demo, name, **sampling):
+    """(folder, raw config): configs/DEMO.yaml with a 60-step chain written as NAME beside copies
+    of its data and covariance files (DEMO_data.txt, DEMO_cov.txt) in tmp_path/src."""
     import yaml
     root = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
     src = tmp_path / "src"
     src.mkdir()
-    for name in ("demo_data.txt", "demo_cov.txt"):
-        shutil.copy(os.path.join(root, "configs", name), src / name)
-    cfg = yaml.safe_load(open(os.path.join(root, "configs", "demo.yaml")))
-    cfg["sampling"].update(max_steps=60, check_every=30, walkers=8)
-    (src / "demo.yaml").write_text(yaml.safe_dump(cfg))
+    for suffix in ("data.txt", "cov.txt"):
+        shutil.copy(os.path.join(root, "configs", f"{demo}_{suffix}"), src / f"{demo}_{suffix}")
+    cfg = yaml.safe_load(open(os.path.join(root, "configs", f"{demo}.yaml")))
+    cfg["sampling"].update(max_steps=60, check_every=30, **sampling)
+    (src / name).write_text(yaml.safe_dump(cfg))
+    return src, cfg
+
+
+def test_run_folder_is_portable(tmp_path, monkeypatch):
+    """The stored config references copies of its input files inside the run folder, so a moved
+    folder still summarises, with the same config hash (issue 15, item 6)."""
+    import yaml
+    src, cfg = _short_copy(tmp_path, "demo", "demo.yaml", walkers=8)
     out = tmp_path / "run"
     assert main(["run", str(src / "demo.yaml"), "--out", str(out), "--quiet"]) == 0
     stored = yaml.safe_load((out / "config.yaml").read_text())
@@ -169,14 +177,7 @@ def test_two_tracer_demo_and_samples_end_to_end(tmp_path, monkeypatch, two_sampl
     per tracer, the multipoles figure with a column per spectrum; a run with two samples stores
     each sample's input files in inputs/NAME/ and still summarises after its folder moved."""
     import yaml
-    root = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
-    src = tmp_path / "src"
-    src.mkdir()
-    for name in ("multi_demo_data.txt", "multi_demo_cov.txt"):
-        shutil.copy(os.path.join(root, "configs", name), src / name)
-    cfg = yaml.safe_load(open(os.path.join(root, "configs", "multi_demo.yaml")))
-    cfg["sampling"].update(max_steps=60, check_every=30, walkers=16, progress=False)
-    (src / "two.yaml").write_text(yaml.safe_dump(cfg))
+    src, cfg = _short_copy(tmp_path, "multi_demo", "two.yaml", walkers=16, progress=False)
     out = tmp_path / "two"
     assert main(["run", str(src / "two.yaml"), "--out", str(out), "--quiet"]) == 0
     summ = json.loads((out / "summary.json").read_text())
